@@ -1,0 +1,17 @@
+//! slopewarden: trend refits and influence diagnostics for monitoring series.
+//!
+//! Layout (a one-way pipeline; see DEVELOPERS.md for the full map):
+//! - [`stats`]: pure statistics: least squares with inference, influence
+//!   diagnostics, streaming per-series state, Theil-Sen and Mann-Kendall,
+//!   transforms, Durbin-Watson. No I/O, no clock.
+//! - [`table`]: reads two numeric columns from a CSV for ad-hoc fits, with
+//!   errors that name line and column.
+//! - [`fitreport`]: turns a fit and its diagnostics into the human summary
+//!   and the JSON contract of `slopewarden fit`.
+
+#![warn(clippy::unwrap_used)]
+#![warn(missing_docs)]
+
+
+pub mod stats;
+pub mod table;

@@ -1,0 +1,1 @@
+//! Theil-Sen and Mann-Kendall (being written).

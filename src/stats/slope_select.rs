@@ -1,0 +1,1 @@
+//! Exact selection of the k-th smallest pairwise slope (being written).

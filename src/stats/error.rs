@@ -26,12 +26,15 @@ pub enum FitError {
         /// The common x value.
         x: f64,
     },
-    /// A value is NaN or infinite. `index` is the 0-based position in the input.
+    /// A value is NaN or infinite, or a quantity derived from finite values
+    /// overflows (values near 1e300). `index` is the 0-based position in the
+    /// input of the point concerned.
     #[error("point {index}: {axis} is not a finite number ({value})")]
     NonFinite {
         /// 0-based position of the point in the input.
         index: usize,
-        /// Which coordinate: "x" or "y".
+        /// Which coordinate ("x" or "y"), or which derived quantity
+        /// overflowed ("pairwise slope", "intercept").
         axis: &'static str,
         /// The offending value, for the message.
         value: f64,

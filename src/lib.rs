@@ -12,6 +12,6 @@
 #![warn(clippy::unwrap_used)]
 #![warn(missing_docs)]
 
-
+pub mod fitreport;
 pub mod stats;
 pub mod table;

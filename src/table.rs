@@ -64,7 +64,9 @@ pub enum TableError {
         path: PathBuf,
     },
     /// A requested column is not in the header.
-    #[error("{place}: no column named `{name}` in the header (it has: {available}); name the columns with --x and --y")]
+    #[error(
+        "{place}: no column named `{name}` in the header (it has: {available}); name the columns with --x and --y"
+    )]
     MissingColumn {
         /// The header line.
         place: Place,
@@ -74,7 +76,9 @@ pub enum TableError {
         available: String,
     },
     /// A row has a different number of fields from the header.
-    #[error("{place}: this row has {found} field(s) but the header has {expected}; check for a stray delimiter or a missing quote")]
+    #[error(
+        "{place}: this row has {found} field(s) but the header has {expected}; check for a stray delimiter or a missing quote"
+    )]
     Ragged {
         /// The row.
         place: Place,
@@ -96,7 +100,9 @@ pub enum TableError {
         reason: &'static str,
     },
     /// The CSV structure itself is broken (for example an unclosed quote).
-    #[error("{place}: the file is not valid CSV here ({message}); fix the quoting or the delimiter")]
+    #[error(
+        "{place}: the file is not valid CSV here ({message}); fix the quoting or the delimiter"
+    )]
     Malformed {
         /// Where the reader stopped.
         place: Place,
@@ -129,7 +135,12 @@ pub fn read_xy_file(path: &Path, x_name: &str, y_name: &str) -> Result<Columns, 
 
 /// Reads columns `x_name` and `y_name` of CSV text; `path` names the source
 /// in errors.
-pub fn read_xy(data: &[u8], path: &Path, x_name: &str, y_name: &str) -> Result<Columns, TableError> {
+pub fn read_xy(
+    data: &[u8],
+    path: &Path,
+    x_name: &str,
+    y_name: &str,
+) -> Result<Columns, TableError> {
     let place = |line: u64, column: Option<usize>| Place {
         path: path.to_path_buf(),
         line,
@@ -144,21 +155,22 @@ pub fn read_xy(data: &[u8], path: &Path, x_name: &str, y_name: &str) -> Result<C
     // a record's start on the LF before it; count lines from byte offsets.
     let mut lines = LineCounter::new(data);
     let mut record = csv::ByteRecord::new();
-    let read = |rdr: &mut csv::Reader<_>, record: &mut csv::ByteRecord| -> Result<bool, TableError> {
-        rdr.read_byte_record(record).map_err(|e| {
-            let line = e.position().map_or(0, |p| p.line());  // best effort for broken files
-            match e.into_kind() {
-                csv::ErrorKind::Io(source) => TableError::Io {
-                    path: path.to_path_buf(),
-                    source,
-                },
-                other => TableError::Malformed {
-                    place: place(line, None),
-                    message: format!("{other:?}"),
-                },
-            }
-        })
-    };
+    let read =
+        |rdr: &mut csv::Reader<_>, record: &mut csv::ByteRecord| -> Result<bool, TableError> {
+            rdr.read_byte_record(record).map_err(|e| {
+                let line = e.position().map_or(0, |p| p.line()); // best effort for broken files
+                match e.into_kind() {
+                    csv::ErrorKind::Io(source) => TableError::Io {
+                        path: path.to_path_buf(),
+                        source,
+                    },
+                    other => TableError::Malformed {
+                        place: place(line, None),
+                        message: format!("{other:?}"),
+                    },
+                }
+            })
+        };
     if !read(&mut rdr, &mut record)? {
         return Err(TableError::Empty {
             path: path.to_path_buf(),
@@ -169,16 +181,23 @@ pub fn read_xy(data: &[u8], path: &Path, x_name: &str, y_name: &str) -> Result<C
         .iter()
         .enumerate()
         .map(|(i, field)| {
-            let field = if i == 0 { field.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(field) } else { field };
+            let field = if i == 0 {
+                field.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(field)
+            } else {
+                field
+            };
             String::from_utf8_lossy(field).trim().to_string()
         })
         .collect();
     let find = |name: &str| -> Result<usize, TableError> {
-        names.iter().position(|h| h == name).ok_or_else(|| TableError::MissingColumn {
-            place: place(header_line, None),
-            name: name.to_string(),
-            available: names.join(", "),
-        })
+        names
+            .iter()
+            .position(|h| h == name)
+            .ok_or_else(|| TableError::MissingColumn {
+                place: place(header_line, None),
+                name: name.to_string(),
+                available: names.join(", "),
+            })
     };
     let (xi, yi) = (find(x_name)?, find(y_name)?);
     let width = names.len();
@@ -189,7 +208,11 @@ pub fn read_xy(data: &[u8], path: &Path, x_name: &str, y_name: &str) -> Result<C
     };
     while read(&mut rdr, &mut record)? {
         let line = lines.line_of(&record);
-        if record.len() == 1 && record.get(0).is_some_and(|f| f.iter().all(u8::is_ascii_whitespace)) {
+        if record.len() == 1
+            && record
+                .get(0)
+                .is_some_and(|f| f.iter().all(u8::is_ascii_whitespace))
+        {
             continue; // a blank line
         }
         if record.len() != width {
@@ -234,7 +257,9 @@ impl<'a> LineCounter<'a> {
         let Some(pos) = record.position() else {
             return 0;
         };
-        let at = usize::try_from(pos.byte()).unwrap_or(usize::MAX).min(self.data.len());
+        let at = usize::try_from(pos.byte())
+            .unwrap_or(usize::MAX)
+            .min(self.data.len());
         if at > self.scanned {
             self.newlines += memchr_count(&self.data[self.scanned..at]);
             self.scanned = at;
@@ -259,11 +284,15 @@ pub fn parse_number(raw: &[u8]) -> Result<f64, &'static str> {
     }
     match text.parse::<f64>() {
         Ok(v) if v.is_finite() => Ok(v),
-        Ok(v) if v.is_nan() => Err("which is not a number; write the measured value or remove the row"),
-        Ok(_) => Err("which is infinite or too large for a double (|v| > 1.8e308); check the value"),
-        Err(_) if text.starts_with('<') || text.eq_ignore_ascii_case("nd") => {
-            Err("a non-detect; an ad-hoc fit needs numbers (the daemon handles non-detects by policy)")
+        Ok(v) if v.is_nan() => {
+            Err("which is not a number; write the measured value or remove the row")
         }
+        Ok(_) => {
+            Err("which is infinite or too large for a double (|v| > 1.8e308); check the value")
+        }
+        Err(_) if text.starts_with('<') || text.eq_ignore_ascii_case("nd") => Err(
+            "a non-detect; an ad-hoc fit needs numbers (the daemon handles non-detects by policy)",
+        ),
         Err(_) if text.contains(',') && !text.contains('.') => {
             Err("which uses a decimal comma; write a decimal point (e.g. 0.5)")
         }
@@ -273,7 +302,10 @@ pub fn parse_number(raw: &[u8]) -> Result<f64, &'static str> {
 
 fn shorten(raw: &[u8]) -> String {
     let text = String::from_utf8_lossy(raw);
-    let clean: String = text.chars().map(|c| if c.is_control() { '?' } else { c }).collect();
+    let clean: String = text
+        .chars()
+        .map(|c| if c.is_control() { '?' } else { c })
+        .collect();
     if clean.chars().count() > 40 {
         let head: String = clean.chars().take(37).collect();
         format!("{head}...")
@@ -303,7 +335,10 @@ mod tests {
     fn bad_cell_names_line_and_column() {
         let err = read("x,y\n1,2\n2,abc\n").unwrap_err();
         let msg = err.to_string();
-        assert!(msg.starts_with("in.csv:3:2: column `y` holds `abc`"), "{msg}");
+        assert!(
+            msg.starts_with("in.csv:3:2: column `y` holds `abc`"),
+            "{msg}"
+        );
     }
 
     #[test]
@@ -317,13 +352,26 @@ mod tests {
     #[test]
     fn missing_column_lists_what_is_there() {
         let err = read("a,b\n1,2\n").unwrap_err();
-        assert!(err.to_string().contains("no column named `x` in the header (it has: a, b)"));
+        assert!(
+            err.to_string()
+                .contains("no column named `x` in the header (it has: a, b)")
+        );
     }
 
     #[test]
     fn ragged_row_is_reported() {
         let err = read("x,y\n1,2\n3\n").unwrap_err();
-        assert!(matches!(err, TableError::Ragged { expected: 2, found: 1, .. }), "{err}");
+        assert!(
+            matches!(
+                err,
+                TableError::Ragged {
+                    expected: 2,
+                    found: 1,
+                    ..
+                }
+            ),
+            "{err}"
+        );
     }
 
     #[test]

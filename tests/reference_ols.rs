@@ -9,10 +9,14 @@
 use std::path::{Path, PathBuf};
 
 use serde_json::Value;
-use slopewarden::stats::{PointInfluence, Transform, Undefined, durbin_watson, fit_line, influence, transform_points};
+use slopewarden::stats::{
+    PointInfluence, Transform, Undefined, durbin_watson, fit_line, influence, transform_points,
+};
 
 fn fixture_dir(sub: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures").join(sub)
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures")
+        .join(sub)
 }
 
 fn load(path: &Path) -> Value {
@@ -20,7 +24,11 @@ fn load(path: &Path) -> Value {
 }
 
 fn floats(v: &Value) -> Vec<f64> {
-    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_f64().unwrap())
+        .collect()
 }
 
 /// Log relative error: the number of agreeing significant digits (NIST's
@@ -53,21 +61,48 @@ fn norris_matches_nist_certified_values() {
     let checks = [
         ("B0", fit.intercept, p["B0"]["estimate"].as_f64().unwrap()),
         ("B1", fit.slope, p["B1"]["estimate"].as_f64().unwrap()),
-        ("sd(B0)", fit.intercept_se, p["B0"]["standard_deviation"].as_f64().unwrap()),
-        ("sd(B1)", fit.slope_se, p["B1"]["standard_deviation"].as_f64().unwrap()),
-        ("residual SD", fit.residual_sd, cert["residual_standard_deviation"].as_f64().unwrap()),
-        ("R squared", fit.r_squared.unwrap(), cert["r_squared"].as_f64().unwrap()),
-        ("residual SS", fit.sse, anova["residual"]["sum_of_squares"].as_f64().unwrap()),
+        (
+            "sd(B0)",
+            fit.intercept_se,
+            p["B0"]["standard_deviation"].as_f64().unwrap(),
+        ),
+        (
+            "sd(B1)",
+            fit.slope_se,
+            p["B1"]["standard_deviation"].as_f64().unwrap(),
+        ),
+        (
+            "residual SD",
+            fit.residual_sd,
+            cert["residual_standard_deviation"].as_f64().unwrap(),
+        ),
+        (
+            "R squared",
+            fit.r_squared.unwrap(),
+            cert["r_squared"].as_f64().unwrap(),
+        ),
+        (
+            "residual SS",
+            fit.sse,
+            anova["residual"]["sum_of_squares"].as_f64().unwrap(),
+        ),
         (
             "regression SS",
             fit.moments.syy() - fit.sse,
             anova["regression"]["sum_of_squares"].as_f64().unwrap(),
         ),
-        ("F", fit.slope_t.unwrap().powi(2), anova["regression"]["f_statistic"].as_f64().unwrap()),
+        (
+            "F",
+            fit.slope_t.unwrap().powi(2),
+            anova["regression"]["f_statistic"].as_f64().unwrap(),
+        ),
     ];
     for (name, got, want) in checks {
         let digits = lre(got, want);
-        assert!(digits >= 9.0, "{name}: got {got}, certified {want}, LRE {digits:.2}");
+        assert!(
+            digits >= 9.0,
+            "{name}: got {got}, certified {want}, LRE {digits:.2}"
+        );
     }
     assert_eq!(fit.df, 34);
 }
@@ -103,7 +138,10 @@ fn check(file: &str, what: &str, got: Option<f64>, want: &Value) {
     match (got, want.as_f64()) {
         (Some(g), Some(w)) => {
             let tol = 1e-8 * g.abs().max(w.abs()) + 1e-12;
-            assert!((g - w).abs() <= tol, "{file}: {what}: got {g}, reference {w}");
+            assert!(
+                (g - w).abs() <= tol,
+                "{file}: {what}: got {g}, reference {w}"
+            );
         }
         (None, None) => {}
         (g, w) => panic!("{file}: {what}: got {g:?}, reference {w:?}"),
@@ -122,13 +160,43 @@ fn check_point(file: &str, i: usize, p: &PointInfluence, want: &Value) {
         );
         return;
     }
-    check(file, &at("standardized_residual"), p.standardized_residual(), &want["standardized_residual"]);
-    check(file, &at("studentized_residual"), p.studentized_residual(), &want["studentized_residual"]);
-    check(file, &at("cooks_distance"), p.cooks_distance(), &want["cooks_distance"]);
+    check(
+        file,
+        &at("standardized_residual"),
+        p.standardized_residual(),
+        &want["standardized_residual"],
+    );
+    check(
+        file,
+        &at("studentized_residual"),
+        p.studentized_residual(),
+        &want["studentized_residual"],
+    );
+    check(
+        file,
+        &at("cooks_distance"),
+        p.cooks_distance(),
+        &want["cooks_distance"],
+    );
     check(file, &at("dffits"), p.dffits(), &want["dffits"]);
-    check(file, &at("dfbetas_intercept"), p.dfbetas_intercept(), &want["dfbetas_intercept"]);
-    check(file, &at("dfbetas_slope"), p.dfbetas_slope(), &want["dfbetas_slope"]);
-    check(file, &at("covariance_ratio"), p.covariance_ratio(), &want["covariance_ratio"]);
+    check(
+        file,
+        &at("dfbetas_intercept"),
+        p.dfbetas_intercept(),
+        &want["dfbetas_intercept"],
+    );
+    check(
+        file,
+        &at("dfbetas_slope"),
+        p.dfbetas_slope(),
+        &want["dfbetas_slope"],
+    );
+    check(
+        file,
+        &at("covariance_ratio"),
+        p.covariance_ratio(),
+        &want["covariance_ratio"],
+    );
 }
 
 fn check_fixture(path: &Path) {
@@ -140,9 +208,17 @@ fn check_fixture(path: &Path) {
     } else {
         // Transform the raw values ourselves, then compare with the
         // reference's transformed values and fit.
-        let (tx, ty) = transform_points(&floats(&f["raw_x"]), &floats(&f["raw_y"]), transform).unwrap();
-        for (a, b) in tx.iter().zip(floats(&f["x"])).chain(ty.iter().zip(floats(&f["y"]))) {
-            assert!((a - b).abs() <= 1e-14 * b.abs().max(1.0), "{file}: transformed value {a} vs {b}");
+        let (tx, ty) =
+            transform_points(&floats(&f["raw_x"]), &floats(&f["raw_y"]), transform).unwrap();
+        for (a, b) in tx
+            .iter()
+            .zip(floats(&f["x"]))
+            .chain(ty.iter().zip(floats(&f["y"])))
+        {
+            assert!(
+                (a - b).abs() <= 1e-14 * b.abs().max(1.0),
+                "{file}: transformed value {a} vs {b}"
+            );
         }
         (tx, ty)
     };
@@ -152,14 +228,34 @@ fn check_fixture(path: &Path) {
     assert_eq!(fit.df as u64, w["df"].as_u64().unwrap(), "{file}");
     check(&file, "intercept", Some(fit.intercept), &w["intercept"]);
     check(&file, "slope", Some(fit.slope), &w["slope"]);
-    check(&file, "intercept_se", Some(fit.intercept_se), &w["intercept_se"]);
+    check(
+        &file,
+        "intercept_se",
+        Some(fit.intercept_se),
+        &w["intercept_se"],
+    );
     check(&file, "slope_se", Some(fit.slope_se), &w["slope_se"]);
     check(&file, "slope_t", fit.slope_t, &w["slope_t"]);
     check(&file, "slope_p", fit.slope_p, &w["slope_p"]);
-    check(&file, "slope_ci_low", Some(fit.slope_ci_low), &w["slope_ci_low"]);
-    check(&file, "slope_ci_high", Some(fit.slope_ci_high), &w["slope_ci_high"]);
+    check(
+        &file,
+        "slope_ci_low",
+        Some(fit.slope_ci_low),
+        &w["slope_ci_low"],
+    );
+    check(
+        &file,
+        "slope_ci_high",
+        Some(fit.slope_ci_high),
+        &w["slope_ci_high"],
+    );
     check(&file, "r_squared", fit.r_squared, &w["r_squared"]);
-    check(&file, "residual_sd", Some(fit.residual_sd), &w["residual_sd"]);
+    check(
+        &file,
+        "residual_sd",
+        Some(fit.residual_sd),
+        &w["residual_sd"],
+    );
     let points = influence(&x, &y, &fit).unwrap();
     let want_points = f["points"].as_array().unwrap();
     assert_eq!(points.len(), want_points.len(), "{file}");
@@ -167,7 +263,12 @@ fn check_fixture(path: &Path) {
         check_point(&file, i, p, wp);
     }
     let residuals: Vec<f64> = points.iter().map(PointInfluence::residual).collect();
-    check(&file, "durbin_watson", durbin_watson(&x, &residuals), &f["durbin_watson"]);
+    check(
+        &file,
+        "durbin_watson",
+        durbin_watson(&x, &residuals),
+        &f["durbin_watson"],
+    );
 }
 
 fn fixtures_in(sub: &str) -> Vec<PathBuf> {
@@ -197,7 +298,10 @@ fn every_value_matches_r() {
 #[test]
 fn every_value_matches_statsmodels() {
     let files = fixtures_in("reference/statsmodels");
-    assert!(files.len() >= 3, "expected the statsmodels fixtures, found {files:?}");
+    assert!(
+        files.len() >= 3,
+        "expected the statsmodels fixtures, found {files:?}"
+    );
     for path in files {
         check_fixture(&path);
     }

@@ -69,9 +69,16 @@ pub fn quadratic_design(x: &[f64]) -> DMatrix<f64> {
 pub fn fit_general(design: &DMatrix<f64>, y: &[f64]) -> Result<GeneralFit, FitError> {
     let (n, p) = design.shape();
     if y.len() != n {
-        return Err(FitError::LengthMismatch { x_len: n, y_len: y.len() });
+        return Err(FitError::LengthMismatch {
+            x_len: n,
+            y_len: y.len(),
+        });
     }
-    let col1: Vec<f64> = if p > 1 { design.column(1).iter().copied().collect() } else { vec![0.0; n] };
+    let col1: Vec<f64> = if p > 1 {
+        design.column(1).iter().copied().collect()
+    } else {
+        vec![0.0; n]
+    };
     check_finite_pairs(&col1, y)?;
     if n < p + 1 {
         return Err(FitError::TooFewPoints {
@@ -86,16 +93,25 @@ pub fn fit_general(design: &DMatrix<f64>, y: &[f64]) -> Result<GeneralFit, FitEr
     for j in 0..p {
         let norm = design.column(j).norm();
         if r[(j, j)].abs() <= RANK_TOLERANCE * norm.max(f64::MIN_POSITIVE) {
-            return Err(FitError::ConstantX { n, x: col1.first().copied().unwrap_or(0.0) });
+            return Err(FitError::ConstantX {
+                n,
+                x: col1.first().copied().unwrap_or(0.0),
+            });
         }
     }
     let yv = DVector::from_column_slice(y);
     let qty = q.transpose() * &yv;
     let Some(beta) = r.solve_upper_triangular(&qty) else {
-        return Err(FitError::ConstantX { n, x: col1.first().copied().unwrap_or(0.0) });
+        return Err(FitError::ConstantX {
+            n,
+            x: col1.first().copied().unwrap_or(0.0),
+        });
     };
     let Some(r_inv) = r.solve_upper_triangular(&DMatrix::identity(p, p)) else {
-        return Err(FitError::ConstantX { n, x: col1.first().copied().unwrap_or(0.0) });
+        return Err(FitError::ConstantX {
+            n,
+            x: col1.first().copied().unwrap_or(0.0),
+        });
     };
     let fitted = design * &beta;
     let resid = &yv - fitted;
@@ -134,8 +150,15 @@ pub fn fit_general(design: &DMatrix<f64>, y: &[f64]) -> Result<GeneralFit, FitEr
                 let s_i = s2_i.sqrt();
                 let t = e / (s_i * omh.sqrt());
                 let delta = &r_inv * &qi * (e / omh);
-                let dfb = (0..p).map(|j| delta[j] / (s_i * c_diag[j].sqrt())).collect();
-                (Some(t), Some(t * (h / omh).sqrt()), Some(dfb), Some(covratio))
+                let dfb = (0..p)
+                    .map(|j| delta[j] / (s_i * c_diag[j].sqrt()))
+                    .collect();
+                (
+                    Some(t),
+                    Some(t * (h / omh).sqrt()),
+                    Some(dfb),
+                    Some(covratio),
+                )
             } else {
                 (None, None, None, Some(covratio))
             }

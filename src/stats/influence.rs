@@ -48,7 +48,9 @@ impl Undefined {
             Undefined::FixesFitAlone => {
                 "leverage 1: this point alone fixes the slope; leave-one-out measures are undefined"
             }
-            Undefined::ExactLine => "the points lie exactly on a line; scaled measures are undefined",
+            Undefined::ExactLine => {
+                "the points lie exactly on a line; scaled measures are undefined"
+            }
             Undefined::NoLeaveOneOutDf => {
                 "only 3 points: the fit without this point has no residual degrees of freedom"
             }
@@ -216,38 +218,67 @@ pub(crate) fn point_influence(t: PointTerms) -> PointInfluence {
 /// `x` and `y` must be the points `fit` was computed from (same scale, same
 /// order); they are checked for length only.
 pub fn influence(x: &[f64], y: &[f64], fit: &LineFit) -> Result<Vec<PointInfluence>, FitError> {
+    let mut out = Vec::new();
+    influence_into(x, y, fit, &mut out)?;
+    Ok(out)
+}
+
+/// As [`influence`], writing into `out` (cleared first) so that a caller
+/// diagnosing many fits reuses one allocation.
+pub fn influence_into(
+    x: &[f64],
+    y: &[f64],
+    fit: &LineFit,
+    out: &mut Vec<PointInfluence>,
+) -> Result<(), FitError> {
     if x.len() != y.len() || x.len() != fit.n {
         return Err(FitError::LengthMismatch {
             x_len: x.len(),
             y_len: y.len(),
         });
     }
+    out.clear();
+    out.reserve(fit.n);
     let m = &fit.moments;
     let n = fit.n as f64;
     let origin = m.origin();
     let mx = m.mean_x_shifted();
     let my = m.mean_y();
     let sxx = m.sxx();
+    let inv_sxx = 1.0 / sxx;
+    let inv_n = 1.0 / n;
+    let n1_over_n = (n - 1.0) / n;
     let b = fit.slope;
-    let mut out = Vec::with_capacity(fit.n);
+    let df_i = (n - 3.0).max(1.0);
+    // s₍ᵢ₎ at or below this is an exact line without the point (see is_exact).
+    let scale = my.abs().max((m.syy() / n).sqrt());
+    let exact_s2 = {
+        let t = super::line::EXACT_RELATIVE_SD * scale;
+        t * t
+    };
+    let cancel_at = DOWNDATE_CANCELLATION * fit.sse;
     for i in 0..fit.n {
         let dx = (x[i] - origin) - mx;
         let e = (y[i] - my) - b * dx;
-        let h = 1.0 / n + dx * dx / sxx;
-        let one_minus_h = (n - 1.0) / n - dx * dx / sxx;
-        let reduction = if one_minus_h > 0.0 { e * e / one_minus_h } else { 0.0 };
+        let dx2 = dx * dx * inv_sxx;
+        let h = inv_n + dx2;
+        let one_minus_h = n1_over_n - dx2;
+        let reduction = if one_minus_h > 0.0 {
+            e * e / one_minus_h
+        } else {
+            0.0
+        };
         let (sse_without, exact_without) =
-            if !fit.exact && one_minus_h > LEVERAGE_ONE_GAP && reduction > DOWNDATE_CANCELLATION * fit.sse {
+            if !fit.exact && one_minus_h > LEVERAGE_ONE_GAP && reduction > cancel_at {
                 // Almost all the scatter sits in this point: recompute the
                 // fit without it from the data instead of subtracting.
                 let rest = moments_without(x, y, i);
-                let s_rest = (rest.sse() / (n - 3.0).max(1.0)).sqrt();
+                let s_rest = (rest.sse() / df_i).sqrt();
                 let exact = is_exact(s_rest, rest.mean_y(), rest.syy(), n - 1.0);
                 (if exact { 0.0 } else { rest.sse() }, exact)
             } else {
                 let sse_i = (fit.sse - reduction).max(0.0);
-                let s_i = (sse_i / (n - 3.0).max(1.0)).sqrt();
-                (sse_i, is_exact(s_i, my, m.syy(), n))
+                (sse_i, sse_i / df_i <= exact_s2)
             };
         out.push(point_influence(PointTerms {
             n,
@@ -263,7 +294,7 @@ pub fn influence(x: &[f64], y: &[f64], fit: &LineFit) -> Result<Vec<PointInfluen
             exact_without,
         }));
     }
-    Ok(out)
+    Ok(())
 }
 
 fn moments_without(x: &[f64], y: &[f64], skip: usize) -> Moments {
@@ -306,7 +337,12 @@ impl LeaveOneOut {
 
 /// The fit without point `i`: O(1) from the co-moments, or recomputed from
 /// the data when the point holds almost all the scatter (see module docs).
-pub fn leave_one_out(x: &[f64], y: &[f64], fit: &LineFit, i: usize) -> Result<LeaveOneOut, FitError> {
+pub fn leave_one_out(
+    x: &[f64],
+    y: &[f64],
+    fit: &LineFit,
+    i: usize,
+) -> Result<LeaveOneOut, FitError> {
     if x.len() != y.len() || x.len() != fit.n || i >= fit.n {
         return Err(FitError::LengthMismatch {
             x_len: x.len(),
@@ -318,7 +354,8 @@ pub fn leave_one_out(x: &[f64], y: &[f64], fit: &LineFit, i: usize) -> Result<Le
     let n = fit.n as f64;
     let one_minus_h = (n - 1.0) / n - dx * dx / m.sxx();
     let e = (y[i] - m.mean_y()) - fit.slope * dx;
-    let risky = one_minus_h <= 1e-6 || (one_minus_h > 0.0 && e * e / one_minus_h > DOWNDATE_CANCELLATION * fit.sse);
+    let risky = one_minus_h <= 1e-6
+        || (one_minus_h > 0.0 && e * e / one_minus_h > DOWNDATE_CANCELLATION * fit.sse);
     let rest = if risky {
         moments_without(x, y, i)
     } else {

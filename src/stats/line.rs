@@ -7,7 +7,7 @@ use super::moments::Moments;
 /// Relative scatter below which a line counts as exact: residual SD at most
 /// this fraction of the scale of y. Far below any measurement's precision,
 /// far above f64 round-off (about 1e-16 per operation).
-const EXACT_RELATIVE_SD: f64 = 1e-13;
+pub(crate) const EXACT_RELATIVE_SD: f64 = 1e-13;
 
 /// A straight-line least-squares fit of y on x with inference.
 ///
@@ -63,10 +63,7 @@ impl LineFit {
             });
         }
         if m.sxx() <= 0.0 {
-            return Err(FitError::ConstantX {
-                n,
-                x: m.origin(),
-            });
+            return Err(FitError::ConstantX { n, x: m.origin() });
         }
         let nf = n as f64;
         let df = n - 2;
@@ -77,7 +74,11 @@ impl LineFit {
         let sse = m.sse().max(0.0);
         let residual_sd = (sse / dff).sqrt();
         let exact = is_exact(residual_sd, m.mean_y(), m.syy(), nf);
-        let (residual_sd, sse) = if exact { (0.0, 0.0) } else { (residual_sd, sse) };
+        let (residual_sd, sse) = if exact {
+            (0.0, 0.0)
+        } else {
+            (residual_sd, sse)
+        };
         let slope_se = residual_sd / m.sxx().sqrt();
         let intercept_se = residual_sd * (1.0 / nf + mean_x * mean_x / m.sxx()).sqrt();
         let (slope_t, slope_p, half_width) = if exact {
@@ -121,7 +122,8 @@ impl LineFit {
 
     /// Fitted value at `x`.
     pub fn predict(&self, x: f64) -> f64 {
-        self.moments.mean_y() + self.slope * ((x - self.moments.origin()) - self.moments.mean_x_shifted())
+        self.moments.mean_y()
+            + self.slope * ((x - self.moments.origin()) - self.moments.mean_x_shifted())
     }
 
     /// Standard error of the fitted line at `x`.
@@ -172,7 +174,14 @@ mod tests {
     #[test]
     fn rejects_fewer_than_three_points() {
         let err = fit_line(&[1.0, 2.0], &[1.0, 2.0], 0.95).unwrap_err();
-        assert!(matches!(err, FitError::TooFewPoints { n: 2, needed: 3, .. }));
+        assert!(matches!(
+            err,
+            FitError::TooFewPoints {
+                n: 2,
+                needed: 3,
+                ..
+            }
+        ));
     }
 
     #[test]
@@ -184,9 +193,23 @@ mod tests {
     #[test]
     fn rejects_non_finite_input_naming_the_point() {
         let err = fit_line(&[1.0, 2.0, 3.0], &[1.0, f64::NAN, 3.0], 0.95).unwrap_err();
-        assert!(matches!(err, FitError::NonFinite { index: 1, axis: "y", .. }));
+        assert!(matches!(
+            err,
+            FitError::NonFinite {
+                index: 1,
+                axis: "y",
+                ..
+            }
+        ));
         let err = fit_line(&[1.0, f64::INFINITY, 3.0], &[1.0, 2.0, 3.0], 0.95).unwrap_err();
-        assert!(matches!(err, FitError::NonFinite { index: 1, axis: "x", .. }));
+        assert!(matches!(
+            err,
+            FitError::NonFinite {
+                index: 1,
+                axis: "x",
+                ..
+            }
+        ));
     }
 
     #[test]

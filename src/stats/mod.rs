@@ -24,8 +24,8 @@
 //! undefined for the data (a point that fixes the fit alone, a perfect line,
 //! too few degrees of freedom) are `None`, with the reason available.
 
-pub mod dist;
 pub mod cutoffs;
+pub mod dist;
 mod error;
 pub mod general;
 mod influence;
@@ -38,7 +38,9 @@ mod streaming;
 mod transform;
 
 pub use error::{FitError, check_finite_pairs, check_level};
-pub use influence::{LeaveOneOut, PointInfluence, Undefined, influence, leave_one_out};
+pub use influence::{
+    LeaveOneOut, PointInfluence, Undefined, influence, influence_into, leave_one_out,
+};
 pub use line::{LineFit, fit_line};
 pub use moments::Moments;
 pub use serial::durbin_watson;

@@ -247,7 +247,9 @@ mod tests {
 
     #[test]
     fn newcomer_diagnostics_equal_batch_diagnostics_of_last_point() {
-        let x = [2019.1, 2019.4, 2019.6, 2019.9, 2020.2, 2020.4, 2020.7, 2021.0, 2023.5];
+        let x = [
+            2019.1, 2019.4, 2019.6, 2019.9, 2020.2, 2020.4, 2020.7, 2021.0, 2023.5,
+        ];
         let y = [5.2, 5.0, 5.3, 4.9, 4.8, 4.9, 4.6, 4.7, 9.9];
         let mut st = SeriesState::new();
         let mut last = None;
@@ -276,7 +278,10 @@ mod tests {
         assert!(close(pred.t.unwrap(), got.studentized_residual().unwrap()));
         assert!(close(arrival.slope_p().unwrap(), fit.slope_p.unwrap()));
         let before = fit_line(&x[..8], &y[..8], 0.95).unwrap();
-        assert!(close(arrival.fit_without(0.95).unwrap().slope, before.slope));
+        assert!(close(
+            arrival.fit_without(0.95).unwrap().slope,
+            before.slope
+        ));
     }
 
     #[test]

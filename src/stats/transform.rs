@@ -58,8 +58,16 @@ impl Transform {
 
     /// One point on the fitted scale. `index` names the point in errors.
     pub fn apply(self, index: usize, x: f64, y: f64) -> Result<(f64, f64), FitError> {
-        let tx = if self.logs_x() { ln_positive(index, "x", x)? } else { x };
-        let ty = if self.logs_y() { ln_positive(index, "y", y)? } else { y };
+        let tx = if self.logs_x() {
+            ln_positive(index, "x", x)?
+        } else {
+            x
+        };
+        let ty = if self.logs_y() {
+            ln_positive(index, "y", y)?
+        } else {
+            y
+        };
         Ok((tx, ty))
     }
 
@@ -128,7 +136,11 @@ fn ln_positive(index: usize, axis: &'static str, value: f64) -> Result<f64, FitE
 
 /// All points on the fitted scale; the first non-positive value under a log
 /// is an error naming its 0-based index.
-pub fn transform_points(x: &[f64], y: &[f64], t: Transform) -> Result<(Vec<f64>, Vec<f64>), FitError> {
+pub fn transform_points(
+    x: &[f64],
+    y: &[f64],
+    t: Transform,
+) -> Result<(Vec<f64>, Vec<f64>), FitError> {
     if x.len() != y.len() {
         return Err(FitError::LengthMismatch {
             x_len: x.len(),
@@ -153,7 +165,8 @@ mod tests {
 
     #[test]
     fn log_of_non_positive_value_names_the_point() {
-        let err = transform_points(&[1.0, 2.0, 3.0], &[4.0, 0.0, 1.0], Transform::LogY).unwrap_err();
+        let err =
+            transform_points(&[1.0, 2.0, 3.0], &[4.0, 0.0, 1.0], Transform::LogY).unwrap_err();
         assert_eq!(
             err,
             FitError::NonPositiveForLog {
@@ -163,7 +176,14 @@ mod tests {
             }
         );
         let err = transform_points(&[1.0, -2.0], &[4.0, 1.0], Transform::LogLog).unwrap_err();
-        assert!(matches!(err, FitError::NonPositiveForLog { index: 1, axis: "x", .. }));
+        assert!(matches!(
+            err,
+            FitError::NonPositiveForLog {
+                index: 1,
+                axis: "x",
+                ..
+            }
+        ));
     }
 
     #[test]
@@ -179,7 +199,12 @@ mod tests {
 
     #[test]
     fn names_round_trip() {
-        for t in [Transform::None, Transform::LogY, Transform::LogX, Transform::LogLog] {
+        for t in [
+            Transform::None,
+            Transform::LogY,
+            Transform::LogX,
+            Transform::LogLog,
+        ] {
             assert_eq!(Transform::from_name(t.name()), Some(t));
         }
     }

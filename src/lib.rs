@@ -13,5 +13,6 @@
 #![warn(missing_docs)]
 
 pub mod fitreport;
+pub mod records;
 pub mod stats;
 pub mod table;

@@ -12,7 +12,13 @@
 #![warn(clippy::unwrap_used)]
 #![warn(missing_docs)]
 
+pub mod clock;
+pub mod config;
+pub mod daemon;
 pub mod fitreport;
+pub mod inbox;
+pub mod pipeline;
 pub mod records;
 pub mod stats;
+pub mod store;
 pub mod table;

@@ -12,8 +12,12 @@ use slopewarden::table::read_xy_file;
 
 /// Exit code for input the user must fix (a bad file, a bad argument value).
 const EXIT_BAD_INPUT: u8 = 2;
-/// Exit code when the output could not be written.
+/// Exit code when the output could not be written, or the inbox failed.
 const EXIT_IO: u8 = 1;
+/// Exit code for an invalid configuration.
+const EXIT_CONFIG: u8 = 3;
+/// Exit code when the database cannot be opened or written.
+const EXIT_STORE: u8 = 4;
 
 #[derive(Parser)]
 #[command(
@@ -49,6 +53,72 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Watch the inbox and keep every series' trend current (foreground;
+    /// SIGTERM or Ctrl-C finishes the current file and exits 0).
+    Run {
+        /// Configuration file (TOML); without it, defaults in the current folder.
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Log format on standard output.
+        #[arg(long, value_enum, default_value_t = LogFormat::Text)]
+        log_format: LogFormat,
+    },
+    /// Run the same pipeline once over files or folders, then exit.
+    Ingest {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Log format on standard error.
+        #[arg(long, value_enum, default_value_t = LogFormat::Text)]
+        log_format: LogFormat,
+        /// Files or folders to ingest.
+        #[arg(required = true)]
+        paths: Vec<PathBuf>,
+    },
+    /// Check a configuration file and list every problem in it.
+    CheckConfig {
+        /// The file (default: built-in defaults only).
+        file: Option<PathBuf>,
+    },
+    /// Every series with its current trend.
+    Status {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON list instead of the table.
+        #[arg(long)]
+        json: bool,
+    },
+    /// The current fit of one series with every point's diagnostics.
+    Diagnostics {
+        /// The series key.
+        series: String,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// The same JSON as `fit --json`.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Every fit version of one series, with what triggered it.
+    History {
+        /// The series key.
+        series: String,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON list instead of the table.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+#[derive(Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum LogFormat {
+    /// Human-readable lines.
+    Text,
+    /// One JSON object per line.
+    Json,
 }
 
 #[derive(Clone, Copy, ValueEnum)]
@@ -94,6 +164,359 @@ fn main() -> ExitCode {
             level,
             json,
         } => fit(&file, &x, &y, transform.into(), level, json),
+        Command::Run { config, log_format } => {
+            commands::run(config.as_deref(), log_format == LogFormat::Json)
+        }
+        Command::Ingest {
+            config,
+            log_format,
+            paths,
+        } => commands::ingest(config.as_deref(), log_format == LogFormat::Json, &paths),
+        Command::CheckConfig { file } => commands::check_config(file.as_deref()),
+        Command::Status { config, json } => commands::status(config.as_deref(), json),
+        Command::Diagnostics {
+            series,
+            config,
+            json,
+        } => commands::diagnostics(config.as_deref(), &series, json),
+        Command::History {
+            series,
+            config,
+            json,
+        } => commands::history(config.as_deref(), &series, json),
+    }
+}
+
+mod commands {
+    //! The daemon's commands: load the configuration, open the store, call
+    //! the library, print.
+
+    use std::io::{IsTerminal, Write};
+    use std::path::{Path, PathBuf};
+    use std::process::ExitCode;
+    use std::sync::Arc;
+    use std::sync::atomic::AtomicBool;
+
+    use slopewarden::config::Config;
+    use slopewarden::daemon;
+    use slopewarden::fitreport::analyse;
+    use slopewarden::pipeline::Outcome;
+    use slopewarden::stats::Transform;
+    use slopewarden::store::Store;
+    use slopewarden::table::Columns;
+
+    use super::{EXIT_BAD_INPUT, EXIT_CONFIG, EXIT_IO, EXIT_STORE};
+
+    fn load(config: Option<&Path>) -> Result<Config, ExitCode> {
+        match config {
+            Some(path) => Config::load(path).map_err(|problems| {
+                eprintln!(
+                    "slopewarden: the configuration {} has {} problem(s):",
+                    path.display(),
+                    problems.len()
+                );
+                for p in problems {
+                    eprintln!("  {p}");
+                }
+                ExitCode::from(EXIT_CONFIG)
+            }),
+            None => Ok(Config::defaults_in(Path::new("."))),
+        }
+    }
+
+    fn open(config: &Config) -> Result<Store, ExitCode> {
+        Store::open(&config.database).map_err(|e| {
+            eprintln!("slopewarden: {e}");
+            ExitCode::from(EXIT_STORE)
+        })
+    }
+
+    fn init_logs(json: bool, to_stderr: bool) {
+        let filter = tracing_subscriber::EnvFilter::try_from_env("SLOPEWARDEN_LOG")
+            .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+        let builder = tracing_subscriber::fmt()
+            .with_env_filter(filter)
+            .with_target(false);
+        let result = match (json, to_stderr) {
+            (true, true) => builder.json().with_writer(std::io::stderr).try_init(),
+            (true, false) => builder.json().try_init(),
+            (false, true) => builder.with_writer(std::io::stderr).try_init(),
+            (false, false) => builder.try_init(),
+        };
+        if let Err(e) = result {
+            eprintln!("slopewarden: logging not set up: {e}");
+        }
+    }
+
+    fn stop_flag() -> Arc<AtomicBool> {
+        let stop = Arc::new(AtomicBool::new(false));
+        for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
+            if let Err(e) = signal_hook::flag::register(sig, Arc::clone(&stop)) {
+                eprintln!("slopewarden: cannot catch signal {sig}: {e}");
+            }
+        }
+        stop
+    }
+
+    pub fn run(config: Option<&Path>, json_logs: bool) -> ExitCode {
+        init_logs(json_logs, false);
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let mut store = match open(&config) {
+            Ok(s) => s,
+            Err(code) => return code,
+        };
+        let stop = stop_flag();
+        match daemon::run(&config, &mut store, &stop) {
+            Ok(_) => ExitCode::SUCCESS,
+            Err(daemon::DaemonError::Store(e)) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_IO)
+            }
+        }
+    }
+
+    pub fn ingest(config: Option<&Path>, json_logs: bool, paths: &[PathBuf]) -> ExitCode {
+        init_logs(json_logs, true);
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let mut store = match open(&config) {
+            Ok(s) => s,
+            Err(code) => return code,
+        };
+        let stop = stop_flag();
+        let tty = std::io::stderr().is_terminal();
+        let result = daemon::ingest_paths(
+            &config,
+            &mut store,
+            paths,
+            &stop,
+            |done, total, path, outcome| {
+                if tty {
+                    let mark = match outcome {
+                        Ok(Outcome::Quarantined { .. }) => "quarantined",
+                        Ok(Outcome::Duplicate { .. }) => "already ingested",
+                        Ok(_) => "ok",
+                        Err(_) => "failed",
+                    };
+                    eprint!("\r\x1b[2K[{done}/{total}] {} ({mark})", path.display());
+                    if done == total {
+                        eprintln!();
+                    }
+                }
+            },
+        );
+        match result {
+            Ok(t) => {
+                println!(
+                    "{} file(s) ingested, {} already ingested, {} quarantined, {} failed; {} new record(s)",
+                    t.ingested, t.duplicates, t.quarantined, t.failed, t.records
+                );
+                if t.failed > 0 {
+                    ExitCode::from(EXIT_IO)
+                } else {
+                    ExitCode::SUCCESS
+                }
+            }
+            Err(e) => {
+                eprintln!("slopewarden ingest: {e}");
+                ExitCode::from(EXIT_BAD_INPUT)
+            }
+        }
+    }
+
+    pub fn check_config(file: Option<&Path>) -> ExitCode {
+        match load(file) {
+            Ok(c) => {
+                println!("configuration is valid");
+                println!("  inbox      {}", c.inbox.display());
+                println!("  database   {}", c.database.display());
+                println!("  archive    {}", c.archive.display());
+                println!("  quarantine {}", c.quarantine.display());
+                for f in c.feeds() {
+                    println!("  feed {:<12} files {}", f.name, f.pattern);
+                }
+                ExitCode::SUCCESS
+            }
+            Err(code) => code,
+        }
+    }
+
+    fn print_json(value: &impl serde::Serialize) -> ExitCode {
+        let stdout = std::io::stdout();
+        let mut out = stdout.lock();
+        match serde_json::to_writer_pretty(&mut out, value)
+            .map_err(std::io::Error::other)
+            .and_then(|()| writeln!(out))
+        {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("slopewarden: cannot write the output: {e}");
+                ExitCode::from(EXIT_IO)
+            }
+        }
+    }
+
+    fn opt(v: Option<f64>) -> String {
+        v.map_or("-".into(), |v| format!("{v:.4e}"))
+    }
+
+    pub fn status(config: Option<&Path>, json: bool) -> ExitCode {
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let store = match open(&config) {
+            Ok(s) => s,
+            Err(code) => return code,
+        };
+        let rows = match store.status() {
+            Ok(r) => r,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if json {
+            return print_json(&rows);
+        }
+        if rows.is_empty() {
+            println!(
+                "No series yet: drop record files into {}",
+                config.inbox.display()
+            );
+            return ExitCode::SUCCESS;
+        }
+        println!(
+            "{:<32} {:>8} {:>6} {:>12} {:>25} {:>10}  last arrival",
+            "series", "records", "n", "slope", "CI", "p"
+        );
+        for r in rows {
+            let ci = match (r.slope_ci_low, r.slope_ci_high) {
+                (Some(a), Some(b)) => format!("[{a:.3e}, {b:.3e}]"),
+                _ => "-".into(),
+            };
+            println!(
+                "{:<32} {:>8} {:>6} {:>12} {:>25} {:>10}  {}",
+                r.series,
+                r.records,
+                r.n,
+                opt(r.slope),
+                ci,
+                r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
+                r.last_arrival.unwrap_or_default()
+            );
+        }
+        ExitCode::SUCCESS
+    }
+
+    pub fn diagnostics(config: Option<&Path>, series: &str, json: bool) -> ExitCode {
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let store = match open(&config) {
+            Ok(s) => s,
+            Err(code) => return code,
+        };
+        let (row, points) = match (store.series(series), store.fit_points(series)) {
+            (Ok(Some(row)), Ok(Some(points))) => (row, points),
+            (Ok(None), _) | (_, Ok(None)) => {
+                eprintln!("slopewarden: no series `{series}`; `slopewarden status` lists them");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+            (Err(e), _) | (_, Err(e)) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        let columns = Columns {
+            x: points.iter().map(|p| p.x).collect(),
+            y: points.iter().map(|p| p.y).collect(),
+            lines: (1..=points.len() as u64).collect(),
+            x_column: 1,
+            y_column: 2,
+        };
+        let scale = Transform::from_name(&row.transform).unwrap_or_default();
+        let source = format!(
+            "series {series} (fitted scale: {scale}; non-detects: {})",
+            row.non_detects
+        );
+        let report = match analyse(&source, "x", "y", columns, Transform::None, config.level) {
+            Ok(r) => r,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+        };
+        let stdout = std::io::stdout();
+        let mut out = stdout.lock();
+        let written = if json {
+            report.write_json(&mut out)
+        } else {
+            report.write_text(&mut out)
+        };
+        match written {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("slopewarden: cannot write the output: {e}");
+                ExitCode::from(EXIT_IO)
+            }
+        }
+    }
+
+    pub fn history(config: Option<&Path>, series: &str, json: bool) -> ExitCode {
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let store = match open(&config) {
+            Ok(s) => s,
+            Err(code) => return code,
+        };
+        let rows = match store.history(series) {
+            Ok(Some(r)) => r,
+            Ok(None) => {
+                eprintln!("slopewarden: no series `{series}`; `slopewarden status` lists them");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if json {
+            return print_json(&rows);
+        }
+        println!(
+            "{:>7} {:>6} {:>12} {:>25} {:>10}  {:<20}  trigger",
+            "version", "n", "slope", "CI", "p", "at"
+        );
+        for r in rows {
+            let ci = match (r.slope_ci_low, r.slope_ci_high) {
+                (Some(a), Some(b)) => format!("[{a:.3e}, {b:.3e}]"),
+                _ => "-".into(),
+            };
+            println!(
+                "{:>7} {:>6} {:>12} {:>25} {:>10}  {:<20}  {}",
+                r.version,
+                r.n,
+                opt(r.slope),
+                ci,
+                r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
+                r.created_at,
+                r.trigger_file.unwrap_or_default()
+            );
+        }
+        ExitCode::SUCCESS
     }
 }
 

@@ -42,7 +42,7 @@ pub use influence::{
     LeaveOneOut, PointInfluence, Undefined, influence, influence_into, leave_one_out,
 };
 pub use line::{LineFit, fit_line};
-pub use moments::Moments;
+pub use moments::{Moments, MomentsParts};
 pub use serial::durbin_watson;
 pub use streaming::{Arrival, SeriesState};
 pub use transform::{OriginalUnits, Transform, transform_points};

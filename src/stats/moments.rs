@@ -37,7 +37,56 @@ pub struct Moments {
     sse: f64,
 }
 
+/// The fields of [`Moments`], for storage and exact resumption.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct MomentsParts {
+    /// Number of points.
+    pub n: u64,
+    /// x origin.
+    pub origin: f64,
+    /// Mean of x − origin.
+    pub mean_x: f64,
+    /// Mean of y.
+    pub mean_y: f64,
+    /// Σ(x − x̄)².
+    pub sxx: f64,
+    /// Σ(x − x̄)(y − ȳ).
+    pub sxy: f64,
+    /// Σ(y − ȳ)².
+    pub syy: f64,
+    /// Residual sum of squares.
+    pub sse: f64,
+}
+
 impl Moments {
+    /// The stored fields; `from_parts(m.to_parts()) == m` bit for bit.
+    pub fn to_parts(&self) -> MomentsParts {
+        MomentsParts {
+            n: self.n,
+            origin: self.origin,
+            mean_x: self.mean_x,
+            mean_y: self.mean_y,
+            sxx: self.sxx,
+            sxy: self.sxy,
+            syy: self.syy,
+            sse: self.sse,
+        }
+    }
+
+    /// Rebuilds co-moments from stored fields.
+    pub fn from_parts(p: MomentsParts) -> Moments {
+        Moments {
+            n: p.n,
+            origin: p.origin,
+            mean_x: p.mean_x,
+            mean_y: p.mean_y,
+            sxx: p.sxx,
+            sxy: p.sxy,
+            syy: p.syy,
+            sse: p.sse,
+        }
+    }
+
     /// An empty set.
     pub const fn new() -> Self {
         Moments {

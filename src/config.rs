@@ -1,0 +1,935 @@
+//! Configuration: TOML text -> a validated [`Config`].
+//!
+//! Every key is optional and has a default, so `slopewarden run` with no
+//! file works in the current directory. [`Config::from_toml`] reports every
+//! problem at once, each with its key path and what to write instead; the
+//! daemon refuses to start on any of them.
+//!
+//! Secrets never live in this text: a password is named by an environment
+//! variable or a file (`password_env`, `password_file`), and a literal
+//! `password` key is itself a problem.
+//!
+//! Invariant: no database, no watching, no reading of data files.
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use globset::{Glob, GlobMatcher};
+use toml::{Table, Value};
+
+use crate::records::SeriesId;
+use crate::records::{DateFormat, Layout, Matrix, SeriesKey, SeriesRules, XSource};
+use crate::stats::Transform;
+
+/// One problem in a configuration file.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ConfigProblem {
+    /// Dotted key path, such as `watch.settle_seconds` or `series[2].x_min`.
+    pub key: String,
+    /// What is wrong and what to write instead.
+    pub message: String,
+}
+
+impl fmt::Display for ConfigProblem {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}: {}", self.key, self.message)
+    }
+}
+
+/// How the inbox is watched.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum WatchModeSetting {
+    /// Operating-system change events (inotify), plus the periodic rescan.
+    Native,
+    /// Periodic listing only, for shares where events never arrive.
+    Poll,
+}
+
+/// What to do with a file some of whose rows are refused.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum BadRows {
+    /// Store the good rows, set the bad ones aside with their reasons.
+    SetAside,
+    /// Set the whole file aside.
+    RejectFile,
+}
+
+/// How non-detects enter a fit. Every output states which was used.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum NonDetectPolicy {
+    /// Left out of the fit (the default): no value is invented.
+    Exclude,
+    /// Entered at `fraction` × the reporting limit.
+    Substitute {
+        /// Fraction of the limit, in (0, 1].
+        fraction: f64,
+    },
+}
+
+impl NonDetectPolicy {
+    /// The stored name: `exclude` or `substitute:<fraction>`.
+    pub fn name(&self) -> String {
+        match self {
+            NonDetectPolicy::Exclude => "exclude".into(),
+            NonDetectPolicy::Substitute { fraction } => format!("substitute:{fraction}"),
+        }
+    }
+}
+
+/// Settings of one series.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SeriesSettings {
+    /// The unit values are converted to, if set.
+    pub unit: Option<String>,
+    /// Soil or water: makes ppm/ppb unambiguous.
+    pub matrix: Matrix,
+    /// Scale of the fit.
+    pub transform: Transform,
+    /// Plausible x range, inclusive.
+    pub x_range: Option<(f64, f64)>,
+    /// Whether negative values are plausible (false for concentrations).
+    pub allow_negative: bool,
+    /// Non-detect handling.
+    pub non_detects: NonDetectPolicy,
+}
+
+impl SeriesSettings {
+    /// The validation rules the record parser needs.
+    pub fn rules(&self) -> SeriesRules {
+        SeriesRules {
+            unit: self.unit.clone(),
+            matrix: self.matrix,
+            x_range: self.x_range,
+            allow_negative: self.allow_negative,
+        }
+    }
+}
+
+/// A feed: which files it covers and how they are laid out.
+#[derive(Debug, Clone)]
+pub struct Feed {
+    /// Its name, recorded with each file.
+    pub name: String,
+    /// The glob as written.
+    pub pattern: String,
+    matcher: GlobMatcher,
+    /// The layout of its files.
+    pub layout: Layout,
+}
+
+/// A validated configuration.
+#[derive(Debug, Clone)]
+pub struct Config {
+    /// Folder watched for new files.
+    pub inbox: PathBuf,
+    /// SQLite database file.
+    pub database: PathBuf,
+    /// Where ingested files go (archive/YYYY/MM/).
+    pub archive: PathBuf,
+    /// Where unreadable files go, with a `.reason.txt` beside each.
+    pub quarantine: PathBuf,
+    /// Native events or polling.
+    pub watch_mode: WatchModeSetting,
+    /// A file must keep its size and mtime this long before it is taken.
+    pub settle: Duration,
+    /// Full rescans of the inbox (catches missed events).
+    pub rescan: Duration,
+    /// Polling interval in poll mode.
+    pub poll: Duration,
+    /// Whether subfolders of the inbox are watched.
+    pub subfolders: bool,
+    /// Leave files in the inbox after ingest (read-only inbox).
+    pub keep_files: bool,
+    /// Files larger than this are quarantined unread.
+    pub max_file_bytes: u64,
+    /// Per-file policy for refused rows.
+    pub bad_rows: BadRows,
+    /// Confidence level of intervals and significance.
+    pub level: f64,
+    defaults: SeriesSettings,
+    series: Vec<(GlobMatcher, SeriesOverrides)>,
+    feeds: Vec<Feed>,
+    canonical: Layout,
+}
+
+#[derive(Debug, Clone, Default)]
+struct SeriesOverrides {
+    unit: Option<String>,
+    matrix: Option<Matrix>,
+    transform: Option<Transform>,
+    x_min: Option<f64>,
+    x_max: Option<f64>,
+    allow_negative: Option<bool>,
+    non_detects: Option<NonDetectPolicy>,
+}
+
+impl Config {
+    /// The defaults, with paths relative to `base`.
+    pub fn defaults_in(base: &Path) -> Config {
+        // BUG-proof: an empty table has no problems.
+        match Config::from_table(&Table::new(), base) {
+            Ok(c) => c,
+            Err(p) => unreachable!("BUG: the empty configuration is valid, got {p:?}"),
+        }
+    }
+
+    /// Reads and validates a file; paths in it are relative to its folder.
+    pub fn load(path: &Path) -> Result<Config, Vec<ConfigProblem>> {
+        let text = std::fs::read_to_string(path).map_err(|e| {
+            vec![ConfigProblem {
+                key: path.display().to_string(),
+                message: format!("cannot read the file: {e}"),
+            }]
+        })?;
+        let base = path
+            .parent()
+            .filter(|p| !p.as_os_str().is_empty())
+            .unwrap_or(Path::new("."));
+        Config::from_toml(&text, base)
+    }
+
+    /// Validates TOML text; relative paths are taken from `base`.
+    pub fn from_toml(text: &str, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
+        let table: Table = text.parse().map_err(|e: toml::de::Error| {
+            let at = e
+                .span()
+                .map(|s| {
+                    let line = text[..s.start.min(text.len())].matches('\n').count() + 1;
+                    format!("line {line}")
+                })
+                .unwrap_or_else(|| "file".into());
+            vec![ConfigProblem {
+                key: at,
+                message: format!("not valid TOML: {}", e.message()),
+            }]
+        })?;
+        Config::from_table(&table, base)
+    }
+
+    fn from_table(t: &Table, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
+        let mut w = Walker::default();
+        w.known(
+            t,
+            "",
+            &[
+                "paths",
+                "watch",
+                "ingest",
+                "series_defaults",
+                "series",
+                "feed",
+                "smtp",
+                "mail",
+                "http",
+            ],
+        );
+        let empty = Table::new();
+        let paths = w.table(t, "paths").unwrap_or(&empty);
+        w.known(
+            paths,
+            "paths",
+            &["inbox", "database", "archive", "quarantine"],
+        );
+        let resolve = |p: String| {
+            let p = PathBuf::from(p);
+            if p.is_absolute() { p } else { base.join(p) }
+        };
+        let inbox = resolve(
+            w.string(paths, "paths", "inbox")
+                .unwrap_or_else(|| "inbox".into()),
+        );
+        let database = resolve(
+            w.string(paths, "paths", "database")
+                .unwrap_or_else(|| "data/slopewarden.sqlite3".into()),
+        );
+        let archive = resolve(
+            w.string(paths, "paths", "archive")
+                .unwrap_or_else(|| "data/archive".into()),
+        );
+        let quarantine = resolve(
+            w.string(paths, "paths", "quarantine")
+                .unwrap_or_else(|| "data/quarantine".into()),
+        );
+
+        let watch = w.table(t, "watch").unwrap_or(&empty);
+        w.known(
+            watch,
+            "watch",
+            &[
+                "mode",
+                "settle_seconds",
+                "rescan_seconds",
+                "poll_seconds",
+                "subfolders",
+                "keep_files",
+                "max_file_mb",
+            ],
+        );
+        let watch_mode = match w.string(watch, "watch", "mode").as_deref() {
+            None | Some("native") => WatchModeSetting::Native,
+            Some("poll") => WatchModeSetting::Poll,
+            Some(other) => {
+                w.problem("watch.mode", format!("`{other}` is not a mode; write \"native\" (change events) or \"poll\" (for network shares)"));
+                WatchModeSetting::Native
+            }
+        };
+        let settle = w.seconds(watch, "watch", "settle_seconds", 2.0, 0.0, 3600.0);
+        let rescan = w.seconds(watch, "watch", "rescan_seconds", 60.0, 1.0, 86_400.0);
+        let poll = w.seconds(watch, "watch", "poll_seconds", 10.0, 0.1, 86_400.0);
+        let subfolders = w.boolean(watch, "watch", "subfolders").unwrap_or(false);
+        let keep_files = w.boolean(watch, "watch", "keep_files").unwrap_or(false);
+        let max_file_mb = w
+            .number(watch, "watch", "max_file_mb", Some((1.0, 1_000_000.0)))
+            .unwrap_or(512.0);
+
+        let ingest = w.table(t, "ingest").unwrap_or(&empty);
+        w.known(ingest, "ingest", &["bad_rows", "confidence_level"]);
+        let bad_rows = match w.string(ingest, "ingest", "bad_rows").as_deref() {
+            None | Some("set-aside") => BadRows::SetAside,
+            Some("reject-file") => BadRows::RejectFile,
+            Some(other) => {
+                w.problem("ingest.bad_rows", format!("`{other}` is not a policy; write \"set-aside\" (keep the good rows) or \"reject-file\""));
+                BadRows::SetAside
+            }
+        };
+        let level = w
+            .number(ingest, "ingest", "confidence_level", Some((0.5, 0.9999)))
+            .unwrap_or(0.95);
+        if level >= 1.0 || level <= 0.0 {
+            w.problem(
+                "ingest.confidence_level",
+                "write a level between 0.5 and 0.9999, such as 0.95".into(),
+            );
+        }
+
+        let defaults_table = w.table(t, "series_defaults").unwrap_or(&empty);
+        let d = w.series_overrides(defaults_table, "series_defaults", false);
+        let defaults = SeriesSettings {
+            unit: d.unit.clone(),
+            matrix: d.matrix.unwrap_or(Matrix::Unknown),
+            transform: d.transform.unwrap_or(Transform::None),
+            x_range: range_of(d.x_min, d.x_max),
+            allow_negative: d.allow_negative.unwrap_or(false),
+            non_detects: d.non_detects.unwrap_or(NonDetectPolicy::Exclude),
+        };
+        let mut series = Vec::new();
+        for (i, entry) in w.array_of_tables(t, "series").into_iter().enumerate() {
+            let at = format!("series[{i}]");
+            let pattern = w.string(entry, &at, "match");
+            let o = w.series_overrides(entry, &at, true);
+            match pattern {
+                None => w.problem(
+                    &format!("{at}.match"),
+                    "missing; write a pattern of series keys, e.g. \"MW-*/nitrate\"".into(),
+                ),
+                Some(p) => match Glob::new(&p) {
+                    Ok(g) => series.push((g.compile_matcher(), o)),
+                    Err(e) => w.problem(
+                        &format!("{at}.match"),
+                        format!("`{p}` is not a valid pattern: {e}"),
+                    ),
+                },
+            }
+        }
+
+        let mut feeds = Vec::new();
+        for (i, entry) in w.array_of_tables(t, "feed").into_iter().enumerate() {
+            let at = format!("feed[{i}]");
+            if let Some(feed) = w.feed(entry, &at) {
+                feeds.push(feed);
+            }
+        }
+        if let Some(smtp) = w.table(t, "smtp")
+            && smtp.contains_key("password")
+        {
+            w.problem("smtp.password", "passwords never go in the configuration text; set password_env = \"NAME\" (an environment variable) or password_file = \"/path\"".into());
+        }
+
+        for (key, dir) in [
+            ("paths.archive", &archive),
+            ("paths.quarantine", &quarantine),
+        ] {
+            if dir.starts_with(&inbox) {
+                w.problem(
+                    key,
+                    format!(
+                        "{} lies inside the inbox {}; files moved there would be taken again. Put it beside the inbox",
+                        dir.display(),
+                        inbox.display()
+                    ),
+                );
+            }
+        }
+        if !w.problems.is_empty() {
+            return Err(w.problems);
+        }
+        Ok(Config {
+            inbox,
+            database,
+            archive,
+            quarantine,
+            watch_mode,
+            settle,
+            rescan,
+            poll,
+            subfolders,
+            keep_files,
+            max_file_bytes: (max_file_mb * 1024.0 * 1024.0) as u64,
+            bad_rows,
+            level,
+            defaults,
+            series,
+            feeds,
+            canonical: Layout::default(),
+        })
+    }
+
+    /// The settings of a series: the defaults, overridden by every
+    /// matching `[[series]]` entry in file order.
+    pub fn series_settings(&self, id: &SeriesId) -> SeriesSettings {
+        let mut s = self.defaults.clone();
+        let (mut lo, mut hi) = s.x_range.map_or((None, None), |(a, b)| (Some(a), Some(b)));
+        for (m, o) in &self.series {
+            if !m.is_match(id.as_str()) {
+                continue;
+            }
+            if o.unit.is_some() {
+                s.unit.clone_from(&o.unit);
+            }
+            if let Some(v) = o.matrix {
+                s.matrix = v;
+            }
+            if let Some(v) = o.transform {
+                s.transform = v;
+            }
+            if o.x_min.is_some() {
+                lo = o.x_min;
+            }
+            if o.x_max.is_some() {
+                hi = o.x_max;
+            }
+            if let Some(v) = o.allow_negative {
+                s.allow_negative = v;
+            }
+            if let Some(v) = o.non_detects {
+                s.non_detects = v;
+            }
+        }
+        s.x_range = range_of(lo, hi);
+        s
+    }
+
+    /// The feed whose pattern matches a file (its path relative to the
+    /// inbox), first match wins; the canonical layout otherwise.
+    pub fn feed_for(&self, relative: &Path) -> (&str, &Layout) {
+        let name = relative.file_name().map(Path::new).unwrap_or(relative);
+        for f in &self.feeds {
+            if f.matcher.is_match(relative) || f.matcher.is_match(name) {
+                return (&f.name, &f.layout);
+            }
+        }
+        ("canonical", &self.canonical)
+    }
+
+    /// The configured feeds.
+    pub fn feeds(&self) -> &[Feed] {
+        &self.feeds
+    }
+}
+
+fn range_of(lo: Option<f64>, hi: Option<f64>) -> Option<(f64, f64)> {
+    match (lo, hi) {
+        (None, None) => None,
+        (a, b) => Some((a.unwrap_or(f64::MIN), b.unwrap_or(f64::MAX))),
+    }
+}
+
+/// Walks a TOML table, collecting every problem instead of stopping at the first.
+#[derive(Default)]
+struct Walker {
+    problems: Vec<ConfigProblem>,
+}
+
+fn join(at: &str, key: &str) -> String {
+    if at.is_empty() {
+        key.to_string()
+    } else {
+        format!("{at}.{key}")
+    }
+}
+
+fn type_name(v: &Value) -> &'static str {
+    match v {
+        Value::String(_) => "text",
+        Value::Integer(_) | Value::Float(_) => "a number",
+        Value::Boolean(_) => "true/false",
+        Value::Datetime(_) => "a date",
+        Value::Array(_) => "a list",
+        Value::Table(_) => "a table",
+    }
+}
+
+impl Walker {
+    fn problem(&mut self, key: &str, message: String) {
+        self.problems.push(ConfigProblem {
+            key: key.to_string(),
+            message,
+        });
+    }
+
+    fn known(&mut self, t: &Table, at: &str, keys: &[&str]) {
+        for k in t.keys() {
+            if !keys.contains(&k.as_str()) {
+                let hint = keys
+                    .iter()
+                    .min_by_key(|c| edit_distance(c, k))
+                    .filter(|c| edit_distance(c, k) <= 3)
+                    .map(|c| format!("; did you mean `{}`?", join(at, c)))
+                    .unwrap_or_else(|| format!("; known keys here: {}", keys.join(", ")));
+                self.problem(&join(at, k), format!("unknown key{hint}"));
+            }
+        }
+    }
+
+    fn table<'a>(&mut self, t: &'a Table, key: &str) -> Option<&'a Table> {
+        match t.get(key)? {
+            Value::Table(inner) => Some(inner),
+            other => {
+                self.problem(
+                    key,
+                    format!("expected a table `[{key}]`, found {}", type_name(other)),
+                );
+                None
+            }
+        }
+    }
+
+    fn array_of_tables<'a>(&mut self, t: &'a Table, key: &str) -> Vec<&'a Table> {
+        match t.get(key) {
+            None => Vec::new(),
+            Some(Value::Array(items)) => items
+                .iter()
+                .enumerate()
+                .filter_map(|(i, v)| match v {
+                    Value::Table(inner) => Some(inner),
+                    other => {
+                        self.problem(
+                            &format!("{key}[{i}]"),
+                            format!("expected a table `[[{key}]]`, found {}", type_name(other)),
+                        );
+                        None
+                    }
+                })
+                .collect(),
+            Some(other) => {
+                self.problem(
+                    key,
+                    format!(
+                        "expected tables written `[[{key}]]`, found {}",
+                        type_name(other)
+                    ),
+                );
+                Vec::new()
+            }
+        }
+    }
+
+    fn string(&mut self, t: &Table, at: &str, key: &str) -> Option<String> {
+        match t.get(key)? {
+            Value::String(s) => Some(s.clone()),
+            other => {
+                self.problem(
+                    &join(at, key),
+                    format!("expected text in quotes, found {}", type_name(other)),
+                );
+                None
+            }
+        }
+    }
+
+    fn boolean(&mut self, t: &Table, at: &str, key: &str) -> Option<bool> {
+        match t.get(key)? {
+            Value::Boolean(b) => Some(*b),
+            other => {
+                self.problem(
+                    &join(at, key),
+                    format!("expected true or false, found {}", type_name(other)),
+                );
+                None
+            }
+        }
+    }
+
+    fn number(&mut self, t: &Table, at: &str, key: &str, range: Option<(f64, f64)>) -> Option<f64> {
+        let v = match t.get(key)? {
+            Value::Integer(i) => *i as f64,
+            Value::Float(f) => *f,
+            other => {
+                self.problem(
+                    &join(at, key),
+                    format!("expected a number, found {}", type_name(other)),
+                );
+                return None;
+            }
+        };
+        if !v.is_finite() {
+            self.problem(&join(at, key), "expected a finite number".into());
+            return None;
+        }
+        if let Some((lo, hi)) = range
+            && !(lo..=hi).contains(&v)
+        {
+            self.problem(&join(at, key), format!("{v} is outside {lo}..{hi}"));
+            return None;
+        }
+        Some(v)
+    }
+
+    fn seconds(
+        &mut self,
+        t: &Table,
+        at: &str,
+        key: &str,
+        default: f64,
+        lo: f64,
+        hi: f64,
+    ) -> Duration {
+        Duration::from_secs_f64(self.number(t, at, key, Some((lo, hi))).unwrap_or(default))
+    }
+
+    fn series_overrides(&mut self, t: &Table, at: &str, with_match: bool) -> SeriesOverrides {
+        let mut keys = vec![
+            "unit",
+            "matrix",
+            "transform",
+            "x_min",
+            "x_max",
+            "allow_negative",
+            "non_detects",
+            "substitute_fraction",
+        ];
+        if with_match {
+            keys.push("match");
+        }
+        self.known(t, at, &keys);
+        let matrix = match self.string(t, at, "matrix").as_deref() {
+            None => None,
+            Some("soil") => Some(Matrix::Soil),
+            Some("water") => Some(Matrix::Water),
+            Some("unknown") => Some(Matrix::Unknown),
+            Some(other) => {
+                self.problem(
+                    &join(at, "matrix"),
+                    format!("`{other}` is not a matrix; write \"soil\", \"water\" or \"unknown\""),
+                );
+                None
+            }
+        };
+        let transform = match self.string(t, at, "transform") {
+            None => None,
+            Some(name) => match Transform::from_name(&name) {
+                Some(tr) => Some(tr),
+                None => {
+                    self.problem(&join(at, "transform"), format!("`{name}` is not a transform; write \"none\", \"log-y\", \"log-x\" or \"log-log\""));
+                    None
+                }
+            },
+        };
+        let fraction = self.number(t, at, "substitute_fraction", Some((0.0, 1.0)));
+        let non_detects = match self.string(t, at, "non_detects").as_deref() {
+            None => {
+                if fraction.is_some() {
+                    self.problem(&join(at, "substitute_fraction"), "has no effect unless non_detects = \"substitute\"; add that or remove the fraction".into());
+                }
+                None
+            }
+            Some("exclude") => Some(NonDetectPolicy::Exclude),
+            Some("substitute") => match fraction {
+                Some(f) if f > 0.0 => Some(NonDetectPolicy::Substitute { fraction: f }),
+                _ => {
+                    self.problem(&join(at, "substitute_fraction"), "with non_detects = \"substitute\", state the fraction of the limit, e.g. substitute_fraction = 0.5".into());
+                    None
+                }
+            },
+            Some(other) => {
+                self.problem(&join(at, "non_detects"), format!("`{other}` is not a policy; write \"exclude\" (the default) or \"substitute\" with substitute_fraction"));
+                None
+            }
+        };
+        let x_min = self.number(t, at, "x_min", None);
+        let x_max = self.number(t, at, "x_max", None);
+        if let (Some(a), Some(b)) = (x_min, x_max)
+            && a > b
+        {
+            self.problem(&join(at, "x_max"), format!("x_max {b} is below x_min {a}"));
+        }
+        SeriesOverrides {
+            unit: self.string(t, at, "unit"),
+            matrix,
+            transform,
+            x_min,
+            x_max,
+            allow_negative: self.boolean(t, at, "allow_negative"),
+            non_detects,
+        }
+    }
+
+    fn feed(&mut self, t: &Table, at: &str) -> Option<Feed> {
+        self.known(
+            t,
+            at,
+            &[
+                "name",
+                "files",
+                "delimiter",
+                "decimal_comma",
+                "record_id",
+                "series",
+                "x",
+                "x_date",
+                "date_format",
+                "y",
+                "unit",
+                "sampled_at",
+                "note",
+                "detection_limit",
+                "qualifier",
+            ],
+        );
+        let name = self.string(t, at, "name");
+        let pattern = self.string(t, at, "files");
+        let mut layout = Layout::default();
+        match self.string(t, at, "delimiter").as_deref() {
+            None | Some(",") => {}
+            Some(";") => layout.delimiter = b';',
+            Some("\t") | Some("tab") => layout.delimiter = b'\t',
+            Some(other) => self.problem(
+                &join(at, "delimiter"),
+                format!("`{other}` is not supported; write \",\", \";\" or \"tab\""),
+            ),
+        }
+        layout.decimal_comma = self.boolean(t, at, "decimal_comma").unwrap_or(false);
+        if layout.decimal_comma && layout.delimiter == b',' {
+            self.problem(
+                &join(at, "decimal_comma"),
+                "a decimal comma needs another delimiter; set delimiter = \";\" or \"tab\"".into(),
+            );
+        }
+        if let Some(v) = self.string(t, at, "record_id") {
+            layout.record_id = v;
+        }
+        if let Some(v) = self.string(t, at, "series") {
+            layout.series = if v.contains('{') {
+                SeriesKey::Template(v)
+            } else {
+                SeriesKey::Column(v)
+            };
+        }
+        let x = self.string(t, at, "x");
+        let x_date = self.string(t, at, "x_date");
+        let format = match self.string(t, at, "date_format").as_deref() {
+            None | Some("iso") => DateFormat::Iso,
+            Some("dd.mm.yyyy") | Some("dd/mm/yyyy") => DateFormat::DayMonthYear,
+            Some("mm/dd/yyyy") => DateFormat::MonthDayYear,
+            Some(other) => {
+                self.problem(&join(at, "date_format"), format!("`{other}` is not supported; write \"iso\" (2024-07-02), \"dd.mm.yyyy\" or \"mm/dd/yyyy\""));
+                DateFormat::Iso
+            }
+        };
+        match (x, x_date) {
+            (Some(_), Some(_)) => self.problem(
+                &join(at, "x_date"),
+                "give either x (a numeric column) or x_date (a date column), not both".into(),
+            ),
+            (Some(col), None) => layout.x = XSource::Column(col),
+            (None, Some(col)) => {
+                layout.x = XSource::Date {
+                    column: col,
+                    format,
+                }
+            }
+            (None, None) => {}
+        }
+        if let Some(v) = self.string(t, at, "y") {
+            layout.y = v;
+        }
+        for (key, slot) in [
+            ("unit", &mut layout.unit),
+            ("sampled_at", &mut layout.sampled_at),
+            ("note", &mut layout.note),
+            ("detection_limit", &mut layout.detection_limit),
+            ("qualifier", &mut layout.qualifier),
+        ] {
+            if let Some(v) = self.string(t, at, key) {
+                *slot = Some(v);
+            }
+        }
+        let Some(pattern) = pattern else {
+            self.problem(
+                &join(at, "files"),
+                "missing; write a file-name pattern, e.g. \"lab-b_*.csv\"".into(),
+            );
+            return None;
+        };
+        let matcher = match Glob::new(&pattern) {
+            Ok(g) => g.compile_matcher(),
+            Err(e) => {
+                self.problem(
+                    &join(at, "files"),
+                    format!("`{pattern}` is not a valid pattern: {e}"),
+                );
+                return None;
+            }
+        };
+        Some(Feed {
+            name: name.unwrap_or_else(|| pattern.clone()),
+            pattern,
+            matcher,
+            layout,
+        })
+    }
+}
+
+fn edit_distance(a: &str, b: &str) -> usize {
+    let b: Vec<char> = b.chars().collect();
+    let mut prev: Vec<usize> = (0..=b.len()).collect();
+    for (i, ca) in a.chars().enumerate() {
+        let mut cur = vec![i + 1; b.len() + 1];
+        for (j, cb) in b.iter().enumerate() {
+            cur[j + 1] = (prev[j] + usize::from(ca != *cb))
+                .min(prev[j + 1] + 1)
+                .min(cur[j] + 1);
+        }
+        prev = cur;
+    }
+    prev[b.len()]
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+
+    #[test]
+    fn empty_text_gives_the_documented_defaults() {
+        let c = Config::from_toml("", Path::new("/srv/sw")).unwrap();
+        assert_eq!(c.inbox, Path::new("/srv/sw/inbox"));
+        assert_eq!(c.database, Path::new("/srv/sw/data/slopewarden.sqlite3"));
+        assert_eq!(c.archive, Path::new("/srv/sw/data/archive"));
+        assert_eq!(c.quarantine, Path::new("/srv/sw/data/quarantine"));
+        assert_eq!(c.level, 0.95);
+        assert_eq!(c.bad_rows, BadRows::SetAside);
+        let s = c.series_settings(&SeriesId("MW-1/nitrate".into()));
+        assert_eq!(s.non_detects, NonDetectPolicy::Exclude);
+        assert_eq!(s.transform, Transform::None);
+    }
+
+    #[test]
+    fn reports_every_problem_at_once_with_its_key() {
+        let text = r#"
+            [watch]
+            mode = "sometimes"
+            settle_secnds = 3
+            [ingest]
+            confidence_level = 2
+            [[series]]
+            match = "MW-*"
+            transform = "sqrt"
+            [smtp]
+            password = "hunter2"
+        "#;
+        let problems = Config::from_toml(text, Path::new(".")).unwrap_err();
+        let keys: Vec<&str> = problems.iter().map(|p| p.key.as_str()).collect();
+        assert!(keys.contains(&"watch.mode"), "{keys:?}");
+        assert!(keys.contains(&"watch.settle_secnds"), "{keys:?}");
+        assert!(keys.contains(&"ingest.confidence_level"), "{keys:?}");
+        assert!(keys.contains(&"series[0].transform"), "{keys:?}");
+        assert!(keys.contains(&"smtp.password"), "{keys:?}");
+        let typo = problems
+            .iter()
+            .find(|p| p.key == "watch.settle_secnds")
+            .unwrap();
+        assert!(
+            typo.message.contains("did you mean `watch.settle_seconds`"),
+            "{}",
+            typo.message
+        );
+        // The secret itself never appears in a message.
+        assert!(problems.iter().all(|p| !p.message.contains("hunter2")));
+    }
+
+    #[test]
+    fn later_series_entries_override_earlier_ones() {
+        let text = r#"
+            [series_defaults]
+            unit = "mg/L"
+            [[series]]
+            match = "*-transect/*"
+            transform = "log-y"
+            unit = "mg/kg"
+            matrix = "soil"
+            x_min = 0
+            x_max = 2000
+            [[series]]
+            match = "NE-transect/*"
+            non_detects = "substitute"
+            substitute_fraction = 0.5
+        "#;
+        let c = Config::from_toml(text, Path::new(".")).unwrap();
+        let s = c.series_settings(&SeriesId("NE-transect/lead".into()));
+        assert_eq!(s.transform, Transform::LogY);
+        assert_eq!(s.unit.as_deref(), Some("mg/kg"));
+        assert_eq!(s.x_range, Some((0.0, 2000.0)));
+        assert_eq!(s.non_detects, NonDetectPolicy::Substitute { fraction: 0.5 });
+        let w = c.series_settings(&SeriesId("MW-2/boron".into()));
+        assert_eq!(w.unit.as_deref(), Some("mg/L"));
+        assert_eq!(w.transform, Transform::None);
+    }
+
+    #[test]
+    fn feeds_map_file_names_to_layouts() {
+        let text = r#"
+            [[feed]]
+            name = "lab-b"
+            files = "lab-b_*.csv"
+            delimiter = ";"
+            decimal_comma = true
+            record_id = "SampleID"
+            series = "{site}/{analyte}"
+            x_date = "Date"
+            date_format = "dd.mm.yyyy"
+            y = "Result"
+        "#;
+        let c = Config::from_toml(text, Path::new(".")).unwrap();
+        let (name, layout) = c.feed_for(Path::new("lab-b_2024-07.csv"));
+        assert_eq!(name, "lab-b");
+        assert_eq!(layout.delimiter, b';');
+        assert!(matches!(layout.series, SeriesKey::Template(_)));
+        assert!(matches!(
+            layout.x,
+            XSource::Date {
+                format: DateFormat::DayMonthYear,
+                ..
+            }
+        ));
+        assert_eq!(c.feed_for(Path::new("other.csv")).0, "canonical");
+    }
+
+    #[test]
+    fn refuses_an_archive_inside_the_inbox() {
+        let problems = Config::from_toml(
+            "[paths]\ninbox = \"in\"\narchive = \"in/done\"\n",
+            Path::new("/x"),
+        )
+        .unwrap_err();
+        assert_eq!(problems[0].key, "paths.archive");
+    }
+
+    #[test]
+    fn invalid_toml_names_the_line() {
+        let problems = Config::from_toml("[watch]\nmode = \n", Path::new(".")).unwrap_err();
+        assert_eq!(problems.len(), 1);
+        assert!(problems[0].key.starts_with("line 2"), "{:?}", problems[0]);
+    }
+}

@@ -1,0 +1,267 @@
+//! The watching loop: list the inbox, let files settle, process each ready
+//! file in name order, sleep until a change event, a rescan or a poll.
+//!
+//! Shutdown: SIGTERM and SIGINT set a flag that the loop checks between
+//! files, so the current file finishes (commit, then move) and an unfinished
+//! one stays in the inbox for the next start. The flag is the only shared
+//! state; it is passed in, so tests can set it.
+//!
+//! Invariant: no parsing, statistics or SQL here; this module only decides
+//! when to call [`pipeline::process_file`].
+
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::mpsc::{RecvTimeoutError, sync_channel};
+use std::time::{Duration, Instant, SystemTime};
+
+use thiserror::Error;
+use tracing::{error, info, warn};
+
+use crate::config::{Config, WatchModeSetting};
+use crate::inbox::{
+    self, Candidate, InboxConfig, InboxError, ReadyFile, Settler, Wake, WatchMode, Watcher,
+};
+use crate::pipeline::{self, Outcome, PipelineError};
+use crate::store::{AuditKind, Store};
+
+/// Longest sleep between checks of the shutdown flag.
+const TICK: Duration = Duration::from_millis(250);
+/// Wait after the store fails before trying again.
+const STORE_BACKOFF: Duration = Duration::from_secs(5);
+
+/// Errors that stop the daemon.
+#[derive(Debug, Error)]
+pub enum DaemonError {
+    /// The inbox cannot be watched or listed.
+    #[error(transparent)]
+    Inbox(#[from] InboxError),
+    /// The store failed at start-up.
+    #[error(transparent)]
+    Store(#[from] crate::store::StoreError),
+    /// A folder or file given cannot be used.
+    #[error("{path}: {source}; check that it exists and is readable", path = path.display())]
+    Path {
+        /// The path.
+        path: PathBuf,
+        /// The operating system's reason.
+        source: std::io::Error,
+    },
+}
+
+/// Totals over a run.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct RunTotals {
+    /// Files stored.
+    pub ingested: u64,
+    /// Files skipped as already ingested.
+    pub duplicates: u64,
+    /// Files set aside whole.
+    pub quarantined: u64,
+    /// Records stored for the first time.
+    pub records: u64,
+    /// Files that failed and stayed in the inbox.
+    pub failed: u64,
+}
+
+impl RunTotals {
+    fn count(&mut self, outcome: &Outcome) {
+        match outcome {
+            Outcome::Ingested { counts, .. } => {
+                self.ingested += 1;
+                self.records += counts.new;
+            }
+            Outcome::Duplicate { .. } => self.duplicates += 1,
+            Outcome::Quarantined { .. } => self.quarantined += 1,
+            Outcome::Vanished => {}
+        }
+    }
+}
+
+fn inbox_config(config: &Config) -> InboxConfig {
+    InboxConfig {
+        dir: config.inbox.clone(),
+        recursive: config.subfolders,
+        settle: config.settle,
+        follow_symlinks_inside: true,
+    }
+}
+
+/// Watches the inbox until `stop` is set. The backlog already in the inbox
+/// is taken first (after it settles).
+pub fn run(
+    config: &Config,
+    store: &mut Store,
+    stop: &AtomicBool,
+) -> Result<RunTotals, DaemonError> {
+    std::fs::create_dir_all(&config.inbox).map_err(|source| DaemonError::Path {
+        path: config.inbox.clone(),
+        source,
+    })?;
+    let cfg = inbox_config(config);
+    let (tx, rx) = sync_channel::<Wake>(1);
+    let mode = match config.watch_mode {
+        WatchModeSetting::Native => WatchMode::Native,
+        WatchModeSetting::Poll => WatchMode::Poll {
+            interval: config.poll,
+        },
+    };
+    let _watcher = Watcher::start(&cfg, mode, tx)?;
+    let started = SystemTime::now();
+    store.audit(
+        &crate::clock::rfc3339(started),
+        AuditKind::Lifecycle,
+        "daemon",
+        &format!("started; watching {}", config.inbox.display()),
+    )?;
+    info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
+    let mut settler = Settler::new(config.settle);
+    let mut totals = RunTotals::default();
+    let mut next_scan = Instant::now();
+    let mut dirty = true;
+    while !stop.load(Ordering::SeqCst) {
+        let now = Instant::now();
+        if dirty || now >= next_scan || settler.pending() > 0 {
+            dirty = false;
+            next_scan = now + config.rescan;
+            let listed = match inbox::list_candidates(&cfg) {
+                Ok(l) => l,
+                Err(e) => {
+                    error!(error = %e, "cannot list the inbox; retrying");
+                    Vec::new()
+                }
+            };
+            let ready = settler.observe(listed, Instant::now());
+            for file in ready {
+                if stop.load(Ordering::SeqCst) {
+                    break;
+                }
+                match pipeline::process_file(config, store, &file, SystemTime::now()) {
+                    Ok(outcome) => totals.count(&outcome),
+                    Err(e) => {
+                        totals.failed += 1;
+                        // The file stays; forget it so it is tried again.
+                        settler.forget(&file.path);
+                        error!(file = %file.relative.display(), error = %e, "file left in the inbox; will retry");
+                        if matches!(e, PipelineError::Store(_)) {
+                            sleep_unless_stopped(STORE_BACKOFF, stop);
+                        }
+                    }
+                }
+            }
+        }
+        let wait = if settler.pending() > 0 {
+            TICK.min(config.settle)
+        } else {
+            TICK
+        };
+        match rx.recv_timeout(wait) {
+            Ok(Wake::Changed) => dirty = true,
+            Ok(Wake::Error(e)) => {
+                warn!(error = %e, "watch error; the periodic rescan continues");
+                dirty = true;
+            }
+            Err(RecvTimeoutError::Timeout) => {}
+            Err(RecvTimeoutError::Disconnected) => {
+                warn!("the watcher stopped; falling back to rescans");
+                std::thread::sleep(TICK);
+            }
+        }
+    }
+    info!(?totals, "stopping: the current file was finished");
+    store.audit(
+        &crate::clock::rfc3339(SystemTime::now()),
+        AuditKind::Lifecycle,
+        "daemon",
+        &format!(
+            "stopped; this run: {} files ingested, {} duplicates, {} quarantined, {} new records",
+            totals.ingested, totals.duplicates, totals.quarantined, totals.records
+        ),
+    )?;
+    Ok(totals)
+}
+
+fn sleep_unless_stopped(total: Duration, stop: &AtomicBool) {
+    let until = Instant::now() + total;
+    while Instant::now() < until && !stop.load(Ordering::SeqCst) {
+        std::thread::sleep(TICK);
+    }
+}
+
+/// Runs the pipeline once over the given files and folders (a folder's
+/// files in name order, subfolders when configured), then returns. Files
+/// inside the configured inbox move to the archive as usual; files
+/// elsewhere stay where they are. `progress` is called after each file.
+pub fn ingest_paths(
+    config: &Config,
+    store: &mut Store,
+    paths: &[PathBuf],
+    stop: &AtomicBool,
+    mut progress: impl FnMut(usize, usize, &Path, &Result<Outcome, PipelineError>),
+) -> Result<RunTotals, DaemonError> {
+    let mut files: Vec<(Candidate, bool)> = Vec::new();
+    for p in paths {
+        let meta = std::fs::metadata(p).map_err(|source| DaemonError::Path {
+            path: p.clone(),
+            source,
+        })?;
+        if meta.is_dir() {
+            let cfg = InboxConfig {
+                dir: p.clone(),
+                recursive: config.subfolders,
+                settle: Duration::ZERO,
+                follow_symlinks_inside: true,
+            };
+            let inside = same_folder(p, &config.inbox);
+            files.extend(
+                inbox::list_candidates(&cfg)?
+                    .into_iter()
+                    .map(|c| (c, inside)),
+            );
+        } else {
+            let inside = p.parent().is_some_and(|d| same_folder(d, &config.inbox));
+            let relative = PathBuf::from(p.file_name().unwrap_or(p.as_os_str()));
+            files.push((
+                Candidate {
+                    path: p.clone(),
+                    relative,
+                    size: meta.len(),
+                    modified: meta.modified().unwrap_or(SystemTime::UNIX_EPOCH),
+                },
+                inside,
+            ));
+        }
+    }
+    let mut totals = RunTotals::default();
+    let total = files.len();
+    let mut keep_config = config.clone();
+    keep_config.keep_files = true;
+    for (i, (c, inside)) in files.into_iter().enumerate() {
+        if stop.load(Ordering::SeqCst) {
+            break;
+        }
+        let cfg = if inside { config } else { &keep_config };
+        let file = ReadyFile {
+            path: c.path.clone(),
+            relative: c.relative.clone(),
+            size: c.size,
+            modified: c.modified,
+        };
+        let result = pipeline::process_file(cfg, store, &file, SystemTime::now());
+        match &result {
+            Ok(o) => totals.count(o),
+            Err(e) => {
+                totals.failed += 1;
+                error!(file = %c.path.display(), error = %e, "file not ingested");
+            }
+        }
+        progress(i + 1, total, &c.path, &result);
+    }
+    Ok(totals)
+}
+
+fn same_folder(a: &Path, b: &Path) -> bool {
+    match (a.canonicalize(), b.canonicalize()) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => false,
+    }
+}

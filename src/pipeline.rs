@@ -1,0 +1,533 @@
+//! One file through the whole path, top to bottom: read and hash, parse and
+//! validate, load each touched series' state, refit, then ONE transaction
+//! (file, records, refused rows, fit rows, series states, audit), then move
+//! the file out of the inbox.
+//!
+//! Exactly once: a file's content hash is stored in the same transaction as
+//! its records, and the file leaves the inbox only after that commit. A crash
+//! before the commit leaves the file in the inbox with nothing stored; a
+//! crash after it leaves a file whose hash is known, which the next pass
+//! skips and moves. A record id already stored with identical values is
+//! counted as the same record, never twice; with other values it is kept
+//! aside as a proposed version (a conflict), never overwriting.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::time::SystemTime;
+
+use thiserror::Error;
+use tracing::{debug, info, info_span, warn};
+
+use crate::clock;
+use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
+use crate::inbox::{self, InboxError, ReadyFile};
+use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
+use crate::stats::robust::{mann_kendall, theil_sen};
+use crate::stats::{Arrival, LineFit, SeriesState, Transform};
+use crate::store::{
+    AuditKind, FileCounts, FileOutcome, NewFile, NewFit, RecordPlacement, RobustRow, SeriesRow,
+    Store, StoreError,
+};
+
+/// The robust slope is recomputed (from all points) when a series has
+/// grown by this factor since the last computation, so its total cost stays
+/// within a small multiple of one computation at the final size.
+const ROBUST_GROWTH: f64 = 2.0;
+
+/// What happened to one file.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Outcome {
+    /// Stored; `counts` says how many records were new, the same, in
+    /// conflict or refused.
+    Ingested {
+        /// Record counts.
+        counts: FileCounts,
+        /// Series refitted.
+        refits: usize,
+        /// Where the file went (None in keep-files mode).
+        moved_to: Option<PathBuf>,
+    },
+    /// The same content was ingested before; nothing stored again.
+    Duplicate {
+        /// The first file with this content.
+        first: String,
+        /// Where the file went.
+        moved_to: Option<PathBuf>,
+    },
+    /// The whole file was set aside.
+    Quarantined {
+        /// Why.
+        reason: String,
+        /// Where it went.
+        moved_to: Option<PathBuf>,
+    },
+    /// The file disappeared before it could be read; nothing to do.
+    Vanished,
+}
+
+/// Errors that stop processing of the file (it stays in the inbox and is
+/// retried later): the store failing, or a move failing after the commit.
+#[derive(Debug, Error)]
+pub enum PipelineError {
+    /// The database failed; nothing of this file was stored.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    /// Reading or moving the file failed.
+    #[error(transparent)]
+    Inbox(#[from] InboxError),
+}
+
+/// Processes one settled file.
+pub fn process_file(
+    config: &Config,
+    store: &mut Store,
+    file: &ReadyFile,
+    now: SystemTime,
+) -> Result<Outcome, PipelineError> {
+    let span = info_span!("file", file = %file.relative.display());
+    let _enter = span.enter();
+    let at = clock::rfc3339(now);
+    let name = file.relative.to_string_lossy().into_owned();
+    let (sha, size, bytes) = match inbox::sha256_file(&file.path, config.max_file_bytes) {
+        Ok(v) => v,
+        Err(InboxError::Vanished { .. }) => {
+            debug!("file vanished before it was read");
+            return Ok(Outcome::Vanished);
+        }
+        Err(InboxError::TooLarge { size, max, .. }) => {
+            let reason = format!(
+                "the file is {size} bytes, above the limit of {max} bytes (watch.max_file_mb); split it or raise the limit"
+            );
+            return quarantine_whole(config, store, file, &name, "", 0, &reason, now, &at);
+        }
+        Err(e) => return Err(e.into()),
+    };
+    if let Some(first) = store.file_by_hash(&sha)? {
+        info!(first = %first.name, "same content already ingested; skipped");
+        store.audit(
+            &at,
+            AuditKind::FileDuplicate,
+            &name,
+            &format!(
+                "sha256 {sha}; same content as {} ingested {}; nothing stored again",
+                first.name, first.arrived_at
+            ),
+        )?;
+        let moved_to = move_done(config, file, now)?;
+        return Ok(Outcome::Duplicate {
+            first: first.name,
+            moved_to,
+        });
+    }
+    let (feed, layout) = config.feed_for(&file.relative);
+    let (year, month, day, _) = clock::civil(now);
+    let today = Today { year, month, day };
+    let rules = |id: &SeriesId| config.series_settings(id).rules();
+    let parsed = match records::parse_file(&bytes, layout, &rules, today) {
+        Ok(p) => p,
+        Err(e) => {
+            let reason = format!("{e}");
+            return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+        }
+    };
+    if !parsed.errors.is_empty() && config.bad_rows == BadRows::RejectFile {
+        let mut reason = format!(
+            "{} row(s) refused and ingest.bad_rows = \"reject-file\"; fix them and deliver the file again:\n",
+            parsed.errors.len()
+        );
+        for e in &parsed.errors {
+            reason.push_str(&format!("  {e}\n"));
+        }
+        return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+    }
+    let (counts, refits) = store_file(config, store, &name, &sha, size, feed, parsed, &at)?;
+    info!(
+        new = counts.new,
+        same = counts.same,
+        conflict = counts.conflict,
+        bad = counts.bad,
+        refits,
+        "file committed"
+    );
+    let moved_to = move_done(config, file, now)?;
+    Ok(Outcome::Ingested {
+        counts,
+        refits,
+        moved_to,
+    })
+}
+
+fn move_done(
+    config: &Config,
+    file: &ReadyFile,
+    now: SystemTime,
+) -> Result<Option<PathBuf>, PipelineError> {
+    if config.keep_files {
+        return Ok(None);
+    }
+    match inbox::move_to_archive(&file.path, &config.archive, now) {
+        Ok(p) => Ok(Some(p)),
+        Err(InboxError::Vanished { .. }) => Ok(None),
+        Err(e) => Err(e.into()),
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn quarantine_whole(
+    config: &Config,
+    store: &mut Store,
+    file: &ReadyFile,
+    name: &str,
+    sha: &str,
+    size: u64,
+    reason: &str,
+    now: SystemTime,
+    at: &str,
+) -> Result<Outcome, PipelineError> {
+    warn!(reason, "file quarantined");
+    let tx = store.begin()?;
+    // A file too large to read has no hash; record it under a name-based
+    // key so that the reason is still on file.
+    let key = if sha.is_empty() {
+        format!("unread:{name}:{at}")
+    } else {
+        sha.to_string()
+    };
+    let id = tx.insert_file(&NewFile {
+        name,
+        sha256: &key,
+        size,
+        arrived_at: at,
+        feed: config.feed_for(&file.relative).0,
+    })?;
+    tx.finish_file(
+        id,
+        FileOutcome::Quarantined,
+        FileCounts::default(),
+        Some(reason),
+    )?;
+    tx.append_audit(at, AuditKind::FileQuarantined, name, reason)?;
+    tx.commit()?;
+    let moved_to = if config.keep_files {
+        None
+    } else {
+        let text = format!(
+            "slopewarden set this file aside on {at}.\n\nWhy: {reason}\n\nWhat to do: correct the file and drop the corrected copy into the inbox; nothing from this file was stored.\n"
+        );
+        match inbox::move_to_quarantine(&file.path, &config.quarantine, now, &text) {
+            Ok(p) => Some(p),
+            Err(InboxError::Vanished { .. }) => None,
+            Err(e) => return Err(e.into()),
+        }
+    };
+    Ok(Outcome::Quarantined {
+        reason: reason.to_string(),
+        moved_to,
+    })
+}
+
+/// A series touched by the file: its row, streaming state and the arrivals.
+struct Touched {
+    row: SeriesRow,
+    settings: SeriesSettings,
+    state: SeriesState,
+    changed: bool,
+}
+
+#[allow(clippy::too_many_arguments)]
+fn store_file(
+    config: &Config,
+    store: &mut Store,
+    name: &str,
+    sha: &str,
+    size: u64,
+    feed: &str,
+    parsed: records::ParsedFile,
+    at: &str,
+) -> Result<(FileCounts, usize), PipelineError> {
+    let tx = store.begin()?;
+    let file_id = tx.insert_file(&NewFile {
+        name,
+        sha256: sha,
+        size,
+        arrived_at: at,
+        feed,
+    })?;
+    let mut counts = FileCounts {
+        bad: parsed.errors.len() as u64,
+        ..FileCounts::default()
+    };
+    for e in &parsed.errors {
+        tx.insert_bad_row(file_id, e)?;
+    }
+    let mut touched: HashMap<String, Touched> = HashMap::new();
+    let mut order: Vec<String> = Vec::new();
+    for record in &parsed.records {
+        let key = record.series.as_str();
+        if !touched.contains_key(key) {
+            let settings = config.series_settings(&record.series);
+            let row = match tx.series(key)? {
+                Some(row) => row,
+                None => tx.create_series(
+                    key,
+                    settings.unit.as_deref(),
+                    settings.transform.name(),
+                    &settings.non_detects.name(),
+                )?,
+            };
+            let state = SeriesState::from_moments(row.moments);
+            touched.insert(
+                key.to_string(),
+                Touched {
+                    row,
+                    settings,
+                    state,
+                    changed: false,
+                },
+            );
+            order.push(key.to_string());
+        }
+        let Some(t) = touched.get_mut(key) else {
+            unreachable!("BUG: the series was inserted just above");
+        };
+        let joins = t.row.fit_version + 1;
+        let fit_point = match fit_point(record, &t.settings) {
+            Ok(p) => p,
+            Err(reason) => {
+                // A value the fit cannot take (zero under a log): set the
+                // row aside like any refused row.
+                let e = RecordError {
+                    line: record.line,
+                    column: None,
+                    field: None,
+                    record_id: Some(record.record_id.clone()),
+                    reason,
+                    raw: record.raw.clone(),
+                };
+                tx.insert_bad_row(file_id, &e)?;
+                counts.bad += 1;
+                continue;
+            }
+        };
+        let mut probe = t.state;
+        let arrival: Option<Arrival> = match fit_point {
+            Some((fx, fy)) => match probe.add(fx, fy) {
+                Ok(a) => Some(a),
+                Err(err) => {
+                    // Validated records are finite; a transform could still
+                    // overflow. Set the row aside rather than guess.
+                    let e = RecordError {
+                        line: record.line,
+                        column: None,
+                        field: None,
+                        record_id: Some(record.record_id.clone()),
+                        reason: format!("the value cannot enter the fit: {err}"),
+                        raw: record.raw.clone(),
+                    };
+                    tx.insert_bad_row(file_id, &e)?;
+                    counts.bad += 1;
+                    continue;
+                }
+            },
+            None => None,
+        };
+        let placement = RecordPlacement {
+            fit_point,
+            arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
+        };
+        match tx.insert_current(record, t.row.id, file_id, placement)? {
+            Some(_) => {
+                counts.new += 1;
+                t.row.records += 1;
+                if record.y.is_censored() {
+                    t.row.censored += 1;
+                }
+                t.row.last_arrival = Some(at.to_string());
+                if arrival.is_some() {
+                    t.state = probe;
+                    t.changed = true;
+                }
+            }
+            None => {
+                let Some((stored, max_version)) = tx.current_record(&record.record_id)? else {
+                    unreachable!("BUG: the insert was ignored because a current version exists");
+                };
+                let same = stored.series == key
+                    && stored.x == record.x
+                    && stored.y == record.y.number()
+                    && stored.censored == record.y.is_censored();
+                if same {
+                    counts.same += 1;
+                } else if !tx.has_proposal(
+                    &record.record_id,
+                    record.x,
+                    record.y.number(),
+                    record.y.is_censored(),
+                )? {
+                    counts.conflict += 1;
+                    tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+                    tx.append_audit(
+                        at,
+                        AuditKind::Conflict,
+                        &record.record_id,
+                        &format!(
+                            "{name} line {}: record {} resubmitted with other values (stored: series {}, x {}, y {}; new: series {}, x {}, y {}); kept as proposed version {}, the stored version is unchanged",
+                            record.line,
+                            record.record_id,
+                            stored.series,
+                            stored.x,
+                            stored.y,
+                            key,
+                            record.x,
+                            record.y.number(),
+                            max_version + 1
+                        ),
+                    )?;
+                } else {
+                    counts.same += 1;
+                }
+            }
+        }
+    }
+    let mut refits = 0;
+    for key in &order {
+        let Some(t) = touched.get_mut(key) else {
+            continue;
+        };
+        if t.changed {
+            refits += 1;
+            t.row.fit_version += 1;
+            t.row.moments = *t.state.moments();
+            let fit = t.state.fit(config.level);
+            let n = t.state.n() as i64;
+            let robust = if n >= 3 && (n as f64) >= ROBUST_GROWTH * (t.row.robust_n as f64) {
+                let points = tx_points(&tx, &t.row)?;
+                let r = robust_row(&points, config.level);
+                if r.is_some() {
+                    t.row.robust_n = n;
+                }
+                r
+            } else {
+                None
+            };
+            let note = match (&fit, &robust) {
+                (Err(e), _) => Some(format!("no fit yet: {e}")),
+                (Ok(_), None) => Some(format!(
+                    "robust slope not recomputed at this version (last at n = {})",
+                    t.row.robust_n
+                )),
+                _ => None,
+            };
+            tx.insert_fit(&NewFit {
+                series: t.row.id,
+                version: t.row.fit_version,
+                trigger_file: Some(file_id),
+                created_at: at,
+                transform: t.settings.transform.name(),
+                non_detects: &t.settings.non_detects.name(),
+                n_censored: t.row.censored,
+                n,
+                level: config.level,
+                fit: fit.as_ref().ok(),
+                robust,
+                note,
+            })?;
+            tx.append_audit(
+                at,
+                AuditKind::Refit,
+                key,
+                &refit_detail(name, &t.row, fit.as_ref().ok()),
+            )?;
+        }
+        tx.save_series(&t.row)?;
+    }
+    let outcome = if counts.bad > 0 {
+        FileOutcome::Partial
+    } else {
+        FileOutcome::Ingested
+    };
+    tx.finish_file(file_id, outcome, counts, None)?;
+    tx.append_audit(
+        at,
+        AuditKind::FileIngested,
+        name,
+        &format!(
+            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted",
+            counts.new, counts.same, counts.conflict, counts.bad
+        ),
+    )?;
+    tx.commit()?;
+    Ok((counts, refits))
+}
+
+fn refit_detail(file: &str, row: &SeriesRow, fit: Option<&LineFit>) -> String {
+    match fit {
+        Some(f) => format!(
+            "version {} after {file}: n = {}, slope {} (CI {} to {}), p {}",
+            row.fit_version,
+            f.n,
+            f.slope,
+            f.slope_ci_low,
+            f.slope_ci_high,
+            f.slope_p.map_or("undefined".into(), |p| p.to_string())
+        ),
+        None => format!(
+            "version {} after {file}: n = {}, no fit yet",
+            row.fit_version,
+            row.moments.n()
+        ),
+    }
+}
+
+/// The point a record contributes to its series' fit, on the fitted scale;
+/// `None` for a non-detect left out by policy.
+fn fit_point(record: &Record, settings: &SeriesSettings) -> Result<Option<(f64, f64)>, String> {
+    let y = match (record.y, settings.non_detects) {
+        (Measure::Detected(v), _) => v,
+        (Measure::NonDetect { .. }, NonDetectPolicy::Exclude) => return Ok(None),
+        (Measure::NonDetect { limit }, NonDetectPolicy::Substitute { fraction }) => {
+            fraction * limit
+        }
+    };
+    if settings.transform == Transform::None {
+        return Ok(Some((record.x, y)));
+    }
+    settings
+        .transform
+        .apply(0, record.x, y)
+        .map(Some)
+        .map_err(|_| {
+            format!(
+                "record {} (x = {}, y = {}) cannot enter the {} fit of series {}: a logarithm needs a positive value; check the value, or change the series' transform",
+                record.record_id,
+                record.x,
+                y,
+                settings.transform.name(),
+                record.series
+            )
+        })
+}
+
+fn tx_points(tx: &crate::store::Tx<'_>, row: &SeriesRow) -> Result<Vec<(f64, f64)>, StoreError> {
+    tx.fit_points(row.id)
+}
+
+fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {
+    let (x, y): (Vec<f64>, Vec<f64>) = points.iter().copied().unzip();
+    let ts = theil_sen(&x, &y, level).ok()?;
+    let mk = mann_kendall(&x, &y).ok()?;
+    Some(RobustRow {
+        slope: ts.slope,
+        ci_low: ts.ci_low,
+        ci_high: ts.ci_high,
+        mk_s: mk.s,
+        mk_p: mk.p,
+    })
+}
+
+/// The path of a file relative to the inbox, for display and storage.
+pub fn relative_to(inbox: &Path, path: &Path) -> PathBuf {
+    path.strip_prefix(inbox)
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|_| path.to_path_buf())
+}

@@ -1,0 +1,785 @@
+//! [`parse_file`]: one delivered file's bytes -> records and per-row
+//! errors.
+//!
+//! # A whole file, or one row
+//!
+//! A problem refuses the whole file ([`FileError`]) only when no row of it
+//! can be trusted: the bytes are not UTF-8 text (a NUL byte anywhere, or
+//! invalid UTF-8), there is no header, a required column is missing, a
+//! mapped column is named twice, or a quote opened in the last row is never
+//! closed (everything after it would be one field; a file cut off in
+//! transfer looks exactly like this, so it is not half-ingested).
+//!
+//! Everything else refuses one row ([`RecordError`]) and the rest of the
+//! file is read. A stray quote that is closed further down swallows the
+//! lines between into one row; that row is refused (as ragged, or because
+//! a field holds lines with a full row's worth of delimiters) and its raw
+//! text holds all of those lines, so nothing disappears unreported. Rows
+//! whose cells are all empty (blank lines, `,,,` left by spreadsheets) are
+//! skipped.
+//!
+//! # Order of the checks in a row
+//!
+//! One error per row, the first found, in this order: field count; a
+//! quoted field that swallowed what look like whole rows; record_id (empty, repeated in the file); series key; x (a number, or a
+//! date that exists and is not in the future; then the series' plausible
+//! range); y (a number or a non-detect; not negative unless allowed; a
+//! non-detect's limit > 0); the unit conversion; sampled_at (only when it
+//! reads as an ISO date: then it must exist and not be in the future; other
+//! text is kept as written).
+//!
+//! A repeated record_id is counted from the first row that carries it, even
+//! when that row was refused for another reason: which of the two is the
+//! real record is for people to say.
+//!
+//! # Columns
+//!
+//! Header names are trimmed and matched exactly. Every column not mapped to
+//! a field of [`Record`] is kept in `attributes`, including the qualifier
+//! and detection-limit columns (a qualifier such as `J`, estimated, is
+//! information the store keeps). Unnamed columns are kept as `column N`
+//! when the cell is not empty.
+//!
+//! # Cost
+//!
+//! Column positions are resolved once from the header; rows are read into
+//! one reused record; the caller's rules are asked once per series; the
+//! allocations per row are the strings a [`Record`] owns.
+
+use std::collections::HashMap;
+use std::rc::Rc;
+
+use thiserror::Error;
+
+use super::dates::{self, DateProblem, DateTime};
+use super::layout::{DateFormat, Layout, SeriesKey, SeriesRules, Today, XSource};
+use super::model::{Measure, Record, RecordError, SeriesId};
+use super::numbers::{self, MeasureProblem, Written};
+use super::rows::{Row, Rows, count_breaks};
+use super::units;
+
+/// What one file yielded: the rows that passed, and why the others did not,
+/// both in file order.
+#[derive(Debug, Clone, PartialEq, Default)]
+pub struct ParsedFile {
+    /// Validated records.
+    pub records: Vec<Record>,
+    /// Refused rows, one error each.
+    pub errors: Vec<RecordError>,
+}
+
+/// Why a file cannot be read as records at all (it goes to quarantine).
+#[derive(Debug, Clone, PartialEq, Eq, Error)]
+pub enum FileError {
+    /// Binary content, or text that is not UTF-8.
+    #[error("the file is not UTF-8 text: {reason}")]
+    NotText {
+        /// What was found and where (byte offset, line), and what to do.
+        reason: String,
+    },
+    /// The file is empty or holds only blank lines.
+    #[error(
+        "the file has no header line; its first line must name the columns (e.g. record_id,series,x,y)"
+    )]
+    NoHeader,
+    /// Required columns are absent from the header.
+    #[error(
+        "required column(s) {} not in the header (it has: {}); rename the columns, or set the feed's layout in the config",
+        .missing.join(", "),
+        .found.join(", ")
+    )]
+    MissingColumns {
+        /// The required columns not found.
+        missing: Vec<String>,
+        /// The header's names, trimmed.
+        found: Vec<String>,
+    },
+    /// The CSV structure is broken beyond one row.
+    #[error("line {line}: {reason}")]
+    Malformed {
+        /// The line where the problem starts.
+        line: u64,
+        /// What is wrong and what to do.
+        reason: String,
+    },
+}
+
+/// Reads one delivered file: `layout` says where the fields are, `rules`
+/// gives each series' checks (called once per series met), `today` dates
+/// the check for future dates.
+///
+/// Never panics, whatever the bytes.
+pub fn parse_file(
+    bytes: &[u8],
+    layout: &Layout,
+    rules: &dyn Fn(&SeriesId) -> SeriesRules,
+    today: Today,
+) -> Result<ParsedFile, FileError> {
+    let text = check_text(bytes)?;
+    let mut rows = Rows::new(text, layout.delimiter);
+    let (header_line, names) = loop {
+        match rows.next_row()? {
+            None => return Err(FileError::NoHeader),
+            Some(row) if is_blank(&row) => continue,
+            Some(row) => {
+                let names: Vec<String> = row.fields.iter().map(|f| f.trim().to_string()).collect();
+                break (row.line, names);
+            }
+        }
+    };
+    let mut checker = Checker {
+        cols: Columns::resolve(names, layout, header_line)?,
+        delimiter: layout.delimiter,
+        decimal_comma: layout.decimal_comma,
+        rules,
+        today,
+        last_allowed_day: dates::last_allowed_day(today),
+        seen: HashMap::new(),
+        series_rules: HashMap::new(),
+    };
+    let mut out = ParsedFile::default();
+    while let Some(row) = rows.next_row()? {
+        if is_blank(&row) {
+            continue;
+        }
+        match checker.check(&row) {
+            Ok(record) => out.records.push(record),
+            Err(fault) => out.errors.push(checker.error(&row, fault)),
+        }
+    }
+    Ok(out)
+}
+
+const BOM: &[u8] = b"\xEF\xBB\xBF";
+
+/// The file's text without its BOM, or why it is not text.
+fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
+    if bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF") {
+        return Err(FileError::NotText {
+            reason: "it starts with a UTF-16 byte-order mark; export or save it as UTF-8".into(),
+        });
+    }
+    if let Some(at) = bytes.iter().position(|&b| b == 0) {
+        let line = 1 + count_breaks(bytes.get(..at).unwrap_or_default());
+        return Err(FileError::NotText {
+            reason: format!(
+                "a NUL byte at byte offset {at} (line {line}) shows binary content (a spreadsheet workbook, an archive, a damaged transfer); export the data as CSV in UTF-8"
+            ),
+        });
+    }
+    let body = bytes.strip_prefix(BOM).unwrap_or(bytes);
+    std::str::from_utf8(body).map_err(|e| {
+        let at = e.valid_up_to();
+        let line = 1 + count_breaks(body.get(..at).unwrap_or_default());
+        FileError::NotText {
+            reason: format!(
+                "invalid UTF-8 at byte offset {} (line {line}); the file may be in Latin-1 or Windows-1252: save it as UTF-8",
+                at + (bytes.len() - body.len())
+            ),
+        }
+    })
+}
+
+fn is_blank(row: &Row<'_>) -> bool {
+    row.fields.iter().all(|f| f.trim().is_empty())
+}
+
+/// Where each field is, resolved once from the header (0-based indices).
+struct Columns {
+    names: Vec<String>,
+    record_id: usize,
+    series: SeriesColumns,
+    x: usize,
+    x_date: Option<DateFormat>,
+    y: usize,
+    unit: Option<usize>,
+    sampled_at: Option<usize>,
+    note: Option<usize>,
+    detection_limit: Option<usize>,
+    qualifier: Option<usize>,
+    /// (index, name, keep when empty).
+    attributes: Vec<(usize, String, bool)>,
+}
+
+enum SeriesColumns {
+    Column(usize),
+    Template { pieces: Vec<Piece>, text: String },
+}
+
+enum Piece {
+    Text(String),
+    Column(usize),
+}
+
+impl Columns {
+    fn resolve(names: Vec<String>, layout: &Layout, header_line: u64) -> Result<Self, FileError> {
+        let mut missing: Vec<String> = Vec::new();
+        let find = |name: &str| -> Result<Option<usize>, FileError> {
+            let mut hits = names.iter().enumerate().filter(|(_, n)| *n == name);
+            match (hits.next(), hits.next()) {
+                (None, _) => Ok(None),
+                (Some((i, _)), None) => Ok(Some(i)),
+                (Some((i, _)), Some((j, _))) => Err(FileError::Malformed {
+                    line: header_line,
+                    reason: format!(
+                        "column `{name}` appears twice in the header (columns {} and {}); rename one of them",
+                        i + 1,
+                        j + 1
+                    ),
+                }),
+            }
+        };
+        let mut required = |name: &str| -> Result<usize, FileError> {
+            match find(name)? {
+                Some(i) => Ok(i),
+                None => {
+                    if !missing.iter().any(|m| m == name) {
+                        missing.push(name.to_string());
+                    }
+                    Ok(0)
+                }
+            }
+        };
+        let record_id = required(&layout.record_id)?;
+        let series = match &layout.series {
+            SeriesKey::Column(name) => SeriesColumns::Column(required(name)?),
+            SeriesKey::Template(text) => {
+                let mut pieces = Vec::new();
+                for piece in template_pieces(text) {
+                    pieces.push(match piece {
+                        TemplatePiece::Text(t) => Piece::Text(t.to_string()),
+                        TemplatePiece::Field(name) => Piece::Column(required(name)?),
+                    });
+                }
+                SeriesColumns::Template {
+                    pieces,
+                    text: text.clone(),
+                }
+            }
+        };
+        let (x, x_date) = match &layout.x {
+            XSource::Column(name) => (required(name)?, None),
+            XSource::Date { column, format } => (required(column)?, Some(*format)),
+        };
+        let y = required(&layout.y)?;
+        if !missing.is_empty() {
+            return Err(FileError::MissingColumns {
+                missing,
+                found: names,
+            });
+        }
+        let optional = |name: &Option<String>| -> Result<Option<usize>, FileError> {
+            match name {
+                Some(name) => find(name),
+                None => Ok(None),
+            }
+        };
+        let unit = optional(&layout.unit)?;
+        let sampled_at = optional(&layout.sampled_at)?;
+        let note = optional(&layout.note)?;
+        let detection_limit = optional(&layout.detection_limit)?;
+        let qualifier = optional(&layout.qualifier)?;
+
+        let mut mapped = vec![record_id, x, y];
+        mapped.extend([unit, sampled_at, note].into_iter().flatten());
+        match &series {
+            SeriesColumns::Column(i) => mapped.push(*i),
+            SeriesColumns::Template { pieces, .. } => {
+                mapped.extend(pieces.iter().filter_map(|p| match p {
+                    Piece::Column(i) => Some(*i),
+                    Piece::Text(_) => None,
+                }));
+            }
+        }
+        let attributes = names
+            .iter()
+            .enumerate()
+            .filter(|(i, _)| !mapped.contains(i))
+            .map(|(i, name)| {
+                if name.is_empty() {
+                    (i, format!("column {}", i + 1), false)
+                } else {
+                    (i, name.clone(), true)
+                }
+            })
+            .collect();
+        Ok(Columns {
+            names,
+            record_id,
+            series,
+            x,
+            x_date,
+            y,
+            unit,
+            sampled_at,
+            note,
+            detection_limit,
+            qualifier,
+            attributes,
+        })
+    }
+
+    /// The column's name for messages.
+    fn label(&self, i: usize) -> String {
+        match self.names.get(i) {
+            Some(name) if !name.is_empty() => name.clone(),
+            _ => format!("column {}", i + 1),
+        }
+    }
+}
+
+enum TemplatePiece<'a> {
+    Text(&'a str),
+    Field(&'a str),
+}
+
+/// `{site}/{analyte}` -> [Field(site), Text(/), Field(analyte)]. A `{`
+/// with no `}` after it, or `{}`, is text.
+fn template_pieces(template: &str) -> Vec<TemplatePiece<'_>> {
+    let mut pieces = Vec::new();
+    let mut rest = template;
+    while let Some(open) = rest.find('{') {
+        let (before, from_brace) = rest.split_at(open);
+        let after = from_brace.get(1..).unwrap_or_default();
+        let name = after
+            .find('}')
+            .and_then(|close| after.get(..close))
+            .filter(|name| !name.is_empty() && !name.contains('{'));
+        if !before.is_empty() {
+            pieces.push(TemplatePiece::Text(before));
+        }
+        match name {
+            Some(name) => {
+                pieces.push(TemplatePiece::Field(name));
+                rest = after.get(name.len() + 1..).unwrap_or_default();
+            }
+            None => {
+                pieces.push(TemplatePiece::Text("{"));
+                rest = after;
+            }
+        }
+    }
+    if !rest.is_empty() {
+        pieces.push(TemplatePiece::Text(rest));
+    }
+    pieces
+}
+
+/// A refused row: the column at fault (0-based) and the reason.
+struct Fault {
+    column: Option<usize>,
+    reason: String,
+}
+
+impl Fault {
+    fn at(column: usize, reason: String) -> Self {
+        Fault {
+            column: Some(column),
+            reason,
+        }
+    }
+}
+
+/// Checks rows against the columns and the series' rules, remembering the
+/// ids seen and the rules asked for.
+struct Checker<'l> {
+    cols: Columns,
+    delimiter: u8,
+    decimal_comma: bool,
+    rules: &'l dyn Fn(&SeriesId) -> SeriesRules,
+    today: Today,
+    last_allowed_day: i64,
+    /// record_id -> the line it was first seen on.
+    seen: HashMap<String, u64>,
+    series_rules: HashMap<String, Rc<SeriesRules>>,
+}
+
+impl Checker<'_> {
+    fn check(&mut self, row: &Row<'_>) -> Result<Record, Fault> {
+        let c = &self.cols;
+        let fields = row.fields;
+        if fields.len() != c.names.len() {
+            return Err(Fault {
+                column: None,
+                reason: format!(
+                    "ragged row: {} {}, header has {}; check for a stray delimiter or an unbalanced quote",
+                    fields.len(),
+                    if fields.len() == 1 { "field" } else { "fields" },
+                    c.names.len()
+                ),
+            });
+        }
+        if let Some(fault) = swallowed_rows(fields, self.delimiter, c) {
+            return Err(fault);
+        }
+        let cell = |i: usize| fields.get(i).unwrap_or_default().trim();
+        let example = if self.decimal_comma { "0,5" } else { "0.5" };
+
+        let id = cell(c.record_id);
+        if id.is_empty() {
+            return Err(Fault::at(
+                c.record_id,
+                format!(
+                    "{} is empty; give the row an id, unique in the file",
+                    c.label(c.record_id)
+                ),
+            ));
+        }
+        if let Some(&first) = self.seen.get(id) {
+            return Err(Fault::at(
+                c.record_id,
+                format!(
+                    "{} {} appears twice in this file (first on line {first}); give each record its own id, or remove the repeated row",
+                    c.label(c.record_id),
+                    show(id)
+                ),
+            ));
+        }
+        self.seen.insert(id.to_string(), row.line);
+
+        let series = match &c.series {
+            SeriesColumns::Column(i) => {
+                let key = cell(*i);
+                if key.is_empty() {
+                    return Err(Fault::at(
+                        *i,
+                        format!(
+                            "{} is empty; fill in the series the record belongs to",
+                            c.label(*i)
+                        ),
+                    ));
+                }
+                key.to_string()
+            }
+            SeriesColumns::Template { pieces, text } => {
+                let mut key = String::new();
+                for piece in pieces {
+                    match piece {
+                        Piece::Text(t) => key.push_str(t),
+                        Piece::Column(i) => {
+                            let value = cell(*i);
+                            if value.is_empty() {
+                                return Err(Fault::at(
+                                    *i,
+                                    format!(
+                                        "{} is empty; the series key {text} needs it: fill it in",
+                                        c.label(*i)
+                                    ),
+                                ));
+                            }
+                            key.push_str(value);
+                        }
+                    }
+                }
+                key
+            }
+        };
+        let rules = rules_for(&mut self.series_rules, self.rules, &series);
+
+        let x_text = cell(c.x);
+        let x = match c.x_date {
+            None => numbers::parse_number(x_text, self.decimal_comma).map_err(|p| {
+                Fault::at(c.x, p.reason(&c.label(c.x), &show(x_text), "the x value"))
+            })?,
+            Some(format) => self.date(c.x, x_text, format)?.decimal_year(),
+        };
+        if let Some((low, high)) = rules.x_range
+            && !(low <= x && x <= high)
+        {
+            let as_year = if c.x_date.is_some() {
+                format!(" (decimal year {x:.3})")
+            } else {
+                String::new()
+            };
+            return Err(Fault::at(
+                c.x,
+                format!(
+                    "{} {}{as_year} is outside the plausible range {low}..{high} set for series {series}; check for a typo or widen the range in the config",
+                    c.label(c.x),
+                    show(x_text)
+                ),
+            ));
+        }
+
+        let y_text = cell(c.y);
+        let y_label = c.label(c.y);
+        let qualifier = c.qualifier.map(cell).unwrap_or_default();
+        let qualified_nd = numbers::is_non_detect_qualifier(qualifier);
+        let written = if y_text.is_empty() && qualified_nd {
+            Written::NotDetected
+        } else {
+            numbers::parse_measure(y_text, self.decimal_comma).map_err(|p| match p {
+                MeasureProblem::Number(p) => {
+                    Fault::at(c.y, p.reason(&y_label, &show(y_text), "the measured value"))
+                }
+                MeasureProblem::BadLimit(_) => Fault::at(
+                    c.y,
+                    format!(
+                        "{y_label} = {}: after `<` write the detection limit as a number, e.g. <{example}",
+                        show(y_text)
+                    ),
+                ),
+            })?
+        };
+        let (y, y_column) = match written {
+            Written::Value(v) if qualified_nd => (Measure::NonDetect { limit: v }, c.y),
+            Written::Value(v) => (Measure::Detected(v), c.y),
+            Written::LessThan(limit) | Written::Qualified(limit) => {
+                (Measure::NonDetect { limit }, c.y)
+            }
+            Written::NotDetected => {
+                let Some(i) = c.detection_limit.filter(|&i| !cell(i).is_empty()) else {
+                    let what = if y_text.is_empty() {
+                        format!(
+                            "{y_label} is empty and the qualifier is {}",
+                            show(qualifier)
+                        )
+                    } else {
+                        format!("{y_label} = {}", show(y_text))
+                    };
+                    return Err(Fault::at(
+                        c.y,
+                        format!(
+                            "{what}: ND without a detection limit; add the limit column to the feed, or write `<` and the limit, e.g. <{example}"
+                        ),
+                    ));
+                };
+                let limit = numbers::parse_number(cell(i), self.decimal_comma).map_err(|p| {
+                    Fault::at(
+                        i,
+                        p.reason(&c.label(i), &show(cell(i)), "the detection limit"),
+                    )
+                })?;
+                (Measure::NonDetect { limit }, i)
+            }
+        };
+        match y {
+            Measure::Detected(v) if v < 0.0 && !rules.allow_negative => {
+                let positive = y_text.strip_prefix('-').unwrap_or(y_text);
+                return Err(Fault::at(
+                    c.y,
+                    format!(
+                        "negative concentration {y_text}; some exports write <{positive} as {y_text}: write it as <{positive} if it is a non-detect (or set allow_negative for series {series} if negative values are real)"
+                    ),
+                ));
+            }
+            Measure::NonDetect { limit } if limit <= 0.0 => {
+                return Err(Fault::at(
+                    y_column,
+                    format!(
+                        "{} = {}: a non-detect's limit must be greater than 0; write the reporting limit, e.g. <{example}",
+                        c.label(y_column),
+                        show(cell(y_column))
+                    ),
+                ));
+            }
+            _ => {}
+        }
+
+        let unit_as_written = c.unit.map(cell).filter(|u| !u.is_empty());
+        let (y, unit) = match (&rules.unit, unit_as_written, c.unit) {
+            (Some(target), Some(written), Some(unit_column)) => {
+                let to_target = |v: f64| {
+                    units::convert(v, written, target, rules.matrix)
+                        .map_err(|e| Fault::at(unit_column, e.to_string()))
+                };
+                let y = match y {
+                    Measure::Detected(v) => Measure::Detected(to_target(v)?),
+                    Measure::NonDetect { limit } => Measure::NonDetect {
+                        limit: to_target(limit)?,
+                    },
+                };
+                (y, Some(target.clone()))
+            }
+            (Some(target), _, _) => (y, Some(target.clone())),
+            (None, written, _) => (y, written.map(str::to_string)),
+        };
+
+        let mut sampled_at = None;
+        if let Some(i) = c.sampled_at {
+            let text = cell(i);
+            if !text.is_empty() {
+                if c.x_date.is_none() || i != c.x {
+                    match dates::parse_date(text, DateFormat::Iso) {
+                        Ok(date) => self.not_in_future(i, text, &date, DateFormat::Iso)?,
+                        Err(DateProblem::Impossible(why)) => {
+                            return Err(Fault::at(
+                                i,
+                                format!(
+                                    "{} {} is not a real date ({why}); check for a typo",
+                                    c.label(i),
+                                    show(text)
+                                ),
+                            ));
+                        }
+                        Err(DateProblem::Shape) => {}
+                    }
+                }
+                sampled_at = Some(text.to_string());
+            }
+        }
+        if sampled_at.is_none() && c.x_date.is_some() {
+            sampled_at = Some(x_text.to_string());
+        }
+
+        let note = c
+            .note
+            .map(cell)
+            .filter(|n| !n.is_empty())
+            .map(str::to_string);
+        let attributes = c
+            .attributes
+            .iter()
+            .filter_map(|(i, name, keep_empty)| {
+                let value = cell(*i);
+                (*keep_empty || !value.is_empty()).then(|| (name.clone(), value.to_string()))
+            })
+            .collect();
+        Ok(Record {
+            record_id: id.to_string(),
+            series: SeriesId(series),
+            x,
+            y,
+            unit,
+            unit_as_written: unit_as_written.map(str::to_string),
+            sampled_at,
+            note,
+            attributes,
+            line: row.line,
+            raw: row.raw.to_string(),
+        })
+    }
+
+    /// Reads a date cell of the x column.
+    fn date(&self, column: usize, text: &str, format: DateFormat) -> Result<DateTime, Fault> {
+        let c = &self.cols;
+        let written_as = match format {
+            DateFormat::Iso => "YYYY-MM-DD",
+            DateFormat::DayMonthYear => "DD.MM.YYYY or DD/MM/YYYY",
+            DateFormat::MonthDayYear => "MM/DD/YYYY",
+        };
+        let date = dates::parse_date(text, format).map_err(|problem| {
+            let reason = match problem {
+                _ if text.is_empty() => format!(
+                    "{} is empty; fill in the sampling date or remove the row",
+                    c.label(column)
+                ),
+                DateProblem::Shape => format!(
+                    "{} = {} is not a date written {written_as} (optionally with a time HH:MM[:SS]), as set for this feed",
+                    c.label(column),
+                    show(text)
+                ),
+                DateProblem::Impossible(why) => format!(
+                    "{} {} is not a real date ({why}; this feed's dates are {written_as}); check for a typo",
+                    c.label(column),
+                    show(text)
+                ),
+            };
+            Fault::at(column, reason)
+        })?;
+        self.not_in_future(column, text, &date, format)?;
+        Ok(date)
+    }
+
+    fn not_in_future(
+        &self,
+        column: usize,
+        text: &str,
+        date: &DateTime,
+        format: DateFormat,
+    ) -> Result<(), Fault> {
+        if date.day_number() <= self.last_allowed_day {
+            return Ok(());
+        }
+        let t = self.today;
+        let order = if format == DateFormat::Iso {
+            ""
+        } else {
+            ", and the order of day and month"
+        };
+        Err(Fault::at(
+            column,
+            format!(
+                "{} {} is in the future (today is {:04}-{:02}-{:02}); check the year{order}",
+                self.cols.label(column),
+                show(text),
+                t.year,
+                t.month,
+                t.day
+            ),
+        ))
+    }
+
+    fn error(&self, row: &Row<'_>, fault: Fault) -> RecordError {
+        let record_id = row
+            .fields
+            .get(self.cols.record_id)
+            .map(str::trim)
+            .filter(|id| !id.is_empty())
+            .map(str::to_string);
+        RecordError {
+            line: row.line,
+            column: fault.column.map(|c| c + 1),
+            field: fault.column.map(|c| self.cols.label(c)),
+            record_id,
+            reason: fault.reason,
+            raw: row.raw.to_string(),
+        }
+    }
+}
+
+/// A quoted field holding lines that look like whole rows (as many
+/// delimiters as the header) is most likely a stray or missing quote that
+/// swallowed the rows after it; refuse the row rather than store the rows
+/// as a note. One-column and two-column files are not checked.
+fn swallowed_rows(fields: &csv::StringRecord, delimiter: u8, c: &Columns) -> Option<Fault> {
+    let width = c.names.len();
+    if width < 3 {
+        return None;
+    }
+    fields.iter().enumerate().find_map(|(i, field)| {
+        let rows = field
+            .split(['\n', '\r'])
+            .skip(1)
+            .filter(|line| line.bytes().filter(|&b| b == delimiter).count() + 1 >= width)
+            .count();
+        (rows > 0).then(|| {
+            Fault::at(
+                i,
+                format!(
+                    "{} holds {rows} line(s) that look like whole rows of this file; a quote is probably missing or stray: check the quotes in this row",
+                    c.label(i)
+                ),
+            )
+        })
+    })
+}
+
+/// The rules of `series`, asking the caller only the first time.
+fn rules_for(
+    cache: &mut HashMap<String, Rc<SeriesRules>>,
+    rules: &dyn Fn(&SeriesId) -> SeriesRules,
+    series: &str,
+) -> Rc<SeriesRules> {
+    if let Some(found) = cache.get(series) {
+        return Rc::clone(found);
+    }
+    let found = Rc::new(rules(&SeriesId(series.to_string())));
+    cache.insert(series.to_string(), Rc::clone(&found));
+    found
+}
+
+/// A cell for a message: control characters shown as `?`, cut at 40
+/// characters.
+fn show(text: &str) -> String {
+    const MAX: usize = 40;
+    let mut out: String = text
+        .chars()
+        .take(MAX)
+        .map(|c| if c.is_control() { '?' } else { c })
+        .collect();
+    if text.chars().nth(MAX).is_some() {
+        out.push('…');
+    }
+    out
+}

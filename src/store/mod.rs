@@ -1,0 +1,1090 @@
+//! The only SQL in slopewarden: a [`Store`] over SQLite (rusqlite, bundled).
+//!
+//! # Durability
+//!
+//! WAL journal with `synchronous = FULL`: a commit returns only after the
+//! log is on disk, so a file leaves the inbox (archive move) only after its
+//! records are durable, and a power cut cannot lose a record whose file was
+//! already moved.
+//!
+//! # Migrations
+//!
+//! `migrations/NNNN_name.sql` are embedded in order; SQLite's `user_version`
+//! counts how many have run. Pending ones apply in one exclusive
+//! transaction at open. A database whose `user_version` is higher than this
+//! binary knows is refused. Never reorder, edit or delete a shipped
+//! migration.
+//!
+//! # Concurrency
+//!
+//! One writer (the daemon or `ingest`); readers (`status`, `history`) open
+//! their own connection. WAL lets them read while the writer writes, and a
+//! busy timeout rides out checkpoints.
+
+mod audit;
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use rusqlite::{Connection, OptionalExtension, Transaction, params};
+use thiserror::Error;
+
+use crate::records::{Record, RecordError};
+use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
+
+pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
+
+/// The embedded migrations, in order.
+const MIGRATIONS: &[(&str, &str)] = &[(
+    "0001_initial",
+    include_str!("../../migrations/0001_initial.sql"),
+)];
+
+/// Why the store failed.
+#[derive(Debug, Error)]
+pub enum StoreError {
+    /// SQLite reported an error.
+    #[error("database {path}: {source}", path = path.display())]
+    Sqlite {
+        /// The database file.
+        path: PathBuf,
+        /// SQLite's error.
+        source: rusqlite::Error,
+    },
+    /// The database was written by a newer slopewarden.
+    #[error("database {path} has schema version {found}, but this slopewarden knows only up to {known}; run the newer slopewarden or restore a backup", path = path.display())]
+    TooNew {
+        /// The database file.
+        path: PathBuf,
+        /// Its user_version.
+        found: i64,
+        /// The highest this binary knows.
+        known: i64,
+    },
+    /// The folder for the database could not be created.
+    #[error("cannot create the folder for database {path}: {source}", path = path.display())]
+    Folder {
+        /// The database file.
+        path: PathBuf,
+        /// The operating system's reason.
+        source: std::io::Error,
+    },
+}
+
+type Result<T> = std::result::Result<T, StoreError>;
+
+/// Row id of a source file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct FileId(pub i64);
+
+/// Row id of a series.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub struct SeriesRowId(pub i64);
+
+/// A file as recorded.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FileRow {
+    /// Row id.
+    pub id: FileId,
+    /// Path relative to the inbox when it arrived.
+    pub name: String,
+    /// When it arrived.
+    pub arrived_at: String,
+    /// What happened to it.
+    pub outcome: String,
+}
+
+/// A file about to be recorded.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewFile<'a> {
+    /// Path relative to the inbox.
+    pub name: &'a str,
+    /// Hex SHA-256 of the content.
+    pub sha256: &'a str,
+    /// Size in bytes.
+    pub size: u64,
+    /// RFC 3339 UTC arrival time.
+    pub arrived_at: &'a str,
+    /// The feed whose layout was used.
+    pub feed: &'a str,
+}
+
+/// What a file's ingest amounted to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct FileCounts {
+    /// Records stored for the first time.
+    pub new: u64,
+    /// Records already stored with identical values (not counted again).
+    pub same: u64,
+    /// Records whose id was stored with other values (kept as proposals).
+    pub conflict: u64,
+    /// Rows refused by validation.
+    pub bad: u64,
+}
+
+/// A series and its running state.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SeriesRow {
+    /// Row id.
+    pub id: SeriesRowId,
+    /// The series key.
+    pub key: String,
+    /// Its unit, when configured.
+    pub unit: Option<String>,
+    /// Transform name (stats::Transform::name).
+    pub transform: String,
+    /// Non-detect policy as stored ("exclude", "substitute:0.5").
+    pub non_detects: String,
+    /// Co-moments of the points in the current fit.
+    pub moments: Moments,
+    /// The current fit version (0 before the first fit).
+    pub fit_version: i64,
+    /// n at the last robust-slope computation.
+    pub robust_n: i64,
+    /// When a record last arrived.
+    pub last_arrival: Option<String>,
+    /// Current record versions stored.
+    pub records: i64,
+    /// Non-detects among them.
+    pub censored: i64,
+}
+
+/// A stored record's current version, for duplicate and conflict checks.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoredRecord {
+    /// Row id.
+    pub row: i64,
+    /// Version number.
+    pub version: i64,
+    /// Series key.
+    pub series: String,
+    /// x.
+    pub x: f64,
+    /// y (or the limit).
+    pub y: f64,
+    /// Whether censored.
+    pub censored: bool,
+}
+
+/// How a record entered the store.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RecordPlacement<'a> {
+    /// Whether it enters the fit, and its point on the fitted scale.
+    pub fit_point: Option<(f64, f64)>,
+    /// Its arrival in the series' streaming state, with the fit version it
+    /// joins and the confidence level, when it entered the fit.
+    pub arrival: Option<(&'a Arrival, i64, f64)>,
+}
+
+/// One fit-history row about to be written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewFit<'a> {
+    /// The series.
+    pub series: SeriesRowId,
+    /// Its new version number.
+    pub version: i64,
+    /// The file that triggered the refit.
+    pub trigger_file: Option<FileId>,
+    /// RFC 3339 UTC.
+    pub created_at: &'a str,
+    /// Transform name.
+    pub transform: &'a str,
+    /// Non-detect policy.
+    pub non_detects: &'a str,
+    /// Non-detects stored for the series.
+    pub n_censored: i64,
+    /// Points in the fit.
+    pub n: i64,
+    /// Confidence level.
+    pub level: f64,
+    /// The fit, when one exists (n ≥ 3 and x varies).
+    pub fit: Option<&'a LineFit>,
+    /// Robust slope, when computed for this version.
+    pub robust: Option<RobustRow>,
+    /// Why a statistic is absent.
+    pub note: Option<String>,
+}
+
+/// Theil-Sen and Mann-Kendall figures for a fit row.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct RobustRow {
+    /// Theil-Sen slope.
+    pub slope: f64,
+    /// Its interval.
+    pub ci_low: f64,
+    /// Its interval.
+    pub ci_high: f64,
+    /// Mann-Kendall S.
+    pub mk_s: i64,
+    /// Mann-Kendall two-sided p.
+    pub mk_p: f64,
+}
+
+/// A fit-history row as read back.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct FitHistoryRow {
+    /// Version number.
+    pub version: i64,
+    /// When it was computed.
+    pub created_at: String,
+    /// The file that triggered it.
+    pub trigger_file: Option<String>,
+    /// Points in the fit.
+    pub n: i64,
+    /// Slope.
+    pub slope: Option<f64>,
+    /// Lower CI end.
+    pub slope_ci_low: Option<f64>,
+    /// Upper CI end.
+    pub slope_ci_high: Option<f64>,
+    /// Two-sided p.
+    pub slope_p: Option<f64>,
+    /// R².
+    pub r_squared: Option<f64>,
+    /// Theil-Sen slope, when computed.
+    pub theil_sen_slope: Option<f64>,
+    /// Why something is absent.
+    pub note: Option<String>,
+}
+
+/// One series in `status`.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct SeriesStatus {
+    /// Series key.
+    pub series: String,
+    /// Records stored (current versions, non-detects included).
+    pub records: i64,
+    /// Non-detects among them.
+    pub censored: i64,
+    /// Points in the current fit.
+    pub n: i64,
+    /// Current slope.
+    pub slope: Option<f64>,
+    /// Lower CI end.
+    pub slope_ci_low: Option<f64>,
+    /// Upper CI end.
+    pub slope_ci_high: Option<f64>,
+    /// Two-sided p.
+    pub slope_p: Option<f64>,
+    /// Last arrival.
+    pub last_arrival: Option<String>,
+    /// Open findings (none before findings exist).
+    pub open_findings: i64,
+    /// Current fit version.
+    pub fit_version: i64,
+    /// Transform.
+    pub transform: String,
+    /// Non-detect policy.
+    pub non_detects: String,
+    /// Unit.
+    pub unit: Option<String>,
+}
+
+/// A point of a series' current fit, for `diagnostics`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitPoint {
+    /// Record id.
+    pub record_id: String,
+    /// x on the fitted scale.
+    pub x: f64,
+    /// y on the fitted scale.
+    pub y: f64,
+}
+
+/// The store.
+pub struct Store {
+    conn: Connection,
+    path: PathBuf,
+}
+
+impl Store {
+    /// Opens (creating if needed) the database at `path`, in WAL mode with
+    /// full synchronisation, and applies pending migrations.
+    pub fn open(path: &Path) -> Result<Store> {
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            std::fs::create_dir_all(dir).map_err(|source| StoreError::Folder {
+                path: path.to_path_buf(),
+                source,
+            })?;
+        }
+        let conn = Connection::open(path).map_err(|source| StoreError::Sqlite {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Store::setup(conn, path.to_path_buf())
+    }
+
+    /// An in-memory store, for tests.
+    pub fn open_in_memory() -> Result<Store> {
+        let path = PathBuf::from(":memory:");
+        let conn = Connection::open_in_memory().map_err(|source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        })?;
+        Store::setup(conn, path)
+    }
+
+    fn setup(mut conn: Connection, path: PathBuf) -> Result<Store> {
+        let wrap = |source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        };
+        conn.busy_timeout(Duration::from_secs(30)).map_err(wrap)?;
+        conn.pragma_update(None, "journal_mode", "WAL")
+            .map_err(wrap)?;
+        conn.pragma_update(None, "synchronous", "FULL")
+            .map_err(wrap)?;
+        conn.pragma_update(None, "foreign_keys", "ON")
+            .map_err(wrap)?;
+        migrate(&mut conn, &path)?;
+        Ok(Store { conn, path })
+    }
+
+    fn wrap(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
+        move |source| StoreError::Sqlite {
+            path: self.path.clone(),
+            source,
+        }
+    }
+
+    /// The database file.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// The file already ingested with this content, if any.
+    pub fn file_by_hash(&self, sha256: &str) -> Result<Option<FileRow>> {
+        self.conn
+            .query_row(
+                "SELECT id, name, arrived_at, outcome FROM source_files WHERE sha256 = ?1",
+                [sha256],
+                |r| {
+                    Ok(FileRow {
+                        id: FileId(r.get(0)?),
+                        name: r.get(1)?,
+                        arrived_at: r.get(2)?,
+                        outcome: r.get(3)?,
+                    })
+                },
+            )
+            .optional()
+            .map_err(self.wrap())
+    }
+
+    /// Starts the one transaction in which a file's records, refits and
+    /// audit entries commit together or not at all.
+    pub fn begin(&mut self) -> Result<Tx<'_>> {
+        let path = self.path.clone();
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(|source| StoreError::Sqlite {
+                path: path.clone(),
+                source,
+            })?;
+        Ok(Tx { tx, path })
+    }
+
+    /// One audit entry in its own transaction (for events outside a file's
+    /// transaction, such as a skipped duplicate file).
+    pub fn audit(&mut self, at: &str, kind: AuditKind, subject: &str, detail: &str) -> Result<()> {
+        let tx = self.begin()?;
+        tx.append_audit(at, kind, subject, detail)?;
+        tx.commit()
+    }
+
+    /// Every series with its current state, ordered by key.
+    pub fn status(&self) -> Result<Vec<SeriesStatus>> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT s.key, s.n, s.fit_version, s.last_arrival, s.transform, s.non_detects, s.unit,
+                        s.records, s.censored, f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p
+                 FROM series s
+                 LEFT JOIN fits f ON f.series_id = s.id AND f.version = s.fit_version
+                 ORDER BY s.key",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([], |r| {
+                Ok(SeriesStatus {
+                    series: r.get(0)?,
+                    n: r.get(1)?,
+                    fit_version: r.get(2)?,
+                    last_arrival: r.get(3)?,
+                    transform: r.get(4)?,
+                    non_detects: r.get(5)?,
+                    unit: r.get(6)?,
+                    records: r.get(7)?,
+                    censored: r.get(8)?,
+                    slope: r.get(9)?,
+                    slope_ci_low: r.get(10)?,
+                    slope_ci_high: r.get(11)?,
+                    slope_p: r.get(12)?,
+                    open_findings: 0,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// Every fit version of a series, oldest first; `None` if the series is unknown.
+    pub fn history(&self, series: &str) -> Result<Option<Vec<FitHistoryRow>>> {
+        let Some(id) = self.series_id(series)? else {
+            return Ok(None);
+        };
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT f.version, f.created_at, sf.name, f.n, f.slope, f.slope_ci_low, f.slope_ci_high,
+                        f.slope_p, f.r_squared, f.theil_sen_slope, f.note
+                 FROM fits f LEFT JOIN source_files sf ON sf.id = f.trigger_file
+                 WHERE f.series_id = ?1 ORDER BY f.version",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([id.0], |r| {
+                Ok(FitHistoryRow {
+                    version: r.get(0)?,
+                    created_at: r.get(1)?,
+                    trigger_file: r.get(2)?,
+                    n: r.get(3)?,
+                    slope: r.get(4)?,
+                    slope_ci_low: r.get(5)?,
+                    slope_ci_high: r.get(6)?,
+                    slope_p: r.get(7)?,
+                    r_squared: r.get(8)?,
+                    theil_sen_slope: r.get(9)?,
+                    note: r.get(10)?,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map(Some)
+            .map_err(self.wrap())
+    }
+
+    fn series_id(&self, key: &str) -> Result<Option<SeriesRowId>> {
+        self.conn
+            .query_row("SELECT id FROM series WHERE key = ?1", [key], |r| {
+                r.get(0).map(SeriesRowId)
+            })
+            .optional()
+            .map_err(self.wrap())
+    }
+
+    /// The series row, if the series exists.
+    pub fn series(&self, key: &str) -> Result<Option<SeriesRow>> {
+        series_row(&self.conn, key).map_err(self.wrap())
+    }
+
+    /// The points of a series' current fit, in arrival order.
+    pub fn fit_points(&self, key: &str) -> Result<Option<Vec<FitPoint>>> {
+        let Some(id) = self.series_id(key)? else {
+            return Ok(None);
+        };
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT record_id, fit_x, fit_y FROM records
+                 WHERE series_id = ?1 AND status = 'current' AND in_fit = 1 ORDER BY id",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([id.0], |r| {
+                Ok(FitPoint {
+                    record_id: r.get(0)?,
+                    x: r.get(1)?,
+                    y: r.get(2)?,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map(Some)
+            .map_err(self.wrap())
+    }
+
+    /// Counts for tests and `status`: (files, current records, proposed
+    /// versions, quarantined rows, fits).
+    pub fn totals(&self) -> Result<Totals> {
+        self.conn
+            .query_row(
+                "SELECT (SELECT COUNT(*) FROM source_files),
+                        (SELECT COUNT(*) FROM records WHERE status = 'current'),
+                        (SELECT COUNT(*) FROM records WHERE status = 'proposed'),
+                        (SELECT COUNT(*) FROM quarantined_rows),
+                        (SELECT COUNT(*) FROM fits),
+                        (SELECT COUNT(*) FROM source_files WHERE outcome = 'quarantined')",
+                [],
+                |r| {
+                    Ok(Totals {
+                        files: r.get(0)?,
+                        records: r.get(1)?,
+                        proposed: r.get(2)?,
+                        quarantined_rows: r.get(3)?,
+                        fits: r.get(4)?,
+                        quarantined_files: r.get(5)?,
+                    })
+                },
+            )
+            .map_err(self.wrap())
+    }
+
+    /// Every audit entry, oldest first.
+    pub fn audit_entries(&self) -> Result<Vec<AuditEntry>> {
+        audit::entries(&self.conn).map_err(self.wrap())
+    }
+}
+
+/// Whole-store counts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+pub struct Totals {
+    /// Source files recorded.
+    pub files: i64,
+    /// Current record versions.
+    pub records: i64,
+    /// Proposed versions awaiting review (conflicts).
+    pub proposed: i64,
+    /// Rows refused by validation.
+    pub quarantined_rows: i64,
+    /// Fit-history rows.
+    pub fits: i64,
+    /// Files quarantined whole.
+    pub quarantined_files: i64,
+}
+
+/// The transaction of one file.
+pub struct Tx<'a> {
+    tx: Transaction<'a>,
+    path: PathBuf,
+}
+
+impl Tx<'_> {
+    fn wrap(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
+        move |source| StoreError::Sqlite {
+            path: self.path.clone(),
+            source,
+        }
+    }
+
+    /// Records a file.
+    pub fn insert_file(&self, f: &NewFile<'_>) -> Result<FileId> {
+        self.tx
+            .prepare_cached(
+                "INSERT INTO source_files (name, sha256, size, arrived_at, feed, outcome,
+                    records_new, records_same, records_conflict, records_bad)
+                 VALUES (?1, ?2, ?3, ?4, ?5, 'ingested', 0, 0, 0, 0)",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    f.name,
+                    f.sha256,
+                    f.size as i64,
+                    f.arrived_at,
+                    f.feed
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(FileId(self.tx.last_insert_rowid()))
+    }
+
+    /// Sets a file's outcome and counts once its rows are processed.
+    pub fn finish_file(
+        &self,
+        id: FileId,
+        outcome: FileOutcome,
+        counts: FileCounts,
+        detail: Option<&str>,
+    ) -> Result<()> {
+        self.tx
+            .prepare_cached(
+                "UPDATE source_files SET outcome = ?2, records_new = ?3, records_same = ?4,
+                    records_conflict = ?5, records_bad = ?6, detail = ?7 WHERE id = ?1",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    id.0,
+                    outcome.as_str(),
+                    counts.new as i64,
+                    counts.same as i64,
+                    counts.conflict as i64,
+                    counts.bad as i64,
+                    detail
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(())
+    }
+
+    /// The series row, if it exists.
+    pub fn series(&self, key: &str) -> Result<Option<SeriesRow>> {
+        series_row(&self.tx, key).map_err(self.wrap())
+    }
+
+    /// Creates a series with its settings.
+    pub fn create_series(
+        &self,
+        key: &str,
+        unit: Option<&str>,
+        transform: &str,
+        non_detects: &str,
+    ) -> Result<SeriesRow> {
+        self.tx
+            .prepare_cached(
+                "INSERT INTO series (key, unit, transform, non_detects) VALUES (?1, ?2, ?3, ?4)",
+            )
+            .and_then(|mut s| s.execute(params![key, unit, transform, non_detects]))
+            .map_err(self.wrap())?;
+        Ok(SeriesRow {
+            id: SeriesRowId(self.tx.last_insert_rowid()),
+            key: key.to_string(),
+            unit: unit.map(str::to_string),
+            transform: transform.to_string(),
+            non_detects: non_detects.to_string(),
+            moments: Moments::new(),
+            fit_version: 0,
+            robust_n: 0,
+            last_arrival: None,
+            records: 0,
+            censored: 0,
+        })
+    }
+
+    /// Saves a series' running state.
+    pub fn save_series(&self, row: &SeriesRow) -> Result<()> {
+        let p = row.moments.to_parts();
+        self.tx
+            .prepare_cached(
+                "UPDATE series SET n = ?2, origin = ?3, mean_x = ?4, mean_y = ?5, sxx = ?6, sxy = ?7,
+                    syy = ?8, sse = ?9, fit_version = ?10, robust_n = ?11, last_arrival = ?12,
+                    records = ?13, censored = ?14 WHERE id = ?1",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    row.id.0,
+                    p.n as i64,
+                    p.origin,
+                    p.mean_x,
+                    p.mean_y,
+                    p.sxx,
+                    p.sxy,
+                    p.syy,
+                    p.sse,
+                    row.fit_version,
+                    row.robust_n,
+                    row.last_arrival,
+                    row.records,
+                    row.censored
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(())
+    }
+
+    /// Tries to store `record` as the current version of its id. Returns
+    /// `Ok(Some(row))` when stored, `Ok(None)` when the id already has a
+    /// current version (the caller then compares with [`Tx::current_record`]).
+    pub fn insert_current(
+        &self,
+        record: &Record,
+        series: SeriesRowId,
+        file: FileId,
+        placement: RecordPlacement<'_>,
+    ) -> Result<Option<i64>> {
+        let changed = self.insert_record(record, series, file, placement, 1, "current", true)?;
+        Ok(changed.then(|| self.tx.last_insert_rowid()))
+    }
+
+    /// Stores a resubmission with other values as a proposed new version.
+    pub fn insert_proposed(
+        &self,
+        record: &Record,
+        series: SeriesRowId,
+        file: FileId,
+        version: i64,
+    ) -> Result<i64> {
+        let placement = RecordPlacement {
+            fit_point: None,
+            arrival: None,
+        };
+        self.insert_record(record, series, file, placement, version, "proposed", false)?;
+        Ok(self.tx.last_insert_rowid())
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn insert_record(
+        &self,
+        record: &Record,
+        series: SeriesRowId,
+        file: FileId,
+        placement: RecordPlacement<'_>,
+        version: i64,
+        status: &str,
+        or_ignore: bool,
+    ) -> Result<bool> {
+        let sql = if or_ignore {
+            "INSERT OR IGNORE INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
+                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
+                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
+                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
+                slope_p_without, undefined)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
+                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31)"
+        } else {
+            "INSERT INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
+                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
+                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
+                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
+                slope_p_without, undefined)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
+                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31)"
+        };
+        let arrival = placement.arrival.map(|(a, _, _)| a);
+        let inf = arrival.and_then(|a| a.influence.as_ref());
+        // The previous fit's slope and p: from its co-moments, without the
+        // cost of an interval (no quantile needed).
+        let without = arrival.and_then(|a| slope_and_p(&a.before));
+        let attributes = if record.attributes.is_empty() {
+            None
+        } else {
+            let map: serde_json::Map<String, serde_json::Value> = record
+                .attributes
+                .iter()
+                .map(|(k, v)| (k.clone(), serde_json::Value::String(v.clone())))
+                .collect();
+            Some(serde_json::Value::Object(map).to_string())
+        };
+        let (fx, fy) = placement.fit_point.unzip();
+        let n = self
+            .tx
+            .prepare_cached(sql)
+            .and_then(|mut s| {
+                s.execute(params![
+                    record.record_id,
+                    version,
+                    status,
+                    series.0,
+                    record.x,
+                    record.y.number(),
+                    record.y.is_censored(),
+                    placement.fit_point.is_some(),
+                    fx,
+                    fy,
+                    record.unit,
+                    record.unit_as_written,
+                    record.sampled_at,
+                    record.note,
+                    attributes,
+                    file.0,
+                    record.line as i64,
+                    record.raw,
+                    placement.arrival.map(|(_, v, _)| v),
+                    inf.map(|p| p.leverage()),
+                    inf.and_then(|p| p.standardized_residual()),
+                    inf.and_then(|p| p.studentized_residual()),
+                    inf.and_then(|p| p.cooks_distance()),
+                    inf.and_then(|p| p.dffits()),
+                    inf.and_then(|p| p.dfbetas_intercept()),
+                    inf.and_then(|p| p.dfbetas_slope()),
+                    inf.and_then(|p| p.covariance_ratio()),
+                    arrival.and_then(|a| a.prediction).and_then(|p| p.t),
+                    without.map(|w| w.0),
+                    without.and_then(|w| w.1),
+                    inf.and_then(|p| p.undefined()).map(|u| u.explain())
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(n == 1)
+    }
+
+    /// The current version of a record id, and the highest version number
+    /// stored for it (proposals included).
+    pub fn current_record(&self, record_id: &str) -> Result<Option<(StoredRecord, i64)>> {
+        let current = self
+            .tx
+            .prepare_cached(
+                "SELECT r.id, r.version, s.key, r.x, r.y, r.censored FROM records r
+                 JOIN series s ON s.id = r.series_id WHERE r.record_id = ?1 AND r.status = 'current'",
+            )
+            .and_then(|mut s| {
+                s.query_row([record_id], |r| {
+                    Ok(StoredRecord {
+                        row: r.get(0)?,
+                        version: r.get(1)?,
+                        series: r.get(2)?,
+                        x: r.get(3)?,
+                        y: r.get(4)?,
+                        censored: r.get(5)?,
+                    })
+                })
+                .optional()
+            })
+            .map_err(self.wrap())?;
+        let Some(current) = current else {
+            return Ok(None);
+        };
+        let max: i64 = self
+            .tx
+            .prepare_cached("SELECT MAX(version) FROM records WHERE record_id = ?1")
+            .and_then(|mut s| s.query_row([record_id], |r| r.get(0)))
+            .map_err(self.wrap())?;
+        Ok(Some((current, max)))
+    }
+
+    /// Whether an identical proposal is already stored (a resubmitted
+    /// conflicting file is not counted twice).
+    pub fn has_proposal(&self, record_id: &str, x: f64, y: f64, censored: bool) -> Result<bool> {
+        self.tx
+            .prepare_cached(
+                "SELECT 1 FROM records WHERE record_id = ?1 AND status = 'proposed' AND x = ?2 AND y = ?3 AND censored = ?4",
+            )
+            .and_then(|mut s| s.exists(params![record_id, x, y, censored]))
+            .map_err(self.wrap())
+    }
+
+    /// Keeps a refused row with where and why.
+    pub fn insert_bad_row(&self, file: FileId, e: &RecordError) -> Result<()> {
+        self.tx
+            .prepare_cached(
+                "INSERT INTO quarantined_rows (file_id, line, col, field, record_id, reason, raw)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    file.0,
+                    e.line as i64,
+                    e.column.map(|c| c as i64),
+                    e.field,
+                    e.record_id,
+                    e.reason,
+                    e.raw
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(())
+    }
+
+    /// Writes a fit-history row.
+    pub fn insert_fit(&self, f: &NewFit<'_>) -> Result<i64> {
+        let fit = f.fit;
+        let robust = f.robust;
+        self.tx
+            .prepare_cached(
+                "INSERT INTO fits (series_id, version, trigger_file, created_at, transform, non_detects, n,
+                    n_censored, level, slope, intercept, slope_se, intercept_se, slope_t, slope_p,
+                    slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
+                    theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17,
+                    ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26)",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    f.series.0,
+                    f.version,
+                    f.trigger_file.map(|id| id.0),
+                    f.created_at,
+                    f.transform,
+                    f.non_detects,
+                    f.n,
+                    f.n_censored,
+                    f.level,
+                    fit.map(|v| v.slope),
+                    fit.map(|v| v.intercept),
+                    fit.map(|v| v.slope_se),
+                    fit.map(|v| v.intercept_se),
+                    fit.and_then(|v| v.slope_t),
+                    fit.and_then(|v| v.slope_p),
+                    fit.map(|v| v.slope_ci_low),
+                    fit.map(|v| v.slope_ci_high),
+                    fit.and_then(|v| v.r_squared),
+                    fit.map(|v| v.residual_sd),
+                    fit.map(|v| v.df as i64),
+                    robust.map(|r| r.slope),
+                    robust.map(|r| r.ci_low),
+                    robust.map(|r| r.ci_high),
+                    robust.map(|r| r.mk_s),
+                    robust.map(|r| r.mk_p),
+                    f.note
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(self.tx.last_insert_rowid())
+    }
+
+    /// The points of a series' current fit (fitted scale), in arrival
+    /// order, as seen inside this transaction.
+    pub fn fit_points(&self, series: SeriesRowId) -> Result<Vec<(f64, f64)>> {
+        let mut stmt = self
+            .tx
+            .prepare_cached(
+                "SELECT fit_x, fit_y FROM records WHERE series_id = ?1 AND status = 'current' AND in_fit = 1 ORDER BY id",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([series.0], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// Appends an audit entry, chained to the previous one by SHA-256.
+    pub fn append_audit(
+        &self,
+        at: &str,
+        kind: AuditKind,
+        subject: &str,
+        detail: &str,
+    ) -> Result<()> {
+        audit::append(&self.tx, at, kind, subject, detail).map_err(self.wrap())
+    }
+
+    /// Commits: everything of the file is durable when this returns.
+    pub fn commit(self) -> Result<()> {
+        let path = self.path;
+        self.tx
+            .commit()
+            .map_err(|source| StoreError::Sqlite { path, source })
+    }
+}
+
+/// What happened to a file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum FileOutcome {
+    /// Every row stored (or already stored).
+    Ingested,
+    /// Some rows refused and quarantined, the rest stored.
+    Partial,
+    /// The whole file set aside.
+    Quarantined,
+}
+
+impl FileOutcome {
+    fn as_str(self) -> &'static str {
+        match self {
+            FileOutcome::Ingested => "ingested",
+            FileOutcome::Partial => "partial",
+            FileOutcome::Quarantined => "quarantined",
+        }
+    }
+}
+
+/// Slope and two-sided p of a set of co-moments (no interval).
+fn slope_and_p(m: &Moments) -> Option<(f64, Option<f64>)> {
+    let slope = m.slope()?;
+    let n = m.n() as f64;
+    if m.n() < 3 {
+        return Some((slope, None));
+    }
+    let s = (m.sse() / (n - 2.0)).sqrt();
+    let se = s / m.sxx().sqrt();
+    let p = (se > 0.0).then(|| crate::stats::dist::t_two_sided_p(slope / se, n - 2.0));
+    Some((slope, p))
+}
+
+fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow>> {
+    conn.prepare_cached(
+        "SELECT id, key, unit, transform, non_detects, n, origin, mean_x, mean_y, sxx, sxy, syy, sse,
+                fit_version, robust_n, last_arrival, records, censored FROM series WHERE key = ?1",
+    )?
+    .query_row([key], |r| {
+        Ok(SeriesRow {
+            id: SeriesRowId(r.get(0)?),
+            key: r.get(1)?,
+            unit: r.get(2)?,
+            transform: r.get(3)?,
+            non_detects: r.get(4)?,
+            moments: Moments::from_parts(MomentsParts {
+                n: r.get::<_, i64>(5)?.max(0) as u64,
+                origin: r.get(6)?,
+                mean_x: r.get(7)?,
+                mean_y: r.get(8)?,
+                sxx: r.get(9)?,
+                sxy: r.get(10)?,
+                syy: r.get(11)?,
+                sse: r.get(12)?,
+            }),
+            fit_version: r.get(13)?,
+            robust_n: r.get(14)?,
+            last_arrival: r.get(15)?,
+            records: r.get(16)?,
+            censored: r.get(17)?,
+        })
+    })
+    .optional()
+}
+
+fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
+    let wrap = |source| StoreError::Sqlite {
+        path: path.to_path_buf(),
+        source,
+    };
+    let known = MIGRATIONS.len() as i64;
+    let tx = conn
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Exclusive)
+        .map_err(wrap)?;
+    let version: i64 = tx
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(wrap)?;
+    if version > known {
+        return Err(StoreError::TooNew {
+            path: path.to_path_buf(),
+            found: version,
+            known,
+        });
+    }
+    for (_, sql) in &MIGRATIONS[version as usize..] {
+        tx.execute_batch(sql).map_err(wrap)?;
+    }
+    tx.pragma_update(None, "user_version", known)
+        .map_err(wrap)?;
+    tx.commit().map_err(wrap)
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+
+    #[test]
+    fn migrating_twice_is_harmless() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("db.sqlite3");
+        drop(Store::open(&path).unwrap());
+        let store = Store::open(&path).unwrap();
+        assert_eq!(store.totals().unwrap().files, 0);
+    }
+
+    #[test]
+    fn refuses_a_database_from_a_newer_version() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("db.sqlite3");
+        drop(Store::open(&path).unwrap());
+        let conn = Connection::open(&path).unwrap();
+        conn.pragma_update(None, "user_version", 99).unwrap();
+        drop(conn);
+        let err = Store::open(&path).err().unwrap();
+        assert!(matches!(err, StoreError::TooNew { found: 99, .. }), "{err}");
+        assert!(err.to_string().contains("schema version 99"));
+    }
+
+    #[test]
+    fn moments_round_trip_through_the_series_row_bit_for_bit() {
+        let mut store = Store::open_in_memory().unwrap();
+        let mut m = Moments::new();
+        for (x, y) in [(2024.1, 3.3), (2024.35, 2.9), (2024.6, 3.1)] {
+            m.add(x, y);
+        }
+        let tx = store.begin().unwrap();
+        let mut row = tx
+            .create_series("MW-1/nitrate", Some("mg/L"), "none", "exclude")
+            .unwrap();
+        row.moments = m;
+        row.fit_version = 3;
+        tx.save_series(&row).unwrap();
+        tx.commit().unwrap();
+        let back = store.series("MW-1/nitrate").unwrap().unwrap();
+        assert_eq!(back.moments, m);
+        assert_eq!(back.fit_version, 3);
+    }
+}

@@ -17,27 +17,14 @@ CREATE TABLE source_files (
     detail       TEXT                       -- why quarantined, when it was
 );
 
--- One row per series key, with its running fit state.
+-- One row per series key with its settings; its running state is the
+-- latest row of `fits`.
 CREATE TABLE series (
     id           INTEGER PRIMARY KEY,
     key          TEXT    NOT NULL UNIQUE,
     unit         TEXT,
     transform    TEXT    NOT NULL,
-    non_detects  TEXT    NOT NULL,          -- 'exclude' or 'substitute:<fraction>'
-    -- co-moments of the points in the current fit (stats::Moments)
-    n            INTEGER NOT NULL DEFAULT 0,
-    origin       REAL    NOT NULL DEFAULT 0,
-    mean_x       REAL    NOT NULL DEFAULT 0,
-    mean_y       REAL    NOT NULL DEFAULT 0,
-    sxx          REAL    NOT NULL DEFAULT 0,
-    sxy          REAL    NOT NULL DEFAULT 0,
-    syy          REAL    NOT NULL DEFAULT 0,
-    sse          REAL    NOT NULL DEFAULT 0,
-    fit_version  INTEGER NOT NULL DEFAULT 0,
-    robust_n     INTEGER NOT NULL DEFAULT 0, -- n when the robust slope was last computed
-    records      INTEGER NOT NULL DEFAULT 0, -- current record versions stored
-    censored     INTEGER NOT NULL DEFAULT 0, -- non-detects among them
-    last_arrival TEXT
+    non_detects  TEXT    NOT NULL           -- 'exclude' or 'substitute:<fraction>'
 );
 
 -- Records with provenance. A record id has at most one 'current' version;
@@ -123,6 +110,16 @@ CREATE TABLE fits (
     mann_kendall_s    INTEGER,
     mann_kendall_p    REAL,
     note         TEXT,                      -- why a statistic is absent
+    -- the series' running state after this version, to resume exactly:
+    records      INTEGER NOT NULL,          -- current record versions stored
+    robust_n     INTEGER NOT NULL,          -- n when the robust slope was last computed
+    origin       REAL    NOT NULL,          -- co-moments of the points in the fit
+    mean_x       REAL    NOT NULL,
+    mean_y       REAL    NOT NULL,
+    sxx          REAL    NOT NULL,
+    sxy          REAL    NOT NULL,
+    syy          REAL    NOT NULL,
+    sse          REAL    NOT NULL,
     UNIQUE (series_id, version)
 );
 

@@ -21,7 +21,7 @@ use crate::config::{Config, WatchModeSetting};
 use crate::inbox::{
     self, Candidate, InboxConfig, InboxError, ReadyFile, Settler, Wake, WatchMode, Watcher,
 };
-use crate::pipeline::{self, Outcome, PipelineError};
+use crate::pipeline::{self, Outcome, PipelineError, SeriesCache};
 use crate::store::{AuditKind, Store};
 
 /// Longest sleep between checks of the shutdown flag.
@@ -115,6 +115,7 @@ pub fn run(
     )?;
     info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
     let mut settler = Settler::new(config.settle);
+    let mut cache = SeriesCache::new();
     let mut totals = RunTotals::default();
     let mut next_scan = Instant::now();
     let mut dirty = true;
@@ -135,7 +136,7 @@ pub fn run(
                 if stop.load(Ordering::SeqCst) {
                     break;
                 }
-                match pipeline::process_file(config, store, &file, SystemTime::now()) {
+                match pipeline::process_file(config, store, &mut cache, &file, SystemTime::now()) {
                     Ok(outcome) => totals.count(&outcome),
                     Err(e) => {
                         totals.failed += 1;
@@ -232,6 +233,7 @@ pub fn ingest_paths(
         }
     }
     let mut totals = RunTotals::default();
+    let mut cache = SeriesCache::new();
     let total = files.len();
     let mut keep_config = config.clone();
     keep_config.keep_files = true;
@@ -246,7 +248,7 @@ pub fn ingest_paths(
             size: c.size,
             modified: c.modified,
         };
-        let result = pipeline::process_file(cfg, store, &file, SystemTime::now());
+        let result = pipeline::process_file(cfg, store, &mut cache, &file, SystemTime::now());
         match &result {
             Ok(o) => totals.count(o),
             Err(e) => {

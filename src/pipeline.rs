@@ -34,6 +34,21 @@ use crate::store::{
 /// within a small multiple of one computation at the final size.
 const ROBUST_GROWTH: f64 = 2.0;
 
+/// Series rows kept between files by the one writer, so that a series
+/// touched by every file is not read back each time. Cleared whenever a
+/// transaction fails, since its rows may then be ahead of the database.
+#[derive(Debug, Default)]
+pub struct SeriesCache {
+    rows: HashMap<String, SeriesRow>,
+}
+
+impl SeriesCache {
+    /// An empty cache.
+    pub fn new() -> Self {
+        SeriesCache::default()
+    }
+}
+
 /// What happened to one file.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Outcome {
@@ -81,6 +96,21 @@ pub enum PipelineError {
 pub fn process_file(
     config: &Config,
     store: &mut Store,
+    cache: &mut SeriesCache,
+    file: &ReadyFile,
+    now: SystemTime,
+) -> Result<Outcome, PipelineError> {
+    let result = process_file_inner(config, store, cache, file, now);
+    if result.is_err() {
+        cache.rows.clear();
+    }
+    result
+}
+
+fn process_file_inner(
+    config: &Config,
+    store: &mut Store,
+    cache: &mut SeriesCache,
     file: &ReadyFile,
     now: SystemTime,
 ) -> Result<Outcome, PipelineError> {
@@ -140,7 +170,7 @@ pub fn process_file(
         }
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
-    let (counts, refits) = store_file(config, store, &name, &sha, size, feed, parsed, &at)?;
+    let (counts, refits) = store_file(config, store, cache, &name, &sha, size, feed, parsed, &at)?;
     info!(
         new = counts.new,
         same = counts.same,
@@ -238,6 +268,7 @@ struct Touched {
 fn store_file(
     config: &Config,
     store: &mut Store,
+    cache: &mut SeriesCache,
     name: &str,
     sha: &str,
     size: u64,
@@ -266,14 +297,18 @@ fn store_file(
         let key = record.series.as_str();
         if !touched.contains_key(key) {
             let settings = config.series_settings(&record.series);
-            let row = match tx.series(key)? {
+            let cached = cache.rows.get(key).cloned();
+            let row = match cached {
                 Some(row) => row,
-                None => tx.create_series(
-                    key,
-                    settings.unit.as_deref(),
-                    settings.transform.name(),
-                    &settings.non_detects.name(),
-                )?,
+                None => match tx.series(key)? {
+                    Some(row) => row,
+                    None => tx.create_series(
+                        key,
+                        settings.unit.as_deref(),
+                        settings.transform.name(),
+                        &settings.non_detects.name(),
+                    )?,
+                },
             };
             let state = SeriesState::from_moments(row.moments);
             touched.insert(
@@ -343,9 +378,9 @@ fn store_file(
                     t.row.censored += 1;
                 }
                 t.row.last_arrival = Some(at.to_string());
+                t.changed = true;
                 if arrival.is_some() {
                     t.state = probe;
-                    t.changed = true;
                 }
             }
             None => {
@@ -390,56 +425,50 @@ fn store_file(
         }
     }
     let mut refits = 0;
+    let mut refit_list = String::new();
     for key in &order {
         let Some(t) = touched.get_mut(key) else {
             continue;
         };
-        if t.changed {
-            refits += 1;
-            t.row.fit_version += 1;
-            t.row.moments = *t.state.moments();
-            let fit = t.state.fit(config.level);
-            let n = t.state.n() as i64;
-            let robust = if n >= 3 && (n as f64) >= ROBUST_GROWTH * (t.row.robust_n as f64) {
-                let points = tx_points(&tx, &t.row)?;
-                let r = robust_row(&points, config.level);
-                if r.is_some() {
-                    t.row.robust_n = n;
-                }
-                r
-            } else {
-                None
-            };
-            let note = match (&fit, &robust) {
-                (Err(e), _) => Some(format!("no fit yet: {e}")),
-                (Ok(_), None) => Some(format!(
-                    "robust slope not recomputed at this version (last at n = {})",
-                    t.row.robust_n
-                )),
-                _ => None,
-            };
-            tx.insert_fit(&NewFit {
-                series: t.row.id,
-                version: t.row.fit_version,
-                trigger_file: Some(file_id),
-                created_at: at,
-                transform: t.settings.transform.name(),
-                non_detects: &t.settings.non_detects.name(),
-                n_censored: t.row.censored,
-                n,
-                level: config.level,
-                fit: fit.as_ref().ok(),
-                robust,
-                note,
-            })?;
-            tx.append_audit(
-                at,
-                AuditKind::Refit,
-                key,
-                &refit_detail(name, &t.row, fit.as_ref().ok()),
-            )?;
+        if !t.changed {
+            continue;
         }
-        tx.save_series(&t.row)?;
+        refits += 1;
+        t.row.fit_version += 1;
+        t.row.moments = *t.state.moments();
+        let fit = t.state.fit(config.level);
+        let n = t.state.n() as i64;
+        let robust = if n >= 3 && (n as f64) >= ROBUST_GROWTH * (t.row.robust_n as f64) {
+            let points = tx.fit_points(t.row.id)?;
+            let r = robust_row(&points, config.level);
+            if r.is_some() {
+                t.row.robust_n = n;
+            }
+            r
+        } else {
+            None
+        };
+        let note = match (&fit, &robust) {
+            (Err(e), _) => Some(format!("no fit yet: {e}")),
+            (Ok(_), None) => Some(format!(
+                "robust slope not recomputed at this version (last at n = {})",
+                t.row.robust_n
+            )),
+            _ => None,
+        };
+        tx.insert_fit(&NewFit {
+            state: &t.row,
+            trigger_file: Some(file_id),
+            created_at: at,
+            transform: t.settings.transform.name(),
+            non_detects: &t.settings.non_detects.name(),
+            level: config.level,
+            fit: fit.as_ref().ok(),
+            robust,
+            note,
+        })?;
+        refit_list.push_str(&refit_detail(&t.row, fit.as_ref().ok()));
+        refit_list.push('\n');
     }
     let outcome = if counts.bad > 0 {
         FileOutcome::Partial
@@ -452,18 +481,22 @@ fn store_file(
         AuditKind::FileIngested,
         name,
         &format!(
-            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted",
+            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted:\n{refit_list}",
             counts.new, counts.same, counts.conflict, counts.bad
         ),
     )?;
     tx.commit()?;
+    for (key, t) in touched {
+        cache.rows.insert(key, t.row);
+    }
     Ok((counts, refits))
 }
 
-fn refit_detail(file: &str, row: &SeriesRow, fit: Option<&LineFit>) -> String {
+fn refit_detail(row: &SeriesRow, fit: Option<&LineFit>) -> String {
     match fit {
         Some(f) => format!(
-            "version {} after {file}: n = {}, slope {} (CI {} to {}), p {}",
+            "{} v{}: n = {}, slope {} (CI {} to {}), p {}",
+            row.key,
             row.fit_version,
             f.n,
             f.slope,
@@ -472,7 +505,8 @@ fn refit_detail(file: &str, row: &SeriesRow, fit: Option<&LineFit>) -> String {
             f.slope_p.map_or("undefined".into(), |p| p.to_string())
         ),
         None => format!(
-            "version {} after {file}: n = {}, no fit yet",
+            "{} v{}: n = {}, no fit yet",
+            row.key,
             row.fit_version,
             row.moments.n()
         ),
@@ -506,10 +540,6 @@ fn fit_point(record: &Record, settings: &SeriesSettings) -> Result<Option<(f64, 
                 record.series
             )
         })
-}
-
-fn tx_points(tx: &crate::store::Tx<'_>, row: &SeriesRow) -> Result<Vec<(f64, f64)>, StoreError> {
-    tx.fit_points(row.id)
 }
 
 fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {

@@ -21,9 +21,9 @@
 //! # Order of the checks in a row
 //!
 //! One error per row, the first found, in this order: field count; a
-//! quoted field that swallowed what look like whole rows; record_id (empty, repeated in the file); series key; x (a number, or a
-//! date that exists and is not in the future; then the series' plausible
-//! range); y (a number or a non-detect; not negative unless allowed; a
+//! quoted field that swallowed what look like whole rows; record_id
+//! (empty, repeated in the file); series key; x (a number, or a date that
+//! exists and is not in the future; then the series' plausible range); y (a number or a non-detect; not negative unless allowed; a
 //! non-detect's limit > 0); the unit conversion; sampled_at (only when it
 //! reads as an ISO date: then it must exist and not be in the future; other
 //! text is kept as written).
@@ -43,10 +43,14 @@
 //! # Cost
 //!
 //! Column positions are resolved once from the header; rows are read into
-//! one reused record; the caller's rules are asked once per series; the
-//! allocations per row are the strings a [`Record`] owns.
+//! one reused record; the caller's rules are asked once per series; record
+//! ids are remembered in one growing string. The only allocations per row
+//! are the strings a [`Record`] owns (six on the canonical layout), and
+//! messages are formatted only for refused rows.
 
 use std::collections::HashMap;
+use std::collections::hash_map::{Entry, RandomState};
+use std::hash::{BuildHasher, BuildHasherDefault, Hasher};
 use std::rc::Rc;
 
 use thiserror::Error;
@@ -127,6 +131,9 @@ pub fn parse_file(
             }
         }
     };
+    // One row per line is an upper bound; reserving it saves regrowing.
+    // Capped, so that a file of empty lines cannot reserve gigabytes.
+    let rows_expected = text.bytes().filter(|&b| b == b'\n').count().min(1 << 16);
     let mut checker = Checker {
         cols: Columns::resolve(names, layout, header_line)?,
         delimiter: layout.delimiter,
@@ -134,10 +141,13 @@ pub fn parse_file(
         rules,
         today,
         last_allowed_day: dates::last_allowed_day(today),
-        seen: HashMap::new(),
-        series_rules: HashMap::new(),
+        seen: SeenIds::with_capacity(rows_expected),
+        series_rules: RulesCache::default(),
     };
-    let mut out = ParsedFile::default();
+    let mut out = ParsedFile {
+        records: Vec::with_capacity(rows_expected),
+        errors: Vec::new(),
+    };
     while let Some(row) = rows.next_row()? {
         if is_blank(&row) {
             continue;
@@ -389,9 +399,8 @@ struct Checker<'l> {
     rules: &'l dyn Fn(&SeriesId) -> SeriesRules,
     today: Today,
     last_allowed_day: i64,
-    /// record_id -> the line it was first seen on.
-    seen: HashMap<String, u64>,
-    series_rules: HashMap<String, Rc<SeriesRules>>,
+    seen: SeenIds,
+    series_rules: RulesCache,
 }
 
 impl Checker<'_> {
@@ -409,7 +418,10 @@ impl Checker<'_> {
                 ),
             });
         }
-        if let Some(fault) = swallowed_rows(fields, self.delimiter, c) {
+        let raw = row.raw.as_bytes();
+        if (raw.contains(&b'\n') || raw.contains(&b'\r'))
+            && let Some(fault) = swallowed_rows(fields, self.delimiter, c)
+        {
             return Err(fault);
         }
         let cell = |i: usize| fields.get(i).unwrap_or_default().trim();
@@ -425,7 +437,7 @@ impl Checker<'_> {
                 ),
             ));
         }
-        if let Some(&first) = self.seen.get(id) {
+        if let Some(first) = self.seen.first_line(id, row.line) {
             return Err(Fault::at(
                 c.record_id,
                 format!(
@@ -435,7 +447,6 @@ impl Checker<'_> {
                 ),
             ));
         }
-        self.seen.insert(id.to_string(), row.line);
 
         let series = match &c.series {
             SeriesColumns::Column(i) => {
@@ -474,7 +485,7 @@ impl Checker<'_> {
                 key
             }
         };
-        let rules = rules_for(&mut self.series_rules, self.rules, &series);
+        let rules = self.series_rules.get(&series, self.rules);
 
         let x_text = cell(c.x);
         let x = match c.x_date {
@@ -502,20 +513,21 @@ impl Checker<'_> {
         }
 
         let y_text = cell(c.y);
-        let y_label = c.label(c.y);
         let qualifier = c.qualifier.map(cell).unwrap_or_default();
         let qualified_nd = numbers::is_non_detect_qualifier(qualifier);
         let written = if y_text.is_empty() && qualified_nd {
             Written::NotDetected
         } else {
             numbers::parse_measure(y_text, self.decimal_comma).map_err(|p| match p {
-                MeasureProblem::Number(p) => {
-                    Fault::at(c.y, p.reason(&y_label, &show(y_text), "the measured value"))
-                }
+                MeasureProblem::Number(p) => Fault::at(
+                    c.y,
+                    p.reason(&c.label(c.y), &show(y_text), "the measured value"),
+                ),
                 MeasureProblem::BadLimit(_) => Fault::at(
                     c.y,
                     format!(
-                        "{y_label} = {}: after `<` write the detection limit as a number, e.g. <{example}",
+                        "{} = {}: after `<` write the detection limit as a number, e.g. <{example}",
+                        c.label(c.y),
                         show(y_text)
                     ),
                 ),
@@ -531,11 +543,12 @@ impl Checker<'_> {
                 let Some(i) = c.detection_limit.filter(|&i| !cell(i).is_empty()) else {
                     let what = if y_text.is_empty() {
                         format!(
-                            "{y_label} is empty and the qualifier is {}",
+                            "{} is empty and the qualifier is {}",
+                            c.label(c.y),
                             show(qualifier)
                         )
                     } else {
-                        format!("{y_label} = {}", show(y_text))
+                        format!("{} = {}", c.label(c.y), show(y_text))
                     };
                     return Err(Fault::at(
                         c.y,
@@ -755,18 +768,107 @@ fn swallowed_rows(fields: &csv::StringRecord, delimiter: u8, c: &Columns) -> Opt
     })
 }
 
-/// The rules of `series`, asking the caller only the first time.
-fn rules_for(
-    cache: &mut HashMap<String, Rc<SeriesRules>>,
-    rules: &dyn Fn(&SeriesId) -> SeriesRules,
-    series: &str,
-) -> Rc<SeriesRules> {
-    if let Some(found) = cache.get(series) {
-        return Rc::clone(found);
+/// The record ids met in a file, with the line each was first met on.
+///
+/// The ids are kept end to end in one string and found by their keyed
+/// (SipHash) hash, so a row costs no allocation here. Two different ids
+/// with the same 64-bit hash are told apart by comparing the text.
+struct SeenIds {
+    text: String,
+    hasher: RandomState,
+    /// hash -> (start, end) in `text`, and the line.
+    first: HashMap<u64, (usize, usize, u64), BuildHasherDefault<AlreadyHashed>>,
+    /// Ids whose hash another id already holds; practically always empty.
+    collided: Vec<(usize, usize, u64)>,
+}
+
+impl SeenIds {
+    fn with_capacity(ids: usize) -> Self {
+        SeenIds {
+            text: String::with_capacity(ids * 8),
+            hasher: RandomState::new(),
+            first: HashMap::with_capacity_and_hasher(ids, BuildHasherDefault::default()),
+            collided: Vec::new(),
+        }
     }
-    let found = Rc::new(rules(&SeriesId(series.to_string())));
-    cache.insert(series.to_string(), Rc::clone(&found));
-    found
+
+    /// Notes `id` on `line`; if it was met before, the line of its first
+    /// occurrence.
+    fn first_line(&mut self, id: &str, line: u64) -> Option<u64> {
+        let start = self.text.len();
+        let hash = self.hasher.hash_one(id);
+        match self.first.entry(hash) {
+            Entry::Vacant(slot) => {
+                self.text.push_str(id);
+                slot.insert((start, self.text.len(), line));
+                None
+            }
+            Entry::Occupied(taken) => {
+                let same = |&(s, e, _): &(usize, usize, u64)| self.text.get(s..e) == Some(id);
+                if same(taken.get()) {
+                    return Some(taken.get().2);
+                }
+                if let Some(&(_, _, first)) = self.collided.iter().find(|entry| same(entry)) {
+                    return Some(first);
+                }
+                self.text.push_str(id);
+                self.collided.push((start, self.text.len(), line));
+                None
+            }
+        }
+    }
+}
+
+/// A hasher for keys that are already hashes.
+#[derive(Default)]
+struct AlreadyHashed(u64);
+
+impl Hasher for AlreadyHashed {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        // Only u64 keys are hashed here; this is for completeness.
+        for &b in bytes {
+            self.0 = self.0.rotate_left(8) ^ u64::from(b);
+        }
+    }
+
+    fn write_u64(&mut self, value: u64) {
+        self.0 = value;
+    }
+}
+
+/// Each series' rules, asked of the caller once per file. Rows of one
+/// series tend to come together, so the last one is checked first.
+#[derive(Default)]
+struct RulesCache {
+    last_key: String,
+    last: Option<Rc<SeriesRules>>,
+    all: HashMap<String, Rc<SeriesRules>>,
+}
+
+impl RulesCache {
+    fn get(&mut self, series: &str, rules: &dyn Fn(&SeriesId) -> SeriesRules) -> Rc<SeriesRules> {
+        if let Some(last) = &self.last
+            && self.last_key == series
+        {
+            return Rc::clone(last);
+        }
+        let found = match self.all.get(series) {
+            Some(found) => Rc::clone(found),
+            None => {
+                let found = Rc::new(rules(&SeriesId(series.to_string())));
+                self.all.insert(series.to_string(), Rc::clone(&found));
+                found
+            }
+        };
+        self.last_key.clear();
+        self.last_key.push_str(series);
+        self.last = Some(Rc::clone(&found));
+        found
+    }
 }
 
 /// A cell for a message: control characters shown as `?`, cut at 40

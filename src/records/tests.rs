@@ -869,7 +869,10 @@ fn breaks(raw: &str) -> u64 {
 /// outcome against the independent row split: every data row is a record
 /// or an error, on the right lines, in order, and nothing else.
 fn check_every_row_accounted_for(bytes: &[u8]) {
-    let layout = Layout::default();
+    check_rows_with(bytes, &Layout::default());
+}
+
+fn check_rows_with(bytes: &[u8], layout: &Layout) {
     let rules = |s: &SeriesId| SeriesRules {
         unit: s
             .as_str()
@@ -880,7 +883,7 @@ fn check_every_row_accounted_for(bytes: &[u8]) {
         x_range: Some((0.0, 1e6)),
         allow_negative: false,
     };
-    let result = parse_file(bytes, &layout, &rules, TODAY);
+    let result = parse_file(bytes, layout, &rules, TODAY);
     let body = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
     let Ok(text) = std::str::from_utf8(body) else {
         assert!(
@@ -896,7 +899,7 @@ fn check_every_row_accounted_for(bytes: &[u8]) {
         );
         return;
     }
-    let (rows, open_at_end) = expected_rows(text, ',');
+    let (rows, open_at_end) = expected_rows(text, char::from(layout.delimiter));
     let mut rows = rows.into_iter().filter(|r| !r.blank);
     let Some(header) = rows.next() else {
         assert!(
@@ -992,6 +995,28 @@ proptest! {
         let with_header = format!("record_id,series,x,y,unit,sampled_at,note\n{text}");
         check_every_row_accounted_for(text.as_bytes());
         check_every_row_accounted_for(with_header.as_bytes());
+    }
+
+    #[test]
+    fn never_panics_on_a_semicolon_feed_with_every_option(
+        text in "[a-zA-Z0-9;,\"\r\n <.:/=-]{0,300}",
+        rows in prop::collection::vec("[0-9]{1,2}[./][0-9]{1,2}[./]20[0-9]{2};-?[0-9]{1,3}(,[0-9]{1,2})?( ?U)?;(U|J|ND|<)?;([0-9],[0-9])?", 0..20),
+    ) {
+        let layout = Layout {
+            delimiter: b';',
+            decimal_comma: true,
+            series: SeriesKey::Template("{site}/{analyte}".into()),
+            x: XSource::Date { column: "date".into(), format: DateFormat::DayMonthYear },
+            detection_limit: Some("dl".into()),
+            qualifier: Some("q".into()),
+            ..Layout::default()
+        };
+        let mut file = String::from("record_id;site;analyte;date;y;q;dl\n");
+        for (i, row) in rows.iter().enumerate() {
+            file.push_str(&format!("R{i};MW-1;nitrate;{row}\n"));
+        }
+        file.push_str(&text);
+        check_rows_with(file.as_bytes(), &layout);
     }
 
     #[test]

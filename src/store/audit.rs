@@ -76,24 +76,30 @@ fn entry_hash(prev: &str, at: &str, kind: &str, subject: &str, detail: &str) -> 
     hex::encode(h.finalize())
 }
 
+/// The newest entry's hash, if any.
+pub(super) fn last_hash(conn: &Connection) -> rusqlite::Result<Option<String>> {
+    conn.prepare_cached("SELECT hash FROM audit_log ORDER BY id DESC LIMIT 1")?
+        .query_row([], |r| r.get(0))
+        .optional()
+}
+
+/// Appends an entry after `prev` (the newest hash, `None` for the first
+/// entry) and returns the new entry's hash.
 pub(super) fn append(
     conn: &Connection,
+    prev: Option<&str>,
     at: &str,
     kind: AuditKind,
     subject: &str,
     detail: &str,
-) -> rusqlite::Result<()> {
-    let prev: String = conn
-        .prepare_cached("SELECT hash FROM audit_log ORDER BY id DESC LIMIT 1")?
-        .query_row([], |r| r.get(0))
-        .optional()?
-        .unwrap_or_else(|| GENESIS.to_string());
-    let hash = entry_hash(&prev, at, kind.as_str(), subject, detail);
+) -> rusqlite::Result<String> {
+    let prev = prev.unwrap_or(GENESIS);
+    let hash = entry_hash(prev, at, kind.as_str(), subject, detail);
     conn.prepare_cached(
         "INSERT INTO audit_log (at, kind, subject, detail, prev_hash, hash) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
     )?
     .execute(params![at, kind.as_str(), subject, detail, prev, hash])?;
-    Ok(())
+    Ok(hash)
 }
 
 pub(super) fn entries(conn: &Connection) -> rusqlite::Result<Vec<AuditEntry>> {

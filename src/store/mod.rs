@@ -179,10 +179,10 @@ pub struct RecordPlacement<'a> {
 /// One fit-history row about to be written.
 #[derive(Debug, Clone, PartialEq)]
 pub struct NewFit<'a> {
-    /// The series.
-    pub series: SeriesRowId,
-    /// Its new version number.
-    pub version: i64,
+    /// The series' state after this version (its id, version number,
+    /// co-moments, counts); written with the row so that a restart resumes
+    /// exactly.
+    pub state: &'a SeriesRow,
     /// The file that triggered the refit.
     pub trigger_file: Option<FileId>,
     /// RFC 3339 UTC.
@@ -191,10 +191,6 @@ pub struct NewFit<'a> {
     pub transform: &'a str,
     /// Non-detect policy.
     pub non_detects: &'a str,
-    /// Non-detects stored for the series.
-    pub n_censored: i64,
-    /// Points in the fit.
-    pub n: i64,
     /// Confidence level.
     pub level: f64,
     /// The fit, when one exists (n ≥ 3 and x varies).
@@ -295,6 +291,9 @@ pub struct FitPoint {
 pub struct Store {
     conn: Connection,
     path: PathBuf,
+    /// Hash of the newest audit entry, kept so that appending does not
+    /// query it each time; updated only when a transaction commits.
+    last_audit: Option<String>,
 }
 
 impl Store {
@@ -336,8 +335,18 @@ impl Store {
             .map_err(wrap)?;
         conn.pragma_update(None, "foreign_keys", "ON")
             .map_err(wrap)?;
+        // A larger page cache keeps the indexes of a long history in memory.
+        conn.pragma_update(None, "cache_size", -65_536)
+            .map_err(wrap)?;
+        conn.pragma_update(None, "wal_autocheckpoint", 4_000)
+            .map_err(wrap)?;
         migrate(&mut conn, &path)?;
-        Ok(Store { conn, path })
+        let last_audit = audit::last_hash(&conn).map_err(wrap)?;
+        Ok(Store {
+            conn,
+            path,
+            last_audit,
+        })
     }
 
     fn wrap(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
@@ -382,7 +391,13 @@ impl Store {
                 path: path.clone(),
                 source,
             })?;
-        Ok(Tx { tx, path })
+        let pending = std::cell::RefCell::new(self.last_audit.clone());
+        Ok(Tx {
+            tx,
+            path,
+            last_audit: &mut self.last_audit,
+            pending_audit: pending,
+        })
     }
 
     /// One audit entry in its own transaction (for events outside a file's
@@ -398,10 +413,12 @@ impl Store {
         let mut stmt = self
             .conn
             .prepare(
-                "SELECT s.key, s.n, s.fit_version, s.last_arrival, s.transform, s.non_detects, s.unit,
-                        s.records, s.censored, f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p
+                "SELECT s.key, COALESCE(f.n, 0), COALESCE(f.version, 0), f.created_at, s.transform,
+                        s.non_detects, s.unit, COALESCE(f.records, 0), COALESCE(f.n_censored, 0),
+                        f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p
                  FROM series s
-                 LEFT JOIN fits f ON f.series_id = s.id AND f.version = s.fit_version
+                 LEFT JOIN fits f ON f.series_id = s.id
+                      AND f.version = (SELECT MAX(version) FROM fits WHERE series_id = s.id)
                  ORDER BY s.key",
             )
             .map_err(self.wrap())?;
@@ -558,6 +575,8 @@ pub struct Totals {
 pub struct Tx<'a> {
     tx: Transaction<'a>,
     path: PathBuf,
+    last_audit: &'a mut Option<String>,
+    pending_audit: std::cell::RefCell<Option<String>>,
 }
 
 impl Tx<'_> {
@@ -649,37 +668,6 @@ impl Tx<'_> {
             records: 0,
             censored: 0,
         })
-    }
-
-    /// Saves a series' running state.
-    pub fn save_series(&self, row: &SeriesRow) -> Result<()> {
-        let p = row.moments.to_parts();
-        self.tx
-            .prepare_cached(
-                "UPDATE series SET n = ?2, origin = ?3, mean_x = ?4, mean_y = ?5, sxx = ?6, sxy = ?7,
-                    syy = ?8, sse = ?9, fit_version = ?10, robust_n = ?11, last_arrival = ?12,
-                    records = ?13, censored = ?14 WHERE id = ?1",
-            )
-            .and_then(|mut s| {
-                s.execute(params![
-                    row.id.0,
-                    p.n as i64,
-                    p.origin,
-                    p.mean_x,
-                    p.mean_y,
-                    p.sxx,
-                    p.sxy,
-                    p.syy,
-                    p.sse,
-                    row.fit_version,
-                    row.robust_n,
-                    row.last_arrival,
-                    row.records,
-                    row.censored
-                ])
-            })
-            .map_err(self.wrap())?;
-        Ok(())
     }
 
     /// Tries to store `record` as the current version of its id. Returns
@@ -874,20 +862,24 @@ impl Tx<'_> {
                 "INSERT INTO fits (series_id, version, trigger_file, created_at, transform, non_detects, n,
                     n_censored, level, slope, intercept, slope_se, intercept_se, slope_t, slope_p,
                     slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
-                    theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note)
+                    theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note,
+                    records, robust_n, origin, mean_x, mean_y, sxx, sxy, syy, sse)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17,
-                    ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26)",
+                    ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32, ?33,
+                    ?34, ?35)",
             )
             .and_then(|mut s| {
+                let st = f.state;
+                let m = st.moments.to_parts();
                 s.execute(params![
-                    f.series.0,
-                    f.version,
+                    st.id.0,
+                    st.fit_version,
                     f.trigger_file.map(|id| id.0),
                     f.created_at,
                     f.transform,
                     f.non_detects,
-                    f.n,
-                    f.n_censored,
+                    m.n as i64,
+                    st.censored,
                     f.level,
                     fit.map(|v| v.slope),
                     fit.map(|v| v.intercept),
@@ -905,7 +897,16 @@ impl Tx<'_> {
                     robust.map(|r| r.ci_high),
                     robust.map(|r| r.mk_s),
                     robust.map(|r| r.mk_p),
-                    f.note
+                    f.note,
+                    st.records,
+                    st.robust_n,
+                    m.origin,
+                    m.mean_x,
+                    m.mean_y,
+                    m.sxx,
+                    m.sxy,
+                    m.syy,
+                    m.sse
                 ])
             })
             .map_err(self.wrap())?;
@@ -936,15 +937,25 @@ impl Tx<'_> {
         subject: &str,
         detail: &str,
     ) -> Result<()> {
-        audit::append(&self.tx, at, kind, subject, detail).map_err(self.wrap())
+        let prev = self.pending_audit.borrow().clone();
+        let hash = audit::append(&self.tx, prev.as_deref(), at, kind, subject, detail)
+            .map_err(self.wrap())?;
+        *self.pending_audit.borrow_mut() = Some(hash);
+        Ok(())
     }
 
     /// Commits: everything of the file is durable when this returns.
     pub fn commit(self) -> Result<()> {
-        let path = self.path;
-        self.tx
-            .commit()
-            .map_err(|source| StoreError::Sqlite { path, source })
+        let Tx {
+            tx,
+            path,
+            last_audit,
+            pending_audit,
+        } = self;
+        tx.commit()
+            .map_err(|source| StoreError::Sqlite { path, source })?;
+        *last_audit = pending_audit.into_inner();
+        Ok(())
     }
 }
 
@@ -984,8 +995,14 @@ fn slope_and_p(m: &Moments) -> Option<(f64, Option<f64>)> {
 
 fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow>> {
     conn.prepare_cached(
-        "SELECT id, key, unit, transform, non_detects, n, origin, mean_x, mean_y, sxx, sxy, syy, sse,
-                fit_version, robust_n, last_arrival, records, censored FROM series WHERE key = ?1",
+        "SELECT s.id, s.key, s.unit, s.transform, s.non_detects, COALESCE(f.n, 0), COALESCE(f.origin, 0),
+                COALESCE(f.mean_x, 0), COALESCE(f.mean_y, 0), COALESCE(f.sxx, 0), COALESCE(f.sxy, 0),
+                COALESCE(f.syy, 0), COALESCE(f.sse, 0), COALESCE(f.version, 0), COALESCE(f.robust_n, 0),
+                f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0)
+         FROM series s
+         LEFT JOIN fits f ON f.series_id = s.id
+              AND f.version = (SELECT MAX(version) FROM fits WHERE series_id = s.id)
+         WHERE s.key = ?1",
     )?
     .query_row([key], |r| {
         Ok(SeriesRow {
@@ -1081,7 +1098,19 @@ mod tests {
             .unwrap();
         row.moments = m;
         row.fit_version = 3;
-        tx.save_series(&row).unwrap();
+        row.records = 3;
+        tx.insert_fit(&NewFit {
+            state: &row,
+            trigger_file: None,
+            created_at: "2026-12-02T00:00:00Z",
+            transform: "none",
+            non_detects: "exclude",
+            level: 0.95,
+            fit: None,
+            robust: None,
+            note: None,
+        })
+        .unwrap();
         tx.commit().unwrap();
         let back = store.series("MW-1/nitrate").unwrap().unwrap();
         assert_eq!(back.moments, m);

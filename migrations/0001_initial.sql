@@ -27,8 +27,9 @@ CREATE TABLE series (
     non_detects  TEXT    NOT NULL           -- 'exclude' or 'substitute:<fraction>'
 );
 
--- Records with provenance. A record id has at most one 'current' version;
--- a resubmission with other values is a 'proposed' version awaiting review.
+-- Records with provenance. Every record id starts at version 1; a
+-- resubmission with other values is a later, 'proposed' version awaiting
+-- review, so "is this id stored?" is "does its version 1 exist?".
 CREATE TABLE records (
     id           INTEGER PRIMARY KEY,
     record_id    TEXT    NOT NULL,
@@ -66,7 +67,6 @@ CREATE TABLE records (
     undefined    TEXT,                      -- why some measures are absent
     UNIQUE (record_id, version)
 );
-CREATE UNIQUE INDEX records_one_current ON records(record_id) WHERE status = 'current';
 CREATE INDEX records_by_series ON records(series_id, status);
 
 -- Rows refused by validation, with where and why.

@@ -284,6 +284,13 @@ mod tests {
         ));
     }
 
+    /// The per-series state must stay small: a daemon keeps one per series
+    /// (the target is a few hundred bytes).
+    #[test]
+    fn series_state_is_64_bytes() {
+        assert_eq!(std::mem::size_of::<SeriesState>(), 64);
+    }
+
     #[test]
     fn refuses_non_finite_and_keeps_state() {
         let mut st = SeriesState::new();

@@ -670,9 +670,9 @@ impl Tx<'_> {
         })
     }
 
-    /// Tries to store `record` as the current version of its id. Returns
-    /// `Ok(Some(row))` when stored, `Ok(None)` when the id already has a
-    /// current version (the caller then compares with [`Tx::current_record`]).
+    /// Tries to store `record` as version 1, the current version, of its
+    /// id. Returns `Ok(Some(row))` when stored, `Ok(None)` when the id is
+    /// already stored (the caller then compares with [`Tx::current_record`]).
     pub fn insert_current(
         &self,
         record: &Record,

@@ -1,0 +1,50 @@
+#!/usr/bin/env bash
+# Ingest speed side by side in one run, on a workload from
+# ../shared/bench/make_workload.py (an invented scenario):
+#   1. a bare SQLite insert of the same rows (benches/bare_insert.rs),
+#   2. `slopewarden ingest` over the same inbox (parse, validate, refit,
+#      diagnostics, audit, commit per file), with its peak RSS.
+# Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
+#        (default 1000 1000 1000: 1,000,000 records in 1,000 files)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+SERIES=${1:-1000}
+POINTS=${2:-1000}
+BATCH=${3:-1000}
+SHARED=${SHARED:-../shared}
+work=$(mktemp -d)
+trap 'rm -rf "$work"' EXIT
+
+python3 "$SHARED/bench/make_workload.py" --out "$work/w" --series "$SERIES" \
+  --points-per-series "$POINTS" --batch "$BATCH" --seed 3 >/dev/null
+files=$(ls "$work/w/inbox" | wc -l)
+echo "workload: $SERIES series x $POINTS points, $files files"
+
+cargo build --release --quiet
+cargo bench --bench bare_insert --no-run --quiet 2>/dev/null || true
+bare_bin=$(ls -t target/release/deps/bare_insert-* | grep -v '\.d$' | head -1)
+
+bare_out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
+echo "$bare_out"
+bare_s=$(echo "$bare_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+
+cat > "$work/sw.toml" <<TOML
+[paths]
+inbox = "w/inbox"
+database = "sw.sqlite3"
+[watch]
+keep_files = true
+TOML
+/usr/bin/time -v target/release/slopewarden ingest --config "$work/sw.toml" "$work/w/inbox" \
+  >"$work/sw.out" 2>"$work/sw.err" &
+wait $! || { cat "$work/sw.err" | tail -20; exit 1; }
+sw_s=$(grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }')
+rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
+records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
+cat "$work/sw.out"
+python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" <<'PY'
+import sys
+records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
+print(f"slopewarden ingest: {records} records in {sw:.2f} s = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
+print(f"bare SQLite insert: {bare:.2f} s; ratio slopewarden / bare = {sw/bare:.2f}")
+PY

@@ -433,6 +433,7 @@ fn store_file(
         if !t.changed {
             continue;
         }
+        let _series_span = tracing::debug_span!("series", series = %key).entered();
         refits += 1;
         t.row.fit_version += 1;
         t.row.moments = *t.state.moments();

@@ -373,6 +373,58 @@ fn kill_9_during_a_large_ingest_then_restart_stores_every_record_exactly_once() 
     assert_eq!(site.sql("SELECT COUNT(*) FROM fits"), (files * 10) as i64);
 }
 
+#[test]
+fn malformed_files_are_set_aside_while_the_daemon_stays_up_and_good_files_are_stored() {
+    let site = Site::new();
+    let mut child = site.start();
+    let inbox = site.path("inbox");
+    // Whole files that cannot be read as records.
+    std::fs::write(
+        inbox.join("binary.csv"),
+        [0x89, b'P', b'N', b'G', 0, 0, 0, 13, 0xff, 0xfe],
+    )
+    .unwrap();
+    let mut latin1 = b"record_id,series,x,y\nR1,MW-01/nitrate,2020.1,".to_vec();
+    latin1.extend_from_slice(&[0xB5, b'4', b'\n']);
+    std::fs::write(inbox.join("latin-1.csv"), latin1).unwrap();
+    std::fs::write(inbox.join("one line.csv"), "x".repeat(10 * 1024 * 1024)).unwrap();
+    std::fs::write(inbox.join("empty.csv"), "").unwrap();
+    // Files with some bad rows beside good ones.
+    site.drop_file(
+        "ragged and hostile.csv",
+        "record_id,series,x,y\nG1,MW-02/boron,2020.0,0.5\nG2,MW-02/boron,2020.25\nG3,MW-02/boron,2020.5,inf\nG4,MW-02/boron,2020.75,@SUM(A1)\nG5,MW-02/boron,2021.0,0.6\n",
+    );
+    site.drop_file("Brunnen ü 3 $(date).csv", &well_file(100, &quarterly(5, 0)));
+    wait_for("every file handled", Duration::from_secs(30), || {
+        site.inbox_files().is_empty()
+    });
+    // The daemon is still running.
+    assert!(child.try_wait().unwrap().is_none(), "the daemon exited");
+    Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status()
+        .unwrap();
+    assert_eq!(child.wait().unwrap().code(), Some(0));
+    assert_eq!(site.sql("SELECT COUNT(*) FROM records"), 7);
+    assert_eq!(site.sql("SELECT COUNT(*) FROM quarantined_rows"), 3);
+    assert_eq!(
+        site.sql("SELECT COUNT(*) FROM source_files WHERE outcome = 'quarantined'"),
+        4
+    );
+    let reasons: Vec<PathBuf> = walk(&site.path("data/quarantine"))
+        .into_iter()
+        .filter(|p| p.to_string_lossy().ends_with(".reason.txt"))
+        .collect();
+    assert_eq!(reasons.len(), 4, "{reasons:?}");
+    let archived = walk(&site.path("data/archive"));
+    assert!(
+        archived
+            .iter()
+            .any(|p| p.to_string_lossy().ends_with("Brunnen ü 3 $(date).csv")),
+        "{archived:?}"
+    );
+}
+
 fn walk(dir: &Path) -> Vec<PathBuf> {
     let mut out = Vec::new();
     if let Ok(rd) = std::fs::read_dir(dir) {

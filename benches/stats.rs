@@ -7,7 +7,7 @@
 use std::hint::black_box;
 
 use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
-use slopewarden::stats::{SeriesState, fit_line, influence, influence_into};
+use slopewarden::stats::{Influence, SeriesState, fit_line, influence, influence_into};
 
 /// Deterministic data like a weekly monitoring series in decimal years.
 fn series(n: usize) -> (Vec<f64>, Vec<f64>) {
@@ -59,6 +59,18 @@ fn all_points(c: &mut Criterion) {
         let fit = fit_line(&x, &y, 0.95).unwrap_or_else(|e| panic!("BUG: {e}"));
         group.bench_with_input(BenchmarkId::new("fresh_vec", n), &n, |b, _| {
             b.iter(|| black_box(influence(&x, &y, &fit).map(|v| v.len())))
+        });
+        // Every point's diagnostics computed, the largest Cook's distance
+        // kept: the work of a scan, with no per-point storage.
+        group.bench_with_input(BenchmarkId::new("scan", n), &n, |b, _| {
+            b.iter(|| {
+                let view = Influence::new(&x, &y, &fit).unwrap_or_else(|e| panic!("BUG: {e}"));
+                black_box(
+                    view.iter()
+                        .filter_map(|p| p.cooks_distance())
+                        .fold(0.0f64, f64::max),
+                )
+            })
         });
         let mut out = Vec::new();
         group.bench_with_input(BenchmarkId::new("reused_vec", n), &n, |b, _| {

@@ -213,7 +213,9 @@ pub(crate) fn point_influence(t: PointTerms) -> PointInfluence {
     out
 }
 
-/// Diagnostics for every point of `fit`, in input order.
+/// Diagnostics for every point of `fit`, in input order, collected into a
+/// vector (80 bytes a point). [`Influence`] computes the same values on
+/// demand without storing them.
 ///
 /// `x` and `y` must be the points `fit` was computed from (same scale, same
 /// order); they are checked for length only.
@@ -231,70 +233,123 @@ pub fn influence_into(
     fit: &LineFit,
     out: &mut Vec<PointInfluence>,
 ) -> Result<(), FitError> {
-    if x.len() != y.len() || x.len() != fit.n {
-        return Err(FitError::LengthMismatch {
-            x_len: x.len(),
-            y_len: y.len(),
-        });
-    }
+    let view = Influence::new(x, y, fit)?;
     out.clear();
     out.reserve(fit.n);
-    let m = &fit.moments;
-    let n = fit.n as f64;
-    let origin = m.origin();
-    let mx = m.mean_x_shifted();
-    let my = m.mean_y();
-    let sxx = m.sxx();
-    let inv_sxx = 1.0 / sxx;
-    let inv_n = 1.0 / n;
-    let n1_over_n = (n - 1.0) / n;
-    let b = fit.slope;
-    let df_i = (n - 3.0).max(1.0);
-    // s₍ᵢ₎ at or below this is an exact line without the point (see is_exact).
-    let scale = my.abs().max((m.syy() / n).sqrt());
-    let exact_s2 = {
+    out.extend(view.iter());
+    Ok(())
+}
+
+/// Every point's diagnostics, each computed in O(1) when asked for, with no
+/// storage: scanning all of them costs one pass over the data.
+#[derive(Debug, Clone, Copy)]
+pub struct Influence<'a> {
+    x: &'a [f64],
+    y: &'a [f64],
+    fit: &'a LineFit,
+    n: f64,
+    origin: f64,
+    mx: f64,
+    my: f64,
+    sxx: f64,
+    inv_sxx: f64,
+    inv_n: f64,
+    n1_over_n: f64,
+    df_i: f64,
+    exact_s2: f64,
+    cancel_at: f64,
+    mean_x: f64,
+}
+
+impl<'a> Influence<'a> {
+    /// A view over the points of `fit`; `x` and `y` must be its points (same
+    /// scale, same order), checked for length only.
+    pub fn new(x: &'a [f64], y: &'a [f64], fit: &'a LineFit) -> Result<Influence<'a>, FitError> {
+        if x.len() != y.len() || x.len() != fit.n {
+            return Err(FitError::LengthMismatch {
+                x_len: x.len(),
+                y_len: y.len(),
+            });
+        }
+        let m = &fit.moments;
+        let n = fit.n as f64;
+        let my = m.mean_y();
+        // s₍ᵢ₎ at or below this is an exact line without the point (see is_exact).
+        let scale = my.abs().max((m.syy() / n).sqrt());
         let t = super::line::EXACT_RELATIVE_SD * scale;
-        t * t
-    };
-    let cancel_at = DOWNDATE_CANCELLATION * fit.sse;
-    for i in 0..fit.n {
-        let dx = (x[i] - origin) - mx;
-        let e = (y[i] - my) - b * dx;
-        let dx2 = dx * dx * inv_sxx;
-        let h = inv_n + dx2;
-        let one_minus_h = n1_over_n - dx2;
+        Ok(Influence {
+            x,
+            y,
+            fit,
+            n,
+            origin: m.origin(),
+            mx: m.mean_x_shifted(),
+            my,
+            sxx: m.sxx(),
+            inv_sxx: 1.0 / m.sxx(),
+            inv_n: 1.0 / n,
+            n1_over_n: (n - 1.0) / n,
+            df_i: (n - 3.0).max(1.0),
+            exact_s2: t * t,
+            cancel_at: DOWNDATE_CANCELLATION * fit.sse,
+            mean_x: m.mean_x(),
+        })
+    }
+
+    /// Number of points.
+    pub fn len(&self) -> usize {
+        self.fit.n
+    }
+
+    /// Whether there are no points (never, for a valid fit).
+    pub fn is_empty(&self) -> bool {
+        self.fit.n == 0
+    }
+
+    /// The diagnostics of point `i` (0-based); `None` past the end.
+    pub fn get(&self, i: usize) -> Option<PointInfluence> {
+        let (&xi, &yi) = (self.x.get(i)?, self.y.get(i)?);
+        let dx = (xi - self.origin) - self.mx;
+        let e = (yi - self.my) - self.fit.slope * dx;
+        let dx2 = dx * dx * self.inv_sxx;
+        let h = self.inv_n + dx2;
+        let one_minus_h = self.n1_over_n - dx2;
         let reduction = if one_minus_h > 0.0 {
             e * e / one_minus_h
         } else {
             0.0
         };
         let (sse_without, exact_without) =
-            if !fit.exact && one_minus_h > LEVERAGE_ONE_GAP && reduction > cancel_at {
+            if !self.fit.exact && one_minus_h > LEVERAGE_ONE_GAP && reduction > self.cancel_at {
                 // Almost all the scatter sits in this point: recompute the
                 // fit without it from the data instead of subtracting.
-                let rest = moments_without(x, y, i);
-                let s_rest = (rest.sse() / df_i).sqrt();
-                let exact = is_exact(s_rest, rest.mean_y(), rest.syy(), n - 1.0);
+                let rest = moments_without(self.x, self.y, i);
+                let s_rest = (rest.sse() / self.df_i).sqrt();
+                let exact = is_exact(s_rest, rest.mean_y(), rest.syy(), self.n - 1.0);
                 (if exact { 0.0 } else { rest.sse() }, exact)
             } else {
-                let sse_i = (fit.sse - reduction).max(0.0);
-                (sse_i, sse_i / df_i <= exact_s2)
+                let sse_i = (self.fit.sse - reduction).max(0.0);
+                (sse_i, sse_i / self.df_i <= self.exact_s2)
             };
-        out.push(point_influence(PointTerms {
-            n,
+        Some(point_influence(PointTerms {
+            n: self.n,
             dx,
             e,
             h,
             one_minus_h,
-            sxx,
-            mean_x: m.mean_x(),
-            s: fit.residual_sd,
-            exact: fit.exact,
+            sxx: self.sxx,
+            mean_x: self.mean_x,
+            s: self.fit.residual_sd,
+            exact: self.fit.exact,
             sse_without,
             exact_without,
-        }));
+        }))
     }
-    Ok(())
+
+    /// Every point's diagnostics, in input order.
+    pub fn iter(&self) -> impl Iterator<Item = PointInfluence> + '_ {
+        (0..self.fit.n).filter_map(move |i| self.get(i))
+    }
 }
 
 fn moments_without(x: &[f64], y: &[f64], skip: usize) -> Moments {

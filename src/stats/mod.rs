@@ -9,7 +9,7 @@
 //!   added or removed (Welford-style), with a fixed per-series x origin.
 //! - [`LineFit`]: least squares of y on x with inference (standard errors,
 //!   t, two-sided p, confidence interval, R², residual SD).
-//! - [`PointInfluence`] and [`influence`]: leverage, standardized and
+//! - [`PointInfluence`], [`Influence`] and [`influence`]: leverage, standardized and
 //!   studentized residuals, Cook's distance, DFFITS, DFBETAS, covariance
 //!   ratio for every point, closed forms for the straight line.
 //! - [`general`]: the same diagnostics for any number of coefficients via QR
@@ -39,7 +39,7 @@ mod transform;
 
 pub use error::{FitError, check_finite_pairs, check_level};
 pub use influence::{
-    LeaveOneOut, PointInfluence, Undefined, influence, influence_into, leave_one_out,
+    Influence, LeaveOneOut, PointInfluence, Undefined, influence, influence_into, leave_one_out,
 };
 pub use line::{LineFit, fit_line};
 pub use moments::{Moments, MomentsParts};

@@ -365,8 +365,30 @@ mod commands {
         }
     }
 
+    /// A number for a table: 5 significant digits, plain when readable.
+    fn num(v: f64) -> String {
+        let a = v.abs();
+        if v == 0.0 || (1e-3..1e5).contains(&a) {
+            let places = if v == 0.0 {
+                1
+            } else {
+                (4 - a.log10().floor() as i32).clamp(0, 8) as usize
+            };
+            format!("{v:.places$}")
+        } else {
+            format!("{v:.4e}")
+        }
+    }
+
     fn opt(v: Option<f64>) -> String {
-        v.map_or("-".into(), |v| format!("{v:.4e}"))
+        v.map_or("-".into(), num)
+    }
+
+    fn interval(low: Option<f64>, high: Option<f64>) -> String {
+        match (low, high) {
+            (Some(a), Some(b)) => format!("[{}, {}]", num(a), num(b)),
+            _ => "-".into(),
+        }
     }
 
     pub fn status(config: Option<&Path>, json: bool) -> ExitCode {
@@ -396,25 +418,26 @@ mod commands {
             return ExitCode::SUCCESS;
         }
         println!(
-            "{:<32} {:>8} {:>6} {:>12} {:>25} {:>10}  last arrival",
-            "series", "records", "n", "slope", "CI", "p"
+            "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9}  {:<22}  non-detects",
+            "series", "records", "ND", "n", "slope", "CI", "p", "last arrival"
         );
         for r in rows {
-            let ci = match (r.slope_ci_low, r.slope_ci_high) {
-                (Some(a), Some(b)) => format!("[{a:.3e}, {b:.3e}]"),
-                _ => "-".into(),
-            };
             println!(
-                "{:<32} {:>8} {:>6} {:>12} {:>25} {:>10}  {}",
+                "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9}  {:<22}  {}",
                 r.series,
                 r.records,
+                r.censored,
                 r.n,
                 opt(r.slope),
-                ci,
+                interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
-                r.last_arrival.unwrap_or_default()
+                r.last_arrival.unwrap_or_default(),
+                r.non_detects
             );
         }
+        println!(
+            "(ND: non-detects stored; n: points in the fit; p is '-' with no scatter or fewer than 3 points)"
+        );
         ExitCode::SUCCESS
     }
 
@@ -497,20 +520,16 @@ mod commands {
             return print_json(&rows);
         }
         println!(
-            "{:>7} {:>6} {:>12} {:>25} {:>10}  {:<20}  trigger",
+            "{:>7} {:>6} {:>12} {:>26} {:>9}  {:<20}  trigger",
             "version", "n", "slope", "CI", "p", "at"
         );
         for r in rows {
-            let ci = match (r.slope_ci_low, r.slope_ci_high) {
-                (Some(a), Some(b)) => format!("[{a:.3e}, {b:.3e}]"),
-                _ => "-".into(),
-            };
             println!(
-                "{:>7} {:>6} {:>12} {:>25} {:>10}  {:<20}  {}",
+                "{:>7} {:>6} {:>12} {:>26} {:>9}  {:<20}  {}",
                 r.version,
                 r.n,
                 opt(r.slope),
-                ci,
+                interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
                 r.created_at,
                 r.trigger_file.unwrap_or_default()

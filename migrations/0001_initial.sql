@@ -17,14 +17,19 @@ CREATE TABLE source_files (
     detail       TEXT                       -- why quarantined, when it was
 );
 
--- One row per series key with its settings; its running state is the
--- latest row of `fits`.
+-- One row per series key with its settings. Its running state is its
+-- latest row of `fits`; its fit versions and its records are chained
+-- newest to oldest (fits.prev_fit, records.prev_in_series), so a file that
+-- touches a thousand series appends rows instead of updating a thousand
+-- scattered index pages.
 CREATE TABLE series (
     id           INTEGER PRIMARY KEY,
     key          TEXT    NOT NULL UNIQUE,
     unit         TEXT,
     transform    TEXT    NOT NULL,
-    non_detects  TEXT    NOT NULL           -- 'exclude' or 'substitute:<fraction>'
+    non_detects  TEXT    NOT NULL,          -- 'exclude' or 'substitute:<fraction>'
+    latest_fit   INTEGER,                   -- fits.id of the current version
+    latest_record INTEGER                   -- records.id of the newest current record
 );
 
 -- Records with provenance. Every record id starts at version 1; a
@@ -50,6 +55,7 @@ CREATE TABLE records (
     file_id      INTEGER NOT NULL REFERENCES source_files(id),
     line         INTEGER NOT NULL,
     raw          TEXT    NOT NULL,
+    prev_in_series INTEGER,                 -- the series' previous current record
     -- the record's own diagnostics in the fit it joined on arrival
     -- (NULL while the series was too short, or when it is not in the fit)
     joined_fit   INTEGER,                   -- fit version it joined
@@ -67,7 +73,6 @@ CREATE TABLE records (
     undefined    TEXT,                      -- why some measures are absent
     UNIQUE (record_id, version)
 );
-CREATE INDEX records_by_series ON records(series_id, status);
 
 -- Rows refused by validation, with where and why.
 CREATE TABLE quarantined_rows (
@@ -120,7 +125,7 @@ CREATE TABLE fits (
     sxy          REAL    NOT NULL,
     syy          REAL    NOT NULL,
     sse          REAL    NOT NULL,
-    UNIQUE (series_id, version)
+    prev_fit     INTEGER                    -- the series' previous version
 );
 
 -- Diagnostics of points that cross a cutoff in a later refit (a record's

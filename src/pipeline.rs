@@ -370,8 +370,9 @@ fn store_file(
             fit_point,
             arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
         };
-        match tx.insert_current(record, t.row.id, file_id, placement)? {
-            Some(_) => {
+        match tx.insert_current(record, t.row.id, file_id, placement, t.row.latest_record)? {
+            Some(row_id) => {
+                t.row.latest_record = Some(row_id);
                 counts.new += 1;
                 t.row.records += 1;
                 if record.y.is_censored() {
@@ -457,7 +458,7 @@ fn store_file(
             )),
             _ => None,
         };
-        tx.insert_fit(&NewFit {
+        let fit_row = tx.insert_fit(&NewFit {
             state: &t.row,
             trigger_file: Some(file_id),
             created_at: at,
@@ -468,6 +469,8 @@ fn store_file(
             robust,
             note,
         })?;
+        t.row.latest_fit = Some(fit_row);
+        tx.save_series_heads(&t.row)?;
         refit_list.push_str(&refit_detail(&t.row, fit.as_ref().ok()));
         refit_list.push('\n');
     }

@@ -147,6 +147,10 @@ pub struct SeriesRow {
     pub records: i64,
     /// Non-detects among them.
     pub censored: i64,
+    /// Row of the current fit version.
+    pub latest_fit: Option<i64>,
+    /// Row of the newest current record.
+    pub latest_record: Option<i64>,
 }
 
 /// A stored record's current version, for duplicate and conflict checks.
@@ -416,9 +420,7 @@ impl Store {
                 "SELECT s.key, COALESCE(f.n, 0), COALESCE(f.version, 0), f.created_at, s.transform,
                         s.non_detects, s.unit, COALESCE(f.records, 0), COALESCE(f.n_censored, 0),
                         f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p
-                 FROM series s
-                 LEFT JOIN fits f ON f.series_id = s.id
-                      AND f.version = (SELECT MAX(version) FROM fits WHERE series_id = s.id)
+                 FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
                  ORDER BY s.key",
             )
             .map_err(self.wrap())?;
@@ -454,10 +456,16 @@ impl Store {
         let mut stmt = self
             .conn
             .prepare(
-                "SELECT f.version, f.created_at, sf.name, f.n, f.slope, f.slope_ci_low, f.slope_ci_high,
+                "WITH RECURSIVE chain(id) AS (
+                     SELECT latest_fit FROM series WHERE id = ?1
+                     UNION ALL
+                     SELECT f.prev_fit FROM chain c CROSS JOIN fits f ON f.id = c.id WHERE f.prev_fit IS NOT NULL
+                 )
+                 SELECT f.version, f.created_at, sf.name, f.n, f.slope, f.slope_ci_low, f.slope_ci_high,
                         f.slope_p, f.r_squared, f.theil_sen_slope, f.note
-                 FROM fits f LEFT JOIN source_files sf ON sf.id = f.trigger_file
-                 WHERE f.series_id = ?1 ORDER BY f.version",
+                 FROM chain c CROSS JOIN fits f ON f.id = c.id
+                 LEFT JOIN source_files sf ON sf.id = f.trigger_file
+                 ORDER BY f.version",
             )
             .map_err(self.wrap())?;
         let rows = stmt
@@ -501,25 +509,13 @@ impl Store {
         let Some(id) = self.series_id(key)? else {
             return Ok(None);
         };
-        let mut stmt = self
-            .conn
-            .prepare(
-                "SELECT record_id, fit_x, fit_y FROM records
-                 WHERE series_id = ?1 AND status = 'current' AND in_fit = 1 ORDER BY id",
-            )
-            .map_err(self.wrap())?;
-        let rows = stmt
-            .query_map([id.0], |r| {
-                Ok(FitPoint {
-                    record_id: r.get(0)?,
-                    x: r.get(1)?,
-                    y: r.get(2)?,
-                })
-            })
-            .map_err(self.wrap())?;
-        rows.collect::<std::result::Result<Vec<_>, _>>()
-            .map(Some)
-            .map_err(self.wrap())
+        let points = chain_points(&self.conn, id).map_err(self.wrap())?;
+        Ok(Some(
+            points
+                .into_iter()
+                .map(|(record_id, x, y)| FitPoint { record_id, x, y })
+                .collect(),
+        ))
     }
 
     /// Counts for tests and `status`: (files, current records, proposed
@@ -667,6 +663,8 @@ impl Tx<'_> {
             last_arrival: None,
             records: 0,
             censored: 0,
+            latest_fit: None,
+            latest_record: None,
         })
     }
 
@@ -679,8 +677,18 @@ impl Tx<'_> {
         series: SeriesRowId,
         file: FileId,
         placement: RecordPlacement<'_>,
+        prev_in_series: Option<i64>,
     ) -> Result<Option<i64>> {
-        let changed = self.insert_record(record, series, file, placement, 1, "current", true)?;
+        let changed = self.insert_record(
+            record,
+            series,
+            file,
+            placement,
+            1,
+            "current",
+            true,
+            prev_in_series,
+        )?;
         Ok(changed.then(|| self.tx.last_insert_rowid()))
     }
 
@@ -696,7 +704,9 @@ impl Tx<'_> {
             fit_point: None,
             arrival: None,
         };
-        self.insert_record(record, series, file, placement, version, "proposed", false)?;
+        self.insert_record(
+            record, series, file, placement, version, "proposed", false, None,
+        )?;
         Ok(self.tx.last_insert_rowid())
     }
 
@@ -710,23 +720,24 @@ impl Tx<'_> {
         version: i64,
         status: &str,
         or_ignore: bool,
+        prev_in_series: Option<i64>,
     ) -> Result<bool> {
         let sql = if or_ignore {
             "INSERT OR IGNORE INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
                 fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
                 joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
                 dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-                slope_p_without, undefined)
+                slope_p_without, undefined, prev_in_series)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
-                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31)"
+                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
         } else {
             "INSERT INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
                 fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
                 joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
                 dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-                slope_p_without, undefined)
+                slope_p_without, undefined, prev_in_series)
              VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
-                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31)"
+                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
         };
         let arrival = placement.arrival.map(|(a, _, _)| a);
         let inf = arrival.and_then(|a| a.influence.as_ref());
@@ -779,7 +790,8 @@ impl Tx<'_> {
                     arrival.and_then(|a| a.prediction).and_then(|p| p.t),
                     without.map(|w| w.0),
                     without.and_then(|w| w.1),
-                    inf.and_then(|p| p.undefined()).map(|u| u.explain())
+                    inf.and_then(|p| p.undefined()).map(|u| u.explain()),
+                    prev_in_series
                 ])
             })
             .map_err(self.wrap())?;
@@ -863,10 +875,10 @@ impl Tx<'_> {
                     n_censored, level, slope, intercept, slope_se, intercept_se, slope_t, slope_p,
                     slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
                     theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note,
-                    records, robust_n, origin, mean_x, mean_y, sxx, sxy, syy, sse)
+                    records, robust_n, origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit)
                  VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17,
                     ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32, ?33,
-                    ?34, ?35)",
+                    ?34, ?35, ?36)",
             )
             .and_then(|mut s| {
                 let st = f.state;
@@ -906,7 +918,8 @@ impl Tx<'_> {
                     m.sxx,
                     m.sxy,
                     m.syy,
-                    m.sse
+                    m.sse,
+                    st.latest_fit
                 ])
             })
             .map_err(self.wrap())?;
@@ -916,17 +929,17 @@ impl Tx<'_> {
     /// The points of a series' current fit (fitted scale), in arrival
     /// order, as seen inside this transaction.
     pub fn fit_points(&self, series: SeriesRowId) -> Result<Vec<(f64, f64)>> {
-        let mut stmt = self
-            .tx
-            .prepare_cached(
-                "SELECT fit_x, fit_y FROM records WHERE series_id = ?1 AND status = 'current' AND in_fit = 1 ORDER BY id",
-            )
+        let points = chain_points(&self.tx, series).map_err(self.wrap())?;
+        Ok(points.into_iter().map(|(_, x, y)| (x, y)).collect())
+    }
+
+    /// Points the series at its newest fit version and current record.
+    pub fn save_series_heads(&self, row: &SeriesRow) -> Result<()> {
+        self.tx
+            .prepare_cached("UPDATE series SET latest_fit = ?2, latest_record = ?3 WHERE id = ?1")
+            .and_then(|mut s| s.execute(params![row.id.0, row.latest_fit, row.latest_record]))
             .map_err(self.wrap())?;
-        let rows = stmt
-            .query_map([series.0], |r| Ok((r.get(0)?, r.get(1)?)))
-            .map_err(self.wrap())?;
-        rows.collect::<std::result::Result<Vec<_>, _>>()
-            .map_err(self.wrap())
+        Ok(())
     }
 
     /// Appends an audit entry, chained to the previous one by SHA-256.
@@ -998,10 +1011,8 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
         "SELECT s.id, s.key, s.unit, s.transform, s.non_detects, COALESCE(f.n, 0), COALESCE(f.origin, 0),
                 COALESCE(f.mean_x, 0), COALESCE(f.mean_y, 0), COALESCE(f.sxx, 0), COALESCE(f.sxy, 0),
                 COALESCE(f.syy, 0), COALESCE(f.sse, 0), COALESCE(f.version, 0), COALESCE(f.robust_n, 0),
-                f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0)
-         FROM series s
-         LEFT JOIN fits f ON f.series_id = s.id
-              AND f.version = (SELECT MAX(version) FROM fits WHERE series_id = s.id)
+                f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0), s.latest_fit, s.latest_record
+         FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
          WHERE s.key = ?1",
     )?
     .query_row([key], |r| {
@@ -1026,9 +1037,29 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
             last_arrival: r.get(15)?,
             records: r.get(16)?,
             censored: r.get(17)?,
+            latest_fit: r.get(18)?,
+            latest_record: r.get(19)?,
         })
     })
     .optional()
+}
+
+/// The in-fit points of a series, oldest first, by walking its record chain.
+fn chain_points(
+    conn: &Connection,
+    series: SeriesRowId,
+) -> rusqlite::Result<Vec<(String, f64, f64)>> {
+    let mut stmt = conn.prepare_cached(
+        "WITH RECURSIVE chain(id) AS (
+             SELECT latest_record FROM series WHERE id = ?1
+             UNION ALL
+             SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
+         )
+         SELECT r.record_id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
+         WHERE r.status = 'current' AND r.in_fit = 1 ORDER BY r.id",
+    )?;
+    let rows = stmt.query_map([series.0], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
+    rows.collect()
 }
 
 fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
@@ -1099,18 +1130,21 @@ mod tests {
         row.moments = m;
         row.fit_version = 3;
         row.records = 3;
-        tx.insert_fit(&NewFit {
-            state: &row,
-            trigger_file: None,
-            created_at: "2026-12-02T00:00:00Z",
-            transform: "none",
-            non_detects: "exclude",
-            level: 0.95,
-            fit: None,
-            robust: None,
-            note: None,
-        })
-        .unwrap();
+        let fit_row = tx
+            .insert_fit(&NewFit {
+                state: &row,
+                trigger_file: None,
+                created_at: "2026-12-02T00:00:00Z",
+                transform: "none",
+                non_detects: "exclude",
+                level: 0.95,
+                fit: None,
+                robust: None,
+                note: None,
+            })
+            .unwrap();
+        row.latest_fit = Some(fit_row);
+        tx.save_series_heads(&row).unwrap();
         tx.commit().unwrap();
         let back = store.series("MW-1/nitrate").unwrap().unwrap();
         assert_eq!(back.moments, m);

@@ -224,6 +224,13 @@ mod commands {
         }
     }
 
+    /// The configuration and its store, or the exit code that says why not.
+    fn setup(config: Option<&Path>) -> Result<(Config, Store), ExitCode> {
+        let config = load(config)?;
+        let store = open(&config)?;
+        Ok((config, store))
+    }
+
     fn open(config: &Config) -> Result<Store, ExitCode> {
         Store::open(&config.database).map_err(|e| {
             eprintln!("slopewarden: {e}");
@@ -260,12 +267,8 @@ mod commands {
 
     pub fn run(config: Option<&Path>, json_logs: bool) -> ExitCode {
         init_logs(json_logs, false);
-        let config = match load(config) {
-            Ok(c) => c,
-            Err(code) => return code,
-        };
-        let mut store = match open(&config) {
-            Ok(s) => s,
+        let (config, mut store) = match setup(config) {
+            Ok(v) => v,
             Err(code) => return code,
         };
         let stop = stop_flag();
@@ -284,12 +287,8 @@ mod commands {
 
     pub fn ingest(config: Option<&Path>, json_logs: bool, paths: &[PathBuf]) -> ExitCode {
         init_logs(json_logs, true);
-        let config = match load(config) {
-            Ok(c) => c,
-            Err(code) => return code,
-        };
-        let mut store = match open(&config) {
-            Ok(s) => s,
+        let (config, mut store) = match setup(config) {
+            Ok(v) => v,
             Err(code) => return code,
         };
         let stop = stop_flag();
@@ -392,12 +391,8 @@ mod commands {
     }
 
     pub fn status(config: Option<&Path>, json: bool) -> ExitCode {
-        let config = match load(config) {
-            Ok(c) => c,
-            Err(code) => return code,
-        };
-        let store = match open(&config) {
-            Ok(s) => s,
+        let (config, store) = match setup(config) {
+            Ok(v) => v,
             Err(code) => return code,
         };
         let rows = match store.status() {
@@ -442,12 +437,8 @@ mod commands {
     }
 
     pub fn diagnostics(config: Option<&Path>, series: &str, json: bool) -> ExitCode {
-        let config = match load(config) {
-            Ok(c) => c,
-            Err(code) => return code,
-        };
-        let store = match open(&config) {
-            Ok(s) => s,
+        let (config, store) = match setup(config) {
+            Ok(v) => v,
             Err(code) => return code,
         };
         let (row, points) = match (store.series(series), store.fit_points(series)) {
@@ -497,12 +488,8 @@ mod commands {
     }
 
     pub fn history(config: Option<&Path>, series: &str, json: bool) -> ExitCode {
-        let config = match load(config) {
-            Ok(c) => c,
-            Err(code) => return code,
-        };
-        let store = match open(&config) {
-            Ok(s) => s,
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
             Err(code) => return code,
         };
         let rows = match store.history(series) {

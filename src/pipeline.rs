@@ -331,15 +331,7 @@ fn store_file(
             Err(reason) => {
                 // A value the fit cannot take (zero under a log): set the
                 // row aside like any refused row.
-                let e = RecordError {
-                    line: record.line,
-                    column: None,
-                    field: None,
-                    record_id: Some(record.record_id.clone()),
-                    reason,
-                    raw: record.raw.clone(),
-                };
-                tx.insert_bad_row(file_id, &e)?;
+                tx.insert_bad_row(file_id, &refused(record, reason))?;
                 counts.bad += 1;
                 continue;
             }
@@ -351,15 +343,8 @@ fn store_file(
                 Err(err) => {
                     // Validated records are finite; a transform could still
                     // overflow. Set the row aside rather than guess.
-                    let e = RecordError {
-                        line: record.line,
-                        column: None,
-                        field: None,
-                        record_id: Some(record.record_id.clone()),
-                        reason: format!("the value cannot enter the fit: {err}"),
-                        raw: record.raw.clone(),
-                    };
-                    tx.insert_bad_row(file_id, &e)?;
+                    let reason = format!("the value cannot enter the fit: {err}");
+                    tx.insert_bad_row(file_id, &refused(record, reason))?;
                     counts.bad += 1;
                     continue;
                 }
@@ -494,6 +479,18 @@ fn store_file(
         cache.rows.insert(key, t.row);
     }
     Ok((counts, refits))
+}
+
+/// A stored-side refusal of a parsed record, in the parser's error shape.
+fn refused(record: &Record, reason: String) -> RecordError {
+    RecordError {
+        line: record.line,
+        column: None,
+        field: None,
+        record_id: Some(record.record_id.clone()),
+        reason,
+        raw: record.raw.clone(),
+    }
 }
 
 fn refit_detail(row: &SeriesRow, fit: Option<&LineFit>) -> String {

@@ -425,6 +425,32 @@ fn malformed_files_are_set_aside_while_the_daemon_stays_up_and_good_files_are_st
     );
 }
 
+#[test]
+fn status_reads_while_a_writer_holds_the_database() {
+    let site = Site::new();
+    site.drop_file("a.csv", &well_file(1, &quarterly(6, 0)));
+    assert!(site.ingest_inbox().status.success());
+    // A writer in the middle of a long transaction.
+    let mut conn = rusqlite::Connection::open(site.path("data/slopewarden.sqlite3")).unwrap();
+    let tx = conn
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+        .unwrap();
+    tx.execute(
+        "INSERT INTO series (key, transform, non_detects) VALUES ('held', 'none', 'exclude')",
+        [],
+    )
+    .unwrap();
+    let started = Instant::now();
+    let status = site.status();
+    assert!(
+        started.elapsed() < Duration::from_secs(5),
+        "status waited {:?}",
+        started.elapsed()
+    );
+    assert_eq!(status.len(), 1, "the uncommitted series is not visible");
+    tx.rollback().unwrap();
+}
+
 fn walk(dir: &Path) -> Vec<PathBuf> {
     let mut out = Vec::new();
     if let Ok(rd) = std::fs::read_dir(dir) {

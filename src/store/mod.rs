@@ -1068,6 +1068,14 @@ fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
         source,
     };
     let known = MIGRATIONS.len() as i64;
+    // A reader (`status` beside a running daemon) must not take the write
+    // lock: look first, and only lock when there is something to apply.
+    let current: i64 = conn
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(wrap)?;
+    if current == known {
+        return Ok(());
+    }
     let tx = conn
         .transaction_with_behavior(rusqlite::TransactionBehavior::Exclusive)
         .map_err(wrap)?;

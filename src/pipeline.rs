@@ -23,7 +23,7 @@ use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
 use crate::stats::robust::{mann_kendall, theil_sen};
-use crate::stats::{Arrival, LineFit, SeriesState, Transform};
+use crate::stats::{Arrival, LineFit, SeriesState, TQuantiles, Transform};
 use crate::store::{
     AuditKind, FileCounts, FileOutcome, NewFile, NewFit, RecordPlacement, RobustRow, SeriesRow,
     Store, StoreError,
@@ -40,12 +40,28 @@ const ROBUST_GROWTH: f64 = 2.0;
 #[derive(Debug, Default)]
 pub struct SeriesCache {
     rows: HashMap<String, SeriesRow>,
+    /// The fit points (fitted scale) of series whose robust slope has been
+    /// computed once, so that later checkpoints need not read them back.
+    points: HashMap<String, Vec<(f64, f64)>>,
+    quantiles: Option<TQuantiles>,
 }
 
 impl SeriesCache {
     /// An empty cache.
     pub fn new() -> Self {
         SeriesCache::default()
+    }
+
+    fn clear(&mut self) {
+        self.rows.clear();
+        self.points.clear();
+    }
+
+    fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
+        if self.quantiles.as_ref().is_none_or(|q| q.level() != level) {
+            self.quantiles = Some(TQuantiles::new(level));
+        }
+        self.quantiles.get_or_insert_with(|| TQuantiles::new(level))
     }
 }
 
@@ -102,7 +118,7 @@ pub fn process_file(
 ) -> Result<Outcome, PipelineError> {
     let result = process_file_inner(config, store, cache, file, now);
     if result.is_err() {
-        cache.rows.clear();
+        cache.clear();
     }
     result
 }
@@ -262,6 +278,8 @@ struct Touched {
     settings: SeriesSettings,
     state: SeriesState,
     changed: bool,
+    /// Points this file added to the fit, in order.
+    new_points: Vec<(f64, f64)>,
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -318,6 +336,7 @@ fn store_file(
                     settings,
                     state,
                     changed: false,
+                    new_points: Vec::new(),
                 },
             );
             order.push(key.to_string());
@@ -365,8 +384,9 @@ fn store_file(
                 }
                 t.row.last_arrival = Some(at.to_string());
                 t.changed = true;
-                if arrival.is_some() {
+                if let (Some(_), Some(p)) = (&arrival, fit_point) {
                     t.state = probe;
+                    t.new_points.push(p);
                 }
             }
             None => {
@@ -423,11 +443,25 @@ fn store_file(
         refits += 1;
         t.row.fit_version += 1;
         t.row.moments = *t.state.moments();
-        let fit = t.state.fit(config.level);
+        let quantiles = cache.quantiles(config.level);
+        let fit =
+            LineFit::from_moments_with(t.state.moments(), config.level, |df| quantiles.get(df));
         let n = t.state.n() as i64;
         let robust = if n >= 3 && (n as f64) >= ROBUST_GROWTH * (t.row.robust_n as f64) {
-            let points = tx.fit_points(t.row.id)?;
-            let r = robust_row(&points, config.level);
+            let points: &Vec<(f64, f64)> = match cache.points.entry(key.clone()) {
+                std::collections::hash_map::Entry::Occupied(e) => {
+                    let p = e.into_mut();
+                    p.append(&mut t.new_points);
+                    p
+                }
+                std::collections::hash_map::Entry::Vacant(e) => {
+                    // Read back inside the transaction: this file's points
+                    // are already there.
+                    t.new_points.clear();
+                    e.insert(tx.fit_points(&t.row)?)
+                }
+            };
+            let r = robust_row(points, config.level);
             if r.is_some() {
                 t.row.robust_n = n;
             }
@@ -475,7 +509,10 @@ fn store_file(
         ),
     )?;
     tx.commit()?;
-    for (key, t) in touched {
+    for (key, mut t) in touched {
+        if let Some(p) = cache.points.get_mut(&key) {
+            p.append(&mut t.new_points);
+        }
         cache.rows.insert(key, t.row);
     }
     Ok((counts, refits))

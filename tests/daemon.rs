@@ -426,6 +426,34 @@ fn malformed_files_are_set_aside_while_the_daemon_stays_up_and_good_files_are_st
 }
 
 #[test]
+fn the_robust_slope_kept_between_files_equals_one_computed_from_the_store() {
+    let site = Site::new();
+    // One ingest run over three files, so the writer's cached points are
+    // used at the n = 16 checkpoint (first computed at n = 8).
+    site.drop_file("f1.csv", &well_file(1, &quarterly(8, 0)));
+    site.drop_file("f2.csv", &well_file(9, &quarterly(4, 8)));
+    site.drop_file("f3.csv", &well_file(13, &quarterly(6, 12)));
+    assert!(site.ingest_inbox().status.success());
+    let out = site.cmd(&["history", "MW-01/nitrate", "--json"]);
+    let h: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let versions = h.as_array().unwrap();
+    assert!(
+        versions[0]["theil_sen_slope"].is_number(),
+        "first checkpoint at n = 8: {:?}",
+        versions[0]
+    );
+    let last = versions.last().unwrap().clone();
+    assert_eq!(last["n"], 18);
+    let kept = last["theil_sen_slope"]
+        .as_f64()
+        .expect("robust slope computed at n = 18");
+    let out = site.cmd(&["diagnostics", "MW-01/nitrate", "--json"]);
+    let d: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let fresh = d["robust"]["theil_sen_slope"].as_f64().unwrap();
+    assert_eq!(kept, fresh);
+}
+
+#[test]
 fn status_reads_while_a_writer_holds_the_database() {
     let site = Site::new();
     site.drop_file("a.csv", &well_file(1, &quarterly(6, 0)));

@@ -53,6 +53,17 @@ pub struct LineFit {
 impl LineFit {
     /// Fits from co-moments. Needs n ≥ 3 and varying x.
     pub fn from_moments(m: &Moments, level: f64) -> Result<LineFit, FitError> {
+        Self::from_moments_with(m, level, |df| t_quantile(0.5 + level / 2.0, df as f64))
+    }
+
+    /// As [`LineFit::from_moments`], taking the t quantile for the interval
+    /// from `quantile(df)`: a caller refitting many series at one level can
+    /// remember quantiles by df (see [`TQuantiles`]).
+    pub fn from_moments_with(
+        m: &Moments,
+        level: f64,
+        quantile: impl FnOnce(usize) -> f64,
+    ) -> Result<LineFit, FitError> {
         check_level(level)?;
         let n = m.n() as usize;
         if n < 3 {
@@ -85,7 +96,7 @@ impl LineFit {
             (None, None, 0.0)
         } else {
             let t = slope / slope_se;
-            let q = t_quantile(0.5 + level / 2.0, dff);
+            let q = quantile(df);
             (Some(t), Some(t_two_sided_p(t, dff)), q * slope_se)
         };
         let r_squared = (m.syy() > 0.0).then(|| (1.0 - sse / m.syy()).clamp(0.0, 1.0));
@@ -150,6 +161,39 @@ impl LineFit {
     }
 }
 
+/// Two-sided t quantiles at one confidence level, remembered by degrees of
+/// freedom. Owned by the caller (no global cache); the values are exactly
+/// what [`t_quantile`] returns.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TQuantiles {
+    level: f64,
+    by_df: std::collections::HashMap<usize, f64>,
+}
+
+impl TQuantiles {
+    /// An empty table for intervals at `level`.
+    pub fn new(level: f64) -> Self {
+        TQuantiles {
+            level,
+            by_df: std::collections::HashMap::new(),
+        }
+    }
+
+    /// The level the table is for.
+    pub fn level(&self) -> f64 {
+        self.level
+    }
+
+    /// t(0.5 + level/2, df).
+    pub fn get(&mut self, df: usize) -> f64 {
+        let level = self.level;
+        *self
+            .by_df
+            .entry(df)
+            .or_insert_with(|| t_quantile(0.5 + level / 2.0, df as f64))
+    }
+}
+
 /// Whether a residual SD is round-off relative to the scale of y.
 pub(crate) fn is_exact(residual_sd: f64, mean_y: f64, syy: f64, n: f64) -> bool {
     let scale = mean_y.abs().max((syy / n).sqrt());
@@ -170,6 +214,19 @@ pub fn fit_line(x: &[f64], y: &[f64], level: f64) -> Result<LineFit, FitError> {
 mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
+
+    #[test]
+    fn remembered_quantiles_give_the_same_fit() {
+        let x = [1.0, 2.0, 3.5, 4.0, 6.0];
+        let y = [2.0, 2.9, 4.4, 5.2, 6.8];
+        let m = Moments::from_points(&x, &y);
+        let mut table = TQuantiles::new(0.95);
+        let a = LineFit::from_moments(&m, 0.95).unwrap();
+        let b = LineFit::from_moments_with(&m, 0.95, |df| table.get(df)).unwrap();
+        let c = LineFit::from_moments_with(&m, 0.95, |df| table.get(df)).unwrap();
+        assert_eq!(a, b);
+        assert_eq!(b, c);
+    }
 
     #[test]
     fn rejects_fewer_than_three_points() {

@@ -41,7 +41,7 @@ pub use error::{FitError, check_finite_pairs, check_level};
 pub use influence::{
     Influence, LeaveOneOut, PointInfluence, Undefined, influence, influence_into, leave_one_out,
 };
-pub use line::{LineFit, fit_line};
+pub use line::{LineFit, TQuantiles, fit_line};
 pub use moments::{Moments, MomentsParts};
 pub use serial::durbin_watson;
 pub use streaming::{Arrival, SeriesState};

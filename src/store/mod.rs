@@ -506,10 +506,10 @@ impl Store {
 
     /// The points of a series' current fit, in arrival order.
     pub fn fit_points(&self, key: &str) -> Result<Option<Vec<FitPoint>>> {
-        let Some(id) = self.series_id(key)? else {
+        let Some(row) = self.series(key)? else {
             return Ok(None);
         };
-        let points = chain_points(&self.conn, id).map_err(self.wrap())?;
+        let points = chain_points(&self.conn, row.latest_record).map_err(self.wrap())?;
         Ok(Some(
             points
                 .into_iter()
@@ -927,9 +927,10 @@ impl Tx<'_> {
     }
 
     /// The points of a series' current fit (fitted scale), in arrival
-    /// order, as seen inside this transaction.
-    pub fn fit_points(&self, series: SeriesRowId) -> Result<Vec<(f64, f64)>> {
-        let points = chain_points(&self.tx, series).map_err(self.wrap())?;
+    /// order, walking back from `row.latest_record` (which may be ahead of
+    /// the stored head inside this transaction).
+    pub fn fit_points(&self, row: &SeriesRow) -> Result<Vec<(f64, f64)>> {
+        let points = chain_points(&self.tx, row.latest_record).map_err(self.wrap())?;
         Ok(points.into_iter().map(|(_, x, y)| (x, y)).collect())
     }
 
@@ -1044,21 +1045,22 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
     .optional()
 }
 
-/// The in-fit points of a series, oldest first, by walking its record chain.
-fn chain_points(
-    conn: &Connection,
-    series: SeriesRowId,
-) -> rusqlite::Result<Vec<(String, f64, f64)>> {
+/// The in-fit points of a series, oldest first, by walking its record chain
+/// back from the record `head`.
+fn chain_points(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(String, f64, f64)>> {
+    let Some(head) = head else {
+        return Ok(Vec::new());
+    };
     let mut stmt = conn.prepare_cached(
         "WITH RECURSIVE chain(id) AS (
-             SELECT latest_record FROM series WHERE id = ?1
+             SELECT ?1
              UNION ALL
              SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
          )
          SELECT r.record_id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
          WHERE r.status = 'current' AND r.in_fit = 1 ORDER BY r.id",
     )?;
-    let rows = stmt.query_map([series.0], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
+    let rows = stmt.query_map([head], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
     rows.collect()
 }
 

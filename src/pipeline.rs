@@ -315,7 +315,8 @@ fn store_file(
         let key = record.series.as_str();
         if !touched.contains_key(key) {
             let settings = config.series_settings(&record.series);
-            let cached = cache.rows.get(key).cloned();
+            // Taken out, put back after the commit (a failure clears the cache).
+            let cached = cache.rows.remove(key);
             let row = match cached {
                 Some(row) => row,
                 None => match tx.series(key)? {
@@ -530,25 +531,21 @@ fn refused(record: &Record, reason: String) -> RecordError {
     }
 }
 
+/// One line per refit in the file's audit entry: which version of which
+/// series, and its n. The statistics themselves are on the fit row, and
+/// verifying recomputes them from the records.
 fn refit_detail(row: &SeriesRow, fit: Option<&LineFit>) -> String {
-    match fit {
-        Some(f) => format!(
-            "{} v{}: n = {}, slope {} (CI {} to {}), p {}",
-            row.key,
-            row.fit_version,
-            f.n,
-            f.slope,
-            f.slope_ci_low,
-            f.slope_ci_high,
-            f.slope_p.map_or("undefined".into(), |p| p.to_string())
-        ),
-        None => format!(
-            "{} v{}: n = {}, no fit yet",
-            row.key,
-            row.fit_version,
-            row.moments.n()
-        ),
-    }
+    let status = if fit.is_some() {
+        "fitted"
+    } else {
+        "no fit yet"
+    };
+    format!(
+        "{} v{} n={} {status}",
+        row.key,
+        row.fit_version,
+        row.moments.n()
+    )
 }
 
 /// The point a record contributes to its series' fit, on the fitted scale;

@@ -342,7 +342,7 @@ impl Store {
         // A larger page cache keeps the indexes of a long history in memory.
         conn.pragma_update(None, "cache_size", -65_536)
             .map_err(wrap)?;
-        conn.pragma_update(None, "wal_autocheckpoint", 4_000)
+        conn.pragma_update(None, "wal_autocheckpoint", 20_000)
             .map_err(wrap)?;
         migrate(&mut conn, &path)?;
         let last_audit = audit::last_hash(&conn).map_err(wrap)?;

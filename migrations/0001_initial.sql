@@ -128,26 +128,6 @@ CREATE TABLE fits (
     prev_fit     INTEGER                    -- the series' previous version
 );
 
--- Diagnostics of points that cross a cutoff in a later refit (a record's
--- diagnostics on arrival are kept on its own row in `records`).
-CREATE TABLE point_diagnostics (
-    id           INTEGER PRIMARY KEY,
-    fit_id       INTEGER NOT NULL REFERENCES fits(id),
-    record_row   INTEGER NOT NULL REFERENCES records(id),
-    leverage     REAL,
-    standardized_residual REAL,
-    studentized_residual  REAL,
-    cooks_distance        REAL,
-    dffits       REAL,
-    dfbetas_intercept REAL,
-    dfbetas_slope     REAL,
-    covariance_ratio  REAL,
-    prediction_t REAL,                      -- against the fit before it arrived
-    slope_without REAL,                     -- the previous fit's slope
-    slope_p_without REAL,
-    undefined    TEXT                       -- why some measures are absent
-);
-
 -- Append-only audit trail; each entry carries the SHA-256 of the previous one.
 CREATE TABLE audit_log (
     id           INTEGER PRIMARY KEY,

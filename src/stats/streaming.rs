@@ -77,18 +77,33 @@ impl Arrival {
     /// Two-sided p-value of the new slope, without building the whole fit
     /// (no interval, so no quantile): the cheap path for every arrival.
     pub fn slope_p(&self) -> Option<f64> {
-        let m = &self.after;
-        let n = m.n() as f64;
-        if m.n() < 3 || m.sxx() <= 0.0 {
-            return None;
-        }
-        let s = (m.sse() / (n - 2.0)).sqrt();
-        if is_exact(s, m.mean_y(), m.syy(), n) {
-            return None;
-        }
-        let t = (m.sxy() / m.sxx()) / (s / m.sxx().sqrt());
-        Some(t_two_sided_p(t, n - 2.0))
+        slope_p_of(&self.after)
     }
+
+    /// The slope before the newcomer arrived (the fit without it).
+    pub fn slope_without(&self) -> Option<f64> {
+        self.before.slope()
+    }
+
+    /// Two-sided p-value of the slope before the newcomer arrived.
+    pub fn slope_p_without(&self) -> Option<f64> {
+        slope_p_of(&self.before)
+    }
+}
+
+/// Two-sided p of the slope of a set of co-moments; `None` with fewer than
+/// 3 points, no spread in x, or an exact line.
+fn slope_p_of(m: &Moments) -> Option<f64> {
+    let n = m.n() as f64;
+    if m.n() < 3 || m.sxx() <= 0.0 {
+        return None;
+    }
+    let s = (m.sse() / (n - 2.0)).sqrt();
+    if is_exact(s, m.mean_y(), m.syy(), n) {
+        return None;
+    }
+    let t = (m.sxy() / m.sxx()) / (s / m.sxx().sqrt());
+    Some(t_two_sided_p(t, n - 2.0))
 }
 
 impl SeriesState {

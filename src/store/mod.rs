@@ -34,6 +34,22 @@ use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
 
+/// The one record insert, as a plain or an `OR IGNORE` statement.
+macro_rules! insert_record_sql {
+    ($verb:literal) => {
+        concat!(
+            $verb,
+            " INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
+                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
+                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
+                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
+                slope_p_without, undefined, prev_in_series)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
+                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
+        )
+    };
+}
+
 /// The embedded migrations, in order.
 const MIGRATIONS: &[(&str, &str)] = &[(
     "0001_initial",
@@ -723,27 +739,13 @@ impl Tx<'_> {
         prev_in_series: Option<i64>,
     ) -> Result<bool> {
         let sql = if or_ignore {
-            "INSERT OR IGNORE INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
-                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
-                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
-                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-                slope_p_without, undefined, prev_in_series)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
-                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
+            insert_record_sql!("INSERT OR IGNORE")
         } else {
-            "INSERT INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
-                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
-                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
-                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-                slope_p_without, undefined, prev_in_series)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
-                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
+            insert_record_sql!("INSERT")
         };
         let arrival = placement.arrival.map(|(a, _, _)| a);
         let inf = arrival.and_then(|a| a.influence.as_ref());
-        // The previous fit's slope and p: from its co-moments, without the
-        // cost of an interval (no quantile needed).
-        let without = arrival.and_then(|a| slope_and_p(&a.before));
+
         let attributes = if record.attributes.is_empty() {
             None
         } else {
@@ -788,8 +790,8 @@ impl Tx<'_> {
                     inf.and_then(|p| p.dfbetas_slope()),
                     inf.and_then(|p| p.covariance_ratio()),
                     arrival.and_then(|a| a.prediction).and_then(|p| p.t),
-                    without.map(|w| w.0),
-                    without.and_then(|w| w.1),
+                    arrival.and_then(Arrival::slope_without),
+                    arrival.and_then(Arrival::slope_p_without),
                     inf.and_then(|p| p.undefined()).map(|u| u.explain()),
                     prev_in_series
                 ])
@@ -992,19 +994,6 @@ impl FileOutcome {
             FileOutcome::Quarantined => "quarantined",
         }
     }
-}
-
-/// Slope and two-sided p of a set of co-moments (no interval).
-fn slope_and_p(m: &Moments) -> Option<(f64, Option<f64>)> {
-    let slope = m.slope()?;
-    let n = m.n() as f64;
-    if m.n() < 3 {
-        return Some((slope, None));
-    }
-    let s = (m.sse() / (n - 2.0)).sqrt();
-    let se = s / m.sxx().sqrt();
-    let p = (se > 0.0).then(|| crate::stats::dist::t_two_sided_p(slope / se, n - 2.0));
-    Some((slope, p))
 }
 
 fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow>> {

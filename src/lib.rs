@@ -15,8 +15,10 @@
 pub mod clock;
 pub mod config;
 pub mod daemon;
+pub mod findings;
 pub mod fitreport;
 pub mod inbox;
+pub mod messages;
 pub mod pipeline;
 pub mod records;
 pub mod stats;

@@ -241,9 +241,16 @@ mod commands {
     fn init_logs(json: bool, to_stderr: bool) {
         let filter = tracing_subscriber::EnvFilter::try_from_env("SLOPEWARDEN_LOG")
             .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+        // Colours only for a person at a terminal, never into a journal or a file.
+        let ansi = if to_stderr {
+            std::io::stderr().is_terminal()
+        } else {
+            std::io::stdout().is_terminal()
+        };
         let builder = tracing_subscriber::fmt()
             .with_env_filter(filter)
-            .with_target(false);
+            .with_target(false)
+            .with_ansi(ansi);
         let result = match (json, to_stderr) {
             (true, true) => builder.json().with_writer(std::io::stderr).try_init(),
             (true, false) => builder.json().try_init(),

@@ -25,8 +25,8 @@ use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
 use crate::stats::robust::{mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, SeriesState, TQuantiles, Transform};
 use crate::store::{
-    AuditKind, FileCounts, FileOutcome, NewFile, NewFit, RecordPlacement, RobustRow, SeriesRow,
-    Store, StoreError,
+    AuditKind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch, RecordPlacement,
+    RobustRow, SeriesRow, Store, StoreError,
 };
 
 /// The robust slope is recomputed (from all points) when a series has
@@ -311,6 +311,10 @@ fn store_file(
     }
     let mut touched: HashMap<String, Touched> = HashMap::new();
     let mut order: Vec<String> = Vec::new();
+    // Ids stored by earlier files: those records take the slow path (same
+    // record again, or a conflict); all others are written in batches.
+    let stored = tx.stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
+    let mut batch = RecordBatch::new();
     for record in &parsed.records {
         let key = record.series.as_str();
         if !touched.contains_key(key) {
@@ -375,64 +379,71 @@ fn store_file(
             fit_point,
             arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
         };
-        match tx.insert_current(record, t.row.id, file_id, placement, t.row.latest_record)? {
-            Some(row_id) => {
-                t.row.latest_record = Some(row_id);
-                counts.new += 1;
-                t.row.records += 1;
-                if record.y.is_censored() {
-                    t.row.censored += 1;
-                }
-                t.row.last_arrival = Some(at.to_string());
-                t.changed = true;
-                if let (Some(_), Some(p)) = (&arrival, fit_point) {
-                    t.state = probe;
-                    t.new_points.push(p);
-                }
+        if !stored.contains(record.record_id.as_str()) {
+            let row_id = tx.queue_current(
+                &mut batch,
+                record,
+                t.row.id,
+                file_id,
+                placement,
+                t.row.latest_record,
+            )?;
+            t.row.latest_record = Some(row_id);
+            counts.new += 1;
+            t.row.records += 1;
+            if record.y.is_censored() {
+                t.row.censored += 1;
             }
-            None => {
-                let Some((stored, max_version)) = tx.current_record(&record.record_id)? else {
-                    unreachable!("BUG: the insert was ignored because a current version exists");
-                };
-                let same = stored.series == key
-                    && stored.x == record.x
-                    && stored.y == record.y.number()
-                    && stored.censored == record.y.is_censored();
-                if same {
-                    counts.same += 1;
-                } else if !tx.has_proposal(
-                    &record.record_id,
+            t.row.last_arrival = Some(at.to_string());
+            t.changed = true;
+            if let (Some(_), Some(p)) = (&arrival, fit_point) {
+                t.state = probe;
+                t.new_points.push(p);
+            }
+            continue;
+        }
+        let Some((stored_record, max_version)) = tx.current_record(&record.record_id)? else {
+            unreachable!("BUG: stored_ids found a version 1, so a current version exists");
+        };
+        let same = stored_record.series == key
+            && stored_record.x == record.x
+            && stored_record.y == record.y.number()
+            && stored_record.censored == record.y.is_censored();
+        if same {
+            counts.same += 1;
+        } else if !tx.has_proposal(
+            &record.record_id,
+            record.x,
+            record.y.number(),
+            record.y.is_censored(),
+        )? {
+            counts.conflict += 1;
+            tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+            tx.append_audit(
+                at,
+                AuditKind::Conflict,
+                &record.record_id,
+                &format!(
+                    "{name} line {}: record {} resubmitted with other values (stored: series {}, x {}, y {}; new: series {}, x {}, y {}); kept as proposed version {}, the stored version is unchanged",
+                    record.line,
+                    record.record_id,
+                    stored_record.series,
+                    stored_record.x,
+                    stored_record.y,
+                    key,
                     record.x,
                     record.y.number(),
-                    record.y.is_censored(),
-                )? {
-                    counts.conflict += 1;
-                    tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
-                    tx.append_audit(
-                        at,
-                        AuditKind::Conflict,
-                        &record.record_id,
-                        &format!(
-                            "{name} line {}: record {} resubmitted with other values (stored: series {}, x {}, y {}; new: series {}, x {}, y {}); kept as proposed version {}, the stored version is unchanged",
-                            record.line,
-                            record.record_id,
-                            stored.series,
-                            stored.x,
-                            stored.y,
-                            key,
-                            record.x,
-                            record.y.number(),
-                            max_version + 1
-                        ),
-                    )?;
-                } else {
-                    counts.same += 1;
-                }
-            }
+                    max_version + 1
+                ),
+            )?;
+        } else {
+            counts.same += 1;
         }
     }
+    tx.flush_records(&mut batch)?;
     let mut refits = 0;
     let mut refit_list = String::new();
+    let mut fits = FitBatch::new();
     for key in &order {
         let Some(t) = touched.get_mut(key) else {
             continue;
@@ -478,17 +489,20 @@ fn store_file(
             )),
             _ => None,
         };
-        let fit_row = tx.insert_fit(&NewFit {
-            state: &t.row,
-            trigger_file: Some(file_id),
-            created_at: at,
-            transform: t.settings.transform.name(),
-            non_detects: &t.settings.non_detects.name(),
-            level: config.level,
-            fit: fit.as_ref().ok(),
-            robust,
-            note,
-        })?;
+        let fit_row = tx.queue_fit(
+            &mut fits,
+            &NewFit {
+                state: &t.row,
+                trigger_file: Some(file_id),
+                created_at: at,
+                transform: t.settings.transform.name(),
+                non_detects: &t.settings.non_detects.name(),
+                level: config.level,
+                fit: fit.as_ref().ok(),
+                robust,
+                note,
+            },
+        )?;
         t.row.latest_fit = Some(fit_row);
         tx.save_series_heads(&t.row)?;
         refit_list.push_str(&refit_detail(&t.row, fit.as_ref().ok()));
@@ -499,6 +513,7 @@ fn store_file(
     } else {
         FileOutcome::Ingested
     };
+    tx.flush_fits(&mut fits)?;
     tx.finish_file(file_id, outcome, counts, None)?;
     tx.append_audit(
         at,

@@ -11,6 +11,7 @@ use serde_json::Value;
 
 struct Site {
     dir: tempfile::TempDir,
+    runs: std::cell::Cell<usize>,
 }
 
 impl Site {
@@ -22,7 +23,10 @@ impl Site {
             "[watch]\nsettle_seconds = 0.3\nrescan_seconds = 1\n\n[[series]]\nmatch = \"MW-*\"\nunit = \"mg/L\"\nmatrix = \"water\"\nx_min = 1990\nx_max = 2100\n",
         )
         .unwrap();
-        Site { dir }
+        Site {
+            dir,
+            runs: std::cell::Cell::new(0),
+        }
     }
     fn path(&self, p: &str) -> PathBuf {
         self.dir.path().join(p)
@@ -79,14 +83,27 @@ impl Site {
         v.sort();
         v
     }
+    /// Starts the daemon and returns once it logs that it is watching (its
+    /// signal handlers are installed by then), so that a test's SIGTERM
+    /// never races its start-up.
     fn start(&self) -> Child {
-        Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+        let run = self.runs.get() + 1;
+        self.runs.set(run);
+        let log = self.path(&format!("daemon-{run}.log"));
+        let out = std::fs::File::create(&log).unwrap();
+        let child = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
             .args(["run", "--config", &self.config()])
             .current_dir(self.dir.path())
-            .stdout(std::process::Stdio::null())
-            .stderr(std::process::Stdio::null())
+            .stdout(out.try_clone().unwrap())
+            .stderr(out)
             .spawn()
-            .unwrap()
+            .unwrap();
+        wait_for(
+            "the daemon to start watching",
+            Duration::from_secs(20),
+            || std::fs::read_to_string(&log).is_ok_and(|t| t.contains("watching")),
+        );
+        child
     }
 }
 

@@ -23,7 +23,10 @@
 
 mod audit;
 
+use std::cell::Cell;
+use std::collections::HashSet;
 use std::path::{Path, PathBuf};
+use std::sync::OnceLock;
 use std::time::Duration;
 
 use rusqlite::{Connection, OptionalExtension, Transaction, params};
@@ -34,20 +37,260 @@ use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
 
-/// The one record insert, as a plain or an `OR IGNORE` statement.
-macro_rules! insert_record_sql {
-    ($verb:literal) => {
-        concat!(
-            $verb,
-            " INTO records (record_id, version, status, series_id, x, y, censored, in_fit,
-                fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id, line, raw,
-                joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance, dffits,
-                dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-                slope_p_without, undefined, prev_in_series)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18,
-                ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32)"
-        )
+/// Columns of a record row, in the order [`bind_record`] binds them.
+const INSERT_RECORD_HEAD: &str =
+    "INSERT INTO records (id, record_id, version, status, series_id, x, y,
+    censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id,
+    line, raw, joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance,
+    dffits, dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
+    slope_p_without, undefined, prev_in_series) VALUES ";
+const RECORD_COLUMNS: usize = 33;
+/// Records per multi-row INSERT: per-statement overhead dominates small
+/// inserts, and 32 × 33 parameters stay far below SQLite's limit.
+const RECORD_CHUNK: usize = 32;
+
+/// `head` followed by `rows` groups of `columns` placeholders.
+fn multi_row_insert(head: &str, columns: usize, rows: usize) -> String {
+    let group = format!("({})", vec!["?"; columns].join(", "));
+    format!("{head}{}", vec![group.as_str(); rows].join(", "))
+}
+
+/// A record's own diagnostics in the fit it joined, as stored.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct DiagnosticsRow {
+    joined_fit: i64,
+    leverage: Option<f64>,
+    standardized: Option<f64>,
+    studentized: Option<f64>,
+    cooks: Option<f64>,
+    dffits: Option<f64>,
+    dfbetas_intercept: Option<f64>,
+    dfbetas_slope: Option<f64>,
+    covariance_ratio: Option<f64>,
+    prediction_t: Option<f64>,
+    slope_without: Option<f64>,
+    slope_p_without: Option<f64>,
+    undefined: Option<&'static str>,
+}
+
+impl DiagnosticsRow {
+    fn of(a: &Arrival, joined_fit: i64) -> Self {
+        let inf = a.influence.as_ref();
+        DiagnosticsRow {
+            joined_fit,
+            leverage: inf.map(|p| p.leverage()),
+            standardized: inf.and_then(|p| p.standardized_residual()),
+            studentized: inf.and_then(|p| p.studentized_residual()),
+            cooks: inf.and_then(|p| p.cooks_distance()),
+            dffits: inf.and_then(|p| p.dffits()),
+            dfbetas_intercept: inf.and_then(|p| p.dfbetas_intercept()),
+            dfbetas_slope: inf.and_then(|p| p.dfbetas_slope()),
+            covariance_ratio: inf.and_then(|p| p.covariance_ratio()),
+            prediction_t: a.prediction.and_then(|p| p.t),
+            slope_without: a.slope_without(),
+            slope_p_without: a.slope_p_without(),
+            undefined: inf.and_then(|p| p.undefined()).map(|u| u.explain()),
+        }
+    }
+}
+
+/// A record row waiting in a [`RecordBatch`].
+#[derive(Debug)]
+struct PendingRecord<'r> {
+    id: i64,
+    record: &'r Record,
+    version: i64,
+    status: &'static str,
+    series: i64,
+    file: i64,
+    fit_point: Option<(f64, f64)>,
+    diagnostics: Option<DiagnosticsRow>,
+    prev_in_series: Option<i64>,
+}
+
+/// Records queued for multi-row inserts within one transaction. Dropping
+/// a batch with rows still queued loses them, so the file's transaction
+/// flushes it before commit ([`Tx::flush_records`]).
+#[derive(Debug, Default)]
+pub struct RecordBatch<'r> {
+    rows: Vec<PendingRecord<'r>>,
+}
+
+impl RecordBatch<'_> {
+    /// An empty batch.
+    pub fn new() -> Self {
+        RecordBatch {
+            rows: Vec::with_capacity(RECORD_CHUNK),
+        }
+    }
+
+    /// Rows still queued.
+    pub fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    /// Whether nothing is queued.
+    pub fn is_empty(&self) -> bool {
+        self.rows.is_empty()
+    }
+}
+
+const INSERT_FIT_HEAD: &str = "INSERT INTO fits (id, series_id, version, trigger_file, created_at,
+    transform, non_detects, n, n_censored, level, slope, intercept, slope_se, intercept_se, slope_t,
+    slope_p, slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
+    theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note, records, robust_n,
+    origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit) VALUES ";
+const FIT_COLUMNS: usize = 37;
+const FIT_CHUNK: usize = 16;
+
+/// A fit row waiting in a [`FitBatch`].
+#[derive(Debug)]
+struct PendingFit {
+    id: i64,
+    series: i64,
+    version: i64,
+    trigger_file: Option<i64>,
+    created_at: String,
+    transform: String,
+    non_detects: String,
+    moments: MomentsParts,
+    censored: i64,
+    level: f64,
+    fit: Option<LineFit>,
+    robust: Option<RobustRow>,
+    note: Option<String>,
+    records: i64,
+    robust_n: i64,
+    prev_fit: Option<i64>,
+}
+
+/// Fit rows queued for multi-row inserts within one transaction; flushed
+/// before commit ([`Tx::flush_fits`]).
+#[derive(Debug, Default)]
+pub struct FitBatch {
+    rows: Vec<PendingFit>,
+}
+
+impl FitBatch {
+    /// An empty batch.
+    pub fn new() -> Self {
+        FitBatch::default()
+    }
+}
+
+fn bind_fit(
+    stmt: &mut rusqlite::Statement<'_>,
+    base: usize,
+    row: &PendingFit,
+) -> rusqlite::Result<()> {
+    let fit = row.fit.as_ref();
+    let robust = row.robust;
+    let m = &row.moments;
+    let mut i = base;
+    let mut put = |v: &dyn rusqlite::ToSql| -> rusqlite::Result<()> {
+        i += 1;
+        stmt.raw_bind_parameter(i, v)
     };
+    put(&row.id)?;
+    put(&row.series)?;
+    put(&row.version)?;
+    put(&row.trigger_file)?;
+    put(&row.created_at)?;
+    put(&row.transform)?;
+    put(&row.non_detects)?;
+    put(&(m.n as i64))?;
+    put(&row.censored)?;
+    put(&row.level)?;
+    put(&fit.map(|v| v.slope))?;
+    put(&fit.map(|v| v.intercept))?;
+    put(&fit.map(|v| v.slope_se))?;
+    put(&fit.map(|v| v.intercept_se))?;
+    put(&fit.and_then(|v| v.slope_t))?;
+    put(&fit.and_then(|v| v.slope_p))?;
+    put(&fit.map(|v| v.slope_ci_low))?;
+    put(&fit.map(|v| v.slope_ci_high))?;
+    put(&fit.and_then(|v| v.r_squared))?;
+    put(&fit.map(|v| v.residual_sd))?;
+    put(&fit.map(|v| v.df as i64))?;
+    put(&robust.map(|r| r.slope))?;
+    put(&robust.map(|r| r.ci_low))?;
+    put(&robust.map(|r| r.ci_high))?;
+    put(&robust.map(|r| r.mk_s))?;
+    put(&robust.map(|r| r.mk_p))?;
+    put(&row.note)?;
+    put(&row.records)?;
+    put(&row.robust_n)?;
+    put(&m.origin)?;
+    put(&m.mean_x)?;
+    put(&m.mean_y)?;
+    put(&m.sxx)?;
+    put(&m.sxy)?;
+    put(&m.syy)?;
+    put(&m.sse)?;
+    put(&row.prev_fit)?;
+    debug_assert_eq!(i - base, FIT_COLUMNS);
+    Ok(())
+}
+
+/// Binds one record row at parameter offset `base` (0-based).
+fn bind_record(
+    stmt: &mut rusqlite::Statement<'_>,
+    base: usize,
+    row: &PendingRecord<'_>,
+) -> rusqlite::Result<()> {
+    let r = row.record;
+    let attributes = if r.attributes.is_empty() {
+        None
+    } else {
+        let map: serde_json::Map<String, serde_json::Value> = r
+            .attributes
+            .iter()
+            .map(|(k, v)| (k.clone(), serde_json::Value::String(v.clone())))
+            .collect();
+        Some(serde_json::Value::Object(map).to_string())
+    };
+    let (fx, fy) = row.fit_point.unzip();
+    let d = row.diagnostics.as_ref();
+    let mut i = base;
+    let mut put = |v: &dyn rusqlite::ToSql| -> rusqlite::Result<()> {
+        i += 1;
+        stmt.raw_bind_parameter(i, v)
+    };
+    put(&row.id)?;
+    put(&r.record_id)?;
+    put(&row.version)?;
+    put(&row.status)?;
+    put(&row.series)?;
+    put(&r.x)?;
+    put(&r.y.number())?;
+    put(&r.y.is_censored())?;
+    put(&row.fit_point.is_some())?;
+    put(&fx)?;
+    put(&fy)?;
+    put(&r.unit)?;
+    put(&r.unit_as_written)?;
+    put(&r.sampled_at)?;
+    put(&r.note)?;
+    put(&attributes)?;
+    put(&row.file)?;
+    put(&(r.line as i64))?;
+    put(&r.raw)?;
+    put(&d.map(|d| d.joined_fit))?;
+    put(&d.and_then(|d| d.leverage))?;
+    put(&d.and_then(|d| d.standardized))?;
+    put(&d.and_then(|d| d.studentized))?;
+    put(&d.and_then(|d| d.cooks))?;
+    put(&d.and_then(|d| d.dffits))?;
+    put(&d.and_then(|d| d.dfbetas_intercept))?;
+    put(&d.and_then(|d| d.dfbetas_slope))?;
+    put(&d.and_then(|d| d.covariance_ratio))?;
+    put(&d.and_then(|d| d.prediction_t))?;
+    put(&d.and_then(|d| d.slope_without))?;
+    put(&d.and_then(|d| d.slope_p_without))?;
+    put(&d.and_then(|d| d.undefined))?;
+    put(&row.prev_in_series)?;
+    debug_assert_eq!(i - base, RECORD_COLUMNS);
+    Ok(())
 }
 
 /// The embedded migrations, in order.
@@ -412,11 +655,26 @@ impl Store {
                 source,
             })?;
         let pending = std::cell::RefCell::new(self.last_audit.clone());
+        let max_id = |table: &str| -> Result<i64> {
+            tx.query_row(
+                &format!("SELECT COALESCE(MAX(id), 0) FROM {table}"),
+                [],
+                |r| r.get(0),
+            )
+            .map_err(|source| StoreError::Sqlite {
+                path: path.clone(),
+                source,
+            })
+        };
+        let next_record = Cell::new(max_id("records")? + 1);
+        let next_fit = Cell::new(max_id("fits")? + 1);
         Ok(Tx {
             tx,
             path,
             last_audit: &mut self.last_audit,
             pending_audit: pending,
+            next_record,
+            next_fit,
         })
     }
 
@@ -589,6 +847,12 @@ pub struct Tx<'a> {
     path: PathBuf,
     last_audit: &'a mut Option<String>,
     pending_audit: std::cell::RefCell<Option<String>>,
+    /// Row ids handed out for records and fits queued in this transaction.
+    /// The writer holds the write lock from `begin`, so nobody else can
+    /// take these ids, and queued rows can chain to each other before they
+    /// are written.
+    next_record: Cell<i64>,
+    next_fit: Cell<i64>,
 }
 
 impl Tx<'_> {
@@ -684,28 +948,103 @@ impl Tx<'_> {
         })
     }
 
-    /// Tries to store `record` as version 1, the current version, of its
-    /// id. Returns `Ok(Some(row))` when stored, `Ok(None)` when the id is
-    /// already stored (the caller then compares with [`Tx::current_record`]).
-    pub fn insert_current(
+    /// Which of `ids` are already stored (in any version). Asked once per
+    /// file, before its records are queued, so that new records can be
+    /// written in multi-row statements and only resubmissions take the
+    /// slow path.
+    pub fn stored_ids<'s>(
         &self,
-        record: &Record,
+        ids: impl IntoIterator<Item = &'s str>,
+    ) -> Result<HashSet<String>> {
+        const CHUNK: usize = 100;
+        static SQL: OnceLock<String> = OnceLock::new();
+        let sql = SQL.get_or_init(|| {
+            format!(
+                "SELECT record_id FROM records WHERE version = 1 AND record_id IN ({})",
+                vec!["?"; CHUNK].join(", ")
+            )
+        });
+        let mut found = HashSet::new();
+        let mut stmt = self.tx.prepare_cached(sql).map_err(self.wrap())?;
+        let mut ids = ids.into_iter().peekable();
+        while ids.peek().is_some() {
+            for i in 1..=CHUNK {
+                // Unfilled places stay NULL, which matches nothing.
+                let id = ids.next();
+                stmt.raw_bind_parameter(i, id).map_err(self.wrap())?;
+            }
+            let mut rows = stmt.raw_query();
+            while let Some(row) = rows.next().map_err(self.wrap())? {
+                found.insert(row.get::<_, String>(0).map_err(self.wrap())?);
+            }
+        }
+        Ok(found)
+    }
+
+    /// Queues `record` as version 1, the current version, of its id (the
+    /// caller has checked with [`Tx::stored_ids`] that the id is new), and
+    /// returns the row id it will have. Rows are written in multi-row
+    /// statements as the batch fills and by [`Tx::flush_records`].
+    pub fn queue_current<'r>(
+        &self,
+        batch: &mut RecordBatch<'r>,
+        record: &'r Record,
         series: SeriesRowId,
         file: FileId,
         placement: RecordPlacement<'_>,
         prev_in_series: Option<i64>,
-    ) -> Result<Option<i64>> {
-        let changed = self.insert_record(
+    ) -> Result<i64> {
+        let id = self.next_record.get();
+        self.next_record.set(id + 1);
+        batch.rows.push(PendingRecord {
+            id,
             record,
-            series,
-            file,
-            placement,
-            1,
-            "current",
-            true,
+            version: 1,
+            status: "current",
+            series: series.0,
+            file: file.0,
+            fit_point: placement.fit_point,
+            diagnostics: placement
+                .arrival
+                .map(|(a, joins, _)| DiagnosticsRow::of(a, joins)),
             prev_in_series,
-        )?;
-        Ok(changed.then(|| self.tx.last_insert_rowid()))
+        });
+        if batch.rows.len() >= RECORD_CHUNK {
+            self.flush_records(batch)?;
+        }
+        Ok(id)
+    }
+
+    /// Writes every queued record.
+    pub fn flush_records(&self, batch: &mut RecordBatch<'_>) -> Result<()> {
+        static CHUNK_SQL: OnceLock<String> = OnceLock::new();
+        let chunk_sql = CHUNK_SQL
+            .get_or_init(|| multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, RECORD_CHUNK));
+        static ONE_SQL: OnceLock<String> = OnceLock::new();
+        let one_sql =
+            ONE_SQL.get_or_init(|| multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, 1));
+        let mut rows = batch.rows.drain(..);
+        let full = rows.len() / RECORD_CHUNK;
+        if full > 0 {
+            let mut stmt = self.tx.prepare_cached(chunk_sql).map_err(self.wrap())?;
+            for _ in 0..full {
+                for k in 0..RECORD_CHUNK {
+                    let Some(row) = rows.next() else {
+                        unreachable!("BUG: a full chunk was counted above");
+                    };
+                    bind_record(&mut stmt, k * RECORD_COLUMNS, &row).map_err(self.wrap())?;
+                }
+                stmt.raw_execute().map_err(self.wrap())?;
+            }
+        }
+        if rows.len() > 0 {
+            let mut stmt = self.tx.prepare_cached(one_sql).map_err(self.wrap())?;
+            for row in rows {
+                bind_record(&mut stmt, 0, &row).map_err(self.wrap())?;
+                stmt.raw_execute().map_err(self.wrap())?;
+            }
+        }
+        Ok(())
     }
 
     /// Stores a resubmission with other values as a proposed new version.
@@ -716,88 +1055,22 @@ impl Tx<'_> {
         file: FileId,
         version: i64,
     ) -> Result<i64> {
-        let placement = RecordPlacement {
+        let id = self.next_record.get();
+        self.next_record.set(id + 1);
+        let mut batch = RecordBatch::new();
+        batch.rows.push(PendingRecord {
+            id,
+            record,
+            version,
+            status: "proposed",
+            series: series.0,
+            file: file.0,
             fit_point: None,
-            arrival: None,
-        };
-        self.insert_record(
-            record, series, file, placement, version, "proposed", false, None,
-        )?;
-        Ok(self.tx.last_insert_rowid())
-    }
-
-    #[allow(clippy::too_many_arguments)]
-    fn insert_record(
-        &self,
-        record: &Record,
-        series: SeriesRowId,
-        file: FileId,
-        placement: RecordPlacement<'_>,
-        version: i64,
-        status: &str,
-        or_ignore: bool,
-        prev_in_series: Option<i64>,
-    ) -> Result<bool> {
-        let sql = if or_ignore {
-            insert_record_sql!("INSERT OR IGNORE")
-        } else {
-            insert_record_sql!("INSERT")
-        };
-        let arrival = placement.arrival.map(|(a, _, _)| a);
-        let inf = arrival.and_then(|a| a.influence.as_ref());
-
-        let attributes = if record.attributes.is_empty() {
-            None
-        } else {
-            let map: serde_json::Map<String, serde_json::Value> = record
-                .attributes
-                .iter()
-                .map(|(k, v)| (k.clone(), serde_json::Value::String(v.clone())))
-                .collect();
-            Some(serde_json::Value::Object(map).to_string())
-        };
-        let (fx, fy) = placement.fit_point.unzip();
-        let n = self
-            .tx
-            .prepare_cached(sql)
-            .and_then(|mut s| {
-                s.execute(params![
-                    record.record_id,
-                    version,
-                    status,
-                    series.0,
-                    record.x,
-                    record.y.number(),
-                    record.y.is_censored(),
-                    placement.fit_point.is_some(),
-                    fx,
-                    fy,
-                    record.unit,
-                    record.unit_as_written,
-                    record.sampled_at,
-                    record.note,
-                    attributes,
-                    file.0,
-                    record.line as i64,
-                    record.raw,
-                    placement.arrival.map(|(_, v, _)| v),
-                    inf.map(|p| p.leverage()),
-                    inf.and_then(|p| p.standardized_residual()),
-                    inf.and_then(|p| p.studentized_residual()),
-                    inf.and_then(|p| p.cooks_distance()),
-                    inf.and_then(|p| p.dffits()),
-                    inf.and_then(|p| p.dfbetas_intercept()),
-                    inf.and_then(|p| p.dfbetas_slope()),
-                    inf.and_then(|p| p.covariance_ratio()),
-                    arrival.and_then(|a| a.prediction).and_then(|p| p.t),
-                    arrival.and_then(Arrival::slope_without),
-                    arrival.and_then(Arrival::slope_p_without),
-                    inf.and_then(|p| p.undefined()).map(|u| u.explain()),
-                    prev_in_series
-                ])
-            })
-            .map_err(self.wrap())?;
-        Ok(n == 1)
+            diagnostics: None,
+            prev_in_series: None,
+        });
+        self.flush_records(&mut batch)?;
+        Ok(id)
     }
 
     /// The current version of a record id, and the highest version number
@@ -867,65 +1140,66 @@ impl Tx<'_> {
         Ok(())
     }
 
-    /// Writes a fit-history row.
-    pub fn insert_fit(&self, f: &NewFit<'_>) -> Result<i64> {
-        let fit = f.fit;
-        let robust = f.robust;
-        self.tx
-            .prepare_cached(
-                "INSERT INTO fits (series_id, version, trigger_file, created_at, transform, non_detects, n,
-                    n_censored, level, slope, intercept, slope_se, intercept_se, slope_t, slope_p,
-                    slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
-                    theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note,
-                    records, robust_n, origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17,
-                    ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, ?28, ?29, ?30, ?31, ?32, ?33,
-                    ?34, ?35, ?36)",
-            )
-            .and_then(|mut s| {
-                let st = f.state;
-                let m = st.moments.to_parts();
-                s.execute(params![
-                    st.id.0,
-                    st.fit_version,
-                    f.trigger_file.map(|id| id.0),
-                    f.created_at,
-                    f.transform,
-                    f.non_detects,
-                    m.n as i64,
-                    st.censored,
-                    f.level,
-                    fit.map(|v| v.slope),
-                    fit.map(|v| v.intercept),
-                    fit.map(|v| v.slope_se),
-                    fit.map(|v| v.intercept_se),
-                    fit.and_then(|v| v.slope_t),
-                    fit.and_then(|v| v.slope_p),
-                    fit.map(|v| v.slope_ci_low),
-                    fit.map(|v| v.slope_ci_high),
-                    fit.and_then(|v| v.r_squared),
-                    fit.map(|v| v.residual_sd),
-                    fit.map(|v| v.df as i64),
-                    robust.map(|r| r.slope),
-                    robust.map(|r| r.ci_low),
-                    robust.map(|r| r.ci_high),
-                    robust.map(|r| r.mk_s),
-                    robust.map(|r| r.mk_p),
-                    f.note,
-                    st.records,
-                    st.robust_n,
-                    m.origin,
-                    m.mean_x,
-                    m.mean_y,
-                    m.sxx,
-                    m.sxy,
-                    m.syy,
-                    m.sse,
-                    st.latest_fit
-                ])
-            })
-            .map_err(self.wrap())?;
-        Ok(self.tx.last_insert_rowid())
+    /// Queues a fit-history row and returns the row id it will have; rows
+    /// are written in multi-row statements as the batch fills and by
+    /// [`Tx::flush_fits`].
+    pub fn queue_fit(&self, batch: &mut FitBatch, f: &NewFit<'_>) -> Result<i64> {
+        let id = self.next_fit.get();
+        self.next_fit.set(id + 1);
+        let st = f.state;
+        batch.rows.push(PendingFit {
+            id,
+            series: st.id.0,
+            version: st.fit_version,
+            trigger_file: f.trigger_file.map(|id| id.0),
+            created_at: f.created_at.to_string(),
+            transform: f.transform.to_string(),
+            non_detects: f.non_detects.to_string(),
+            moments: st.moments.to_parts(),
+            censored: st.censored,
+            level: f.level,
+            fit: f.fit.copied(),
+            robust: f.robust,
+            note: f.note.clone(),
+            records: st.records,
+            robust_n: st.robust_n,
+            prev_fit: st.latest_fit,
+        });
+        if batch.rows.len() >= FIT_CHUNK {
+            self.flush_fits(batch)?;
+        }
+        Ok(id)
+    }
+
+    /// Writes every queued fit row.
+    pub fn flush_fits(&self, batch: &mut FitBatch) -> Result<()> {
+        static CHUNK_SQL: OnceLock<String> = OnceLock::new();
+        let chunk_sql =
+            CHUNK_SQL.get_or_init(|| multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, FIT_CHUNK));
+        static ONE_SQL: OnceLock<String> = OnceLock::new();
+        let one_sql = ONE_SQL.get_or_init(|| multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, 1));
+        let mut rows = batch.rows.drain(..);
+        let full = rows.len() / FIT_CHUNK;
+        if full > 0 {
+            let mut stmt = self.tx.prepare_cached(chunk_sql).map_err(self.wrap())?;
+            for _ in 0..full {
+                for k in 0..FIT_CHUNK {
+                    let Some(row) = rows.next() else {
+                        unreachable!("BUG: a full chunk was counted above");
+                    };
+                    bind_fit(&mut stmt, k * FIT_COLUMNS, &row).map_err(self.wrap())?;
+                }
+                stmt.raw_execute().map_err(self.wrap())?;
+            }
+        }
+        if rows.len() > 0 {
+            let mut stmt = self.tx.prepare_cached(one_sql).map_err(self.wrap())?;
+            for row in rows {
+                bind_fit(&mut stmt, 0, &row).map_err(self.wrap())?;
+                stmt.raw_execute().map_err(self.wrap())?;
+            }
+        }
+        Ok(())
     }
 
     /// The points of a series' current fit (fitted scale), in arrival
@@ -967,6 +1241,7 @@ impl Tx<'_> {
             path,
             last_audit,
             pending_audit,
+            ..
         } = self;
         tx.commit()
             .map_err(|source| StoreError::Sqlite { path, source })?;
@@ -1129,19 +1404,24 @@ mod tests {
         row.moments = m;
         row.fit_version = 3;
         row.records = 3;
+        let mut fits = FitBatch::new();
         let fit_row = tx
-            .insert_fit(&NewFit {
-                state: &row,
-                trigger_file: None,
-                created_at: "2026-12-02T00:00:00Z",
-                transform: "none",
-                non_detects: "exclude",
-                level: 0.95,
-                fit: None,
-                robust: None,
-                note: None,
-            })
+            .queue_fit(
+                &mut fits,
+                &NewFit {
+                    state: &row,
+                    trigger_file: None,
+                    created_at: "2026-12-02T00:00:00Z",
+                    transform: "none",
+                    non_detects: "exclude",
+                    level: 0.95,
+                    fit: None,
+                    robust: None,
+                    note: None,
+                },
+            )
             .unwrap();
+        tx.flush_fits(&mut fits).unwrap();
         row.latest_fit = Some(fit_row);
         tx.save_series_heads(&row).unwrap();
         tx.commit().unwrap();

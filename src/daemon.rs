@@ -21,7 +21,7 @@ use crate::config::{Config, WatchModeSetting};
 use crate::inbox::{
     self, Candidate, InboxConfig, InboxError, ReadyFile, Settler, Wake, WatchMode, Watcher,
 };
-use crate::pipeline::{self, Outcome, PipelineError, SeriesCache};
+use crate::pipeline::{self, Flow, Outcome, PipelineError, SeriesCache};
 use crate::store::{AuditKind, Store};
 
 /// Longest sleep between checks of the shutdown flag.
@@ -131,12 +131,13 @@ pub fn run(
                     Vec::new()
                 }
             };
-            let ready = settler.observe(listed, Instant::now());
-            for file in ready {
-                if stop.load(Ordering::SeqCst) {
-                    break;
-                }
-                match pipeline::process_file(config, store, &mut cache, &file, SystemTime::now()) {
+            let ready: Vec<(&Config, ReadyFile)> = settler
+                .observe(listed, Instant::now())
+                .into_iter()
+                .map(|f| (config, f))
+                .collect();
+            pipeline::process_in_order(store, &mut cache, &ready, stop, |_, file, result| {
+                match result {
                     Ok(outcome) => totals.count(&outcome),
                     Err(e) => {
                         totals.failed += 1;
@@ -148,7 +149,8 @@ pub fn run(
                         }
                     }
                 }
-            }
+                Flow::Continue
+            });
         }
         let wait = if settler.pending() > 0 {
             TICK.min(config.settle)
@@ -237,27 +239,30 @@ pub fn ingest_paths(
     let total = files.len();
     let mut keep_config = config.clone();
     keep_config.keep_files = true;
-    for (i, (c, inside)) in files.into_iter().enumerate() {
-        if stop.load(Ordering::SeqCst) {
-            break;
-        }
-        let cfg = if inside { config } else { &keep_config };
-        let file = ReadyFile {
-            path: c.path.clone(),
-            relative: c.relative.clone(),
-            size: c.size,
-            modified: c.modified,
-        };
-        let result = pipeline::process_file(cfg, store, &mut cache, &file, SystemTime::now());
+    let jobs: Vec<(&Config, ReadyFile)> = files
+        .into_iter()
+        .map(|(c, inside)| {
+            let cfg = if inside { config } else { &keep_config };
+            let file = ReadyFile {
+                path: c.path,
+                relative: c.relative,
+                size: c.size,
+                modified: c.modified,
+            };
+            (cfg, file)
+        })
+        .collect();
+    pipeline::process_in_order(store, &mut cache, &jobs, stop, |i, file, result| {
         match &result {
             Ok(o) => totals.count(o),
             Err(e) => {
                 totals.failed += 1;
-                error!(file = %c.path.display(), error = %e, "file not ingested");
+                error!(file = %file.path.display(), error = %e, "file not ingested");
             }
         }
-        progress(i + 1, total, &c.path, &result);
-    }
+        progress(i + 1, total, &file.path, &result);
+        Flow::Continue
+    });
     Ok(totals)
 }
 

@@ -13,6 +13,8 @@
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::mpsc::{channel, sync_channel};
 use std::time::SystemTime;
 
 use thiserror::Error;
@@ -108,6 +110,29 @@ pub enum PipelineError {
     Inbox(#[from] InboxError),
 }
 
+/// A file read, hashed and parsed: everything about it that needs neither
+/// the store nor the series' state, so that it can be done on another
+/// thread while the previous file is being stored.
+#[derive(Debug)]
+pub struct Prepared {
+    read: Result<(String, u64, Vec<u8>), InboxError>,
+    parsed: Option<Result<records::ParsedFile, records::FileError>>,
+    now: SystemTime,
+}
+
+/// Reads, hashes and parses one file (no store, no series state).
+pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
+    let read = inbox::sha256_file(&file.path, config.max_file_bytes);
+    let parsed = read.as_ref().ok().map(|(_, _, bytes)| {
+        let (_, layout) = config.feed_for(&file.relative);
+        let (year, month, day, _) = clock::civil(now);
+        let today = Today { year, month, day };
+        let rules = |id: &SeriesId| config.series_settings(id).rules();
+        records::parse_file(bytes, layout, &rules, today)
+    });
+    Prepared { read, parsed, now }
+}
+
 /// Processes one settled file.
 pub fn process_file(
     config: &Config,
@@ -116,11 +141,92 @@ pub fn process_file(
     file: &ReadyFile,
     now: SystemTime,
 ) -> Result<Outcome, PipelineError> {
-    let result = process_file_inner(config, store, cache, file, now);
+    let prepared = prepare(config, file, now);
+    process_prepared(config, store, cache, file, prepared).0
+}
+
+/// Stores a prepared file (its one transaction) and moves it. Returns the
+/// outcome and the prepared file's remains, so that the caller can free
+/// them off the writer's thread.
+pub fn process_prepared(
+    config: &Config,
+    store: &mut Store,
+    cache: &mut SeriesCache,
+    file: &ReadyFile,
+    mut prepared: Prepared,
+) -> (Result<Outcome, PipelineError>, Prepared) {
+    let result = process_file_inner(config, store, cache, file, &mut prepared);
     if result.is_err() {
         cache.clear();
     }
-    result
+    (result, prepared)
+}
+
+/// What the caller of [`process_in_order`] wants after each file.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Flow {
+    /// Go on with the next file.
+    Continue,
+    /// Stop after this file.
+    Stop,
+}
+
+/// Processes `files` in order, each with its configuration, storing one
+/// while the next is read and parsed on a second thread. Stops before the
+/// next file when `stop` is set or `each` says so; files not reached are
+/// untouched (they stay in the inbox).
+pub fn process_in_order(
+    store: &mut Store,
+    cache: &mut SeriesCache,
+    files: &[(&Config, ReadyFile)],
+    stop: &AtomicBool,
+    mut each: impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
+) {
+    if files.len() <= 1 {
+        // Nothing to overlap.
+        for (i, (config, file)) in files.iter().enumerate() {
+            if stop.load(Ordering::SeqCst) {
+                return;
+            }
+            let result = process_file(config, store, cache, file, SystemTime::now());
+            if each(i, file, result) == Flow::Stop {
+                return;
+            }
+        }
+        return;
+    }
+    // One file ahead at most: memory stays at two files' worth.
+    let (ready_tx, ready_rx) = sync_channel::<Prepared>(1);
+    let (spent_tx, spent_rx) = channel::<Prepared>();
+    std::thread::scope(|scope| {
+        scope.spawn(move || {
+            for (config, file) in files {
+                // Free what the writer is done with here, not on its thread.
+                while spent_rx.try_recv().is_ok() {}
+                if ready_tx
+                    .send(prepare(config, file, SystemTime::now()))
+                    .is_err()
+                {
+                    return;
+                }
+            }
+        });
+        for (i, (config, file)) in files.iter().enumerate() {
+            if stop.load(Ordering::SeqCst) {
+                break;
+            }
+            let Ok(prepared) = ready_rx.recv() else {
+                break;
+            };
+            let (result, spent) = process_prepared(config, store, cache, file, prepared);
+            let _ = spent_tx.send(spent);
+            if each(i, file, result) == Flow::Stop {
+                break;
+            }
+        }
+        // Dropping the receiver ends the reader at its next send.
+        drop(ready_rx);
+    });
 }
 
 fn process_file_inner(
@@ -128,14 +234,15 @@ fn process_file_inner(
     store: &mut Store,
     cache: &mut SeriesCache,
     file: &ReadyFile,
-    now: SystemTime,
+    prepared: &mut Prepared,
 ) -> Result<Outcome, PipelineError> {
     let span = info_span!("file", file = %file.relative.display());
     let _enter = span.enter();
+    let now = prepared.now;
     let at = clock::rfc3339(now);
     let name = file.relative.to_string_lossy().into_owned();
-    let (sha, size, bytes) = match inbox::sha256_file(&file.path, config.max_file_bytes) {
-        Ok(v) => v,
+    let (sha, size) = match &prepared.read {
+        Ok((sha, size, _)) => (sha.clone(), *size),
         Err(InboxError::Vanished { .. }) => {
             debug!("file vanished before it was read");
             return Ok(Outcome::Vanished);
@@ -146,7 +253,13 @@ fn process_file_inner(
             );
             return quarantine_whole(config, store, file, &name, "", 0, &reason, now, &at);
         }
-        Err(e) => return Err(e.into()),
+        Err(_) => {
+            let read = std::mem::replace(&mut prepared.read, Ok((String::new(), 0, Vec::new())));
+            return Err(match read {
+                Err(e) => e.into(),
+                Ok(_) => unreachable!("BUG: matched as an error just above"),
+            });
+        }
     };
     if let Some(first) = store.file_by_hash(&sha)? {
         info!(first = %first.name, "same content already ingested; skipped");
@@ -165,16 +278,14 @@ fn process_file_inner(
             moved_to,
         });
     }
-    let (feed, layout) = config.feed_for(&file.relative);
-    let (year, month, day, _) = clock::civil(now);
-    let today = Today { year, month, day };
-    let rules = |id: &SeriesId| config.series_settings(id).rules();
-    let parsed = match records::parse_file(&bytes, layout, &rules, today) {
-        Ok(p) => p,
-        Err(e) => {
+    let (feed, _) = config.feed_for(&file.relative);
+    let parsed = match prepared.parsed.take() {
+        Some(Ok(p)) => p,
+        Some(Err(e)) => {
             let reason = format!("{e}");
             return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
         }
+        None => unreachable!("BUG: a file that was read is always parsed"),
     };
     if !parsed.errors.is_empty() && config.bad_rows == BadRows::RejectFile {
         let mut reason = format!(
@@ -186,7 +297,10 @@ fn process_file_inner(
         }
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
-    let (counts, refits) = store_file(config, store, cache, &name, &sha, size, feed, parsed, &at)?;
+    let result = store_file(config, store, cache, &name, &sha, size, feed, &parsed, &at);
+    // Handed back for freeing off this thread.
+    prepared.parsed = Some(Ok(parsed));
+    let (counts, refits) = result?;
     info!(
         new = counts.new,
         same = counts.same,
@@ -291,7 +405,7 @@ fn store_file(
     sha: &str,
     size: u64,
     feed: &str,
-    parsed: records::ParsedFile,
+    parsed: &records::ParsedFile,
     at: &str,
 ) -> Result<(FileCounts, usize), PipelineError> {
     let tx = store.begin()?;
@@ -441,6 +555,40 @@ fn store_file(
         }
     }
     tx.flush_records(&mut batch)?;
+    // Robust slopes first: gather the series due for one and compute
+    // them, then write the fit rows.
+    let mut due: Vec<&str> = Vec::new();
+    for key in &order {
+        let Some(t) = touched.get_mut(key) else {
+            continue;
+        };
+        let n = t.state.n() as i64;
+        if !t.changed || n < 3 || (n as f64) < ROBUST_GROWTH * (t.row.robust_n as f64) {
+            continue;
+        }
+        match cache.points.entry(key.clone()) {
+            std::collections::hash_map::Entry::Occupied(e) => {
+                e.into_mut().append(&mut t.new_points);
+            }
+            std::collections::hash_map::Entry::Vacant(e) => {
+                // Read back inside the transaction: this file's points are
+                // already there.
+                t.new_points.clear();
+                e.insert(tx.fit_points(&t.row)?);
+            }
+        }
+        due.push(key);
+    }
+    let mut robust_of: HashMap<&str, RobustRow> = HashMap::new();
+    {
+        let jobs: Vec<(&str, &[(f64, f64)])> = due
+            .iter()
+            .filter_map(|k| cache.points.get(*k).map(|p| (*k, p.as_slice())))
+            .collect();
+        for (key, r) in robust_rows(&jobs, config.level) {
+            robust_of.insert(key, r);
+        }
+    }
     let mut refits = 0;
     let mut refit_list = String::new();
     let mut fits = FitBatch::new();
@@ -458,29 +606,10 @@ fn store_file(
         let quantiles = cache.quantiles(config.level);
         let fit =
             LineFit::from_moments_with(t.state.moments(), config.level, |df| quantiles.get(df));
-        let n = t.state.n() as i64;
-        let robust = if n >= 3 && (n as f64) >= ROBUST_GROWTH * (t.row.robust_n as f64) {
-            let points: &Vec<(f64, f64)> = match cache.points.entry(key.clone()) {
-                std::collections::hash_map::Entry::Occupied(e) => {
-                    let p = e.into_mut();
-                    p.append(&mut t.new_points);
-                    p
-                }
-                std::collections::hash_map::Entry::Vacant(e) => {
-                    // Read back inside the transaction: this file's points
-                    // are already there.
-                    t.new_points.clear();
-                    e.insert(tx.fit_points(&t.row)?)
-                }
-            };
-            let r = robust_row(points, config.level);
-            if r.is_some() {
-                t.row.robust_n = n;
-            }
-            r
-        } else {
-            None
-        };
+        let robust = robust_of.get(key.as_str()).copied();
+        if robust.is_some() {
+            t.row.robust_n = t.state.n() as i64;
+        }
         let note = match (&fit, &robust) {
             (Err(e), _) => Some(format!("no fit yet: {e}")),
             (Ok(_), None) => Some(format!(
@@ -590,6 +719,16 @@ fn fit_point(record: &Record, settings: &SeriesSettings) -> Result<Option<(f64, 
                 record.series
             )
         })
+}
+
+/// The robust rows of several series; those whose robust slope is
+/// undefined are left out. (Two threads were tried here for backlogs that
+/// bring many series to a checkpoint at once; no gain could be measured
+/// beside the reader thread, so it stays simple.)
+fn robust_rows<'k>(jobs: &[(&'k str, &[(f64, f64)])], level: f64) -> Vec<(&'k str, RobustRow)> {
+    jobs.iter()
+        .filter_map(|(k, p)| robust_row(p, level).map(|r| (*k, r)))
+        .collect()
 }
 
 fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {

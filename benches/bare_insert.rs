@@ -23,6 +23,10 @@ fn main() {
     files.sort();
     let _ = std::fs::remove_file(db);
     let mut conn = rusqlite::Connection::open(db).unwrap_or_else(|e| panic!("{e}"));
+    // The same page size as slopewarden's store, so that the comparison is
+    // of the work done, not of the settings.
+    conn.pragma_update(None, "page_size", 16_384)
+        .unwrap_or_else(|e| panic!("{e}"));
     conn.pragma_update(None, "journal_mode", "WAL")
         .unwrap_or_else(|e| panic!("{e}"));
     conn.pragma_update(None, "synchronous", "FULL")

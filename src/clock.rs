@@ -42,6 +42,12 @@ fn civil_from_days(z: i64) -> (i32, u32, u32) {
     ((if m <= 2 { y + 1 } else { y }) as i32, m, d)
 }
 
+/// Whole seconds since the Unix epoch (0 for times before it).
+pub fn unix_seconds(t: SystemTime) -> i64 {
+    t.duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_secs() as i64)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -18,6 +18,7 @@ use std::time::Duration;
 use globset::{Glob, GlobMatcher};
 use toml::{Table, Value};
 
+use crate::findings::rules::{CooksRule, Thresholds};
 use crate::records::SeriesId;
 use crate::records::{DateFormat, Layout, Matrix, SeriesKey, SeriesRules, XSource};
 use crate::stats::Transform;
@@ -151,6 +152,84 @@ pub struct Config {
     series: Vec<(GlobMatcher, SeriesOverrides)>,
     feeds: Vec<Feed>,
     canonical: Layout,
+    /// Who hears of findings, and how messages leave.
+    pub mail: MailSettings,
+    /// Thresholds of the finding rules.
+    pub findings: Thresholds,
+}
+
+/// How findings reach people.
+#[derive(Debug, Clone)]
+pub struct MailSettings {
+    /// Sender address.
+    pub from: String,
+    /// Recipients of series no route matches.
+    pub to: Vec<String>,
+    /// Routes: series pattern -> recipients (every matching route adds its
+    /// recipients; none matching means `to`).
+    pub routes: Vec<(GlobMatcher, Vec<String>)>,
+    /// Name of this installation (the Message-ID's domain).
+    pub instance: String,
+    /// At most this many messages per recipient per hour; the rest wait
+    /// for a digest.
+    pub max_per_hour: u32,
+    /// Where messages are written as .eml files when no SMTP server is set.
+    pub outbox_dir: PathBuf,
+    /// The SMTP server, when configured.
+    pub smtp: Option<SmtpConfig>,
+    /// Severity per finding kind (kind name -> notice, warning, alert).
+    pub severity: Vec<(String, String)>,
+}
+
+impl MailSettings {
+    /// Recipients of a series' findings.
+    pub fn recipients(&self, series: Option<&str>) -> Vec<String> {
+        let mut out: Vec<String> = Vec::new();
+        if let Some(key) = series {
+            for (glob, to) in &self.routes {
+                if glob.is_match(key) {
+                    for r in to {
+                        if !out.contains(r) {
+                            out.push(r.clone());
+                        }
+                    }
+                }
+            }
+        }
+        if out.is_empty() {
+            out = self.to.clone();
+        }
+        out
+    }
+
+    /// The configured severity of a finding kind.
+    pub fn severity_of(&self, kind: &str) -> &str {
+        self.severity
+            .iter()
+            .find(|(k, _)| k == kind)
+            .map_or("warning", |(_, v)| v.as_str())
+    }
+}
+
+/// SMTP settings as written (the password is named, never given).
+#[derive(Debug, Clone, PartialEq)]
+pub struct SmtpConfig {
+    /// Host name.
+    pub host: String,
+    /// Port (default by TLS mode: 587 STARTTLS, 465 implicit, 25 none).
+    pub port: Option<u16>,
+    /// `starttls`, `implicit` or `none`.
+    pub tls: String,
+    /// Login name.
+    pub username: Option<String>,
+    /// Environment variable holding the password.
+    pub password_env: Option<String>,
+    /// File holding the password.
+    pub password_file: Option<PathBuf>,
+    /// Extra trusted root certificate (PEM), for a private CA.
+    pub ca_file: Option<PathBuf>,
+    /// Connection timeout.
+    pub timeout: Duration,
 }
 
 #[derive(Debug, Clone, Default)]
@@ -221,6 +300,7 @@ impl Config {
                 "feed",
                 "smtp",
                 "mail",
+                "findings",
                 "http",
             ],
         );
@@ -340,11 +420,8 @@ impl Config {
                 feeds.push(feed);
             }
         }
-        if let Some(smtp) = w.table(t, "smtp")
-            && smtp.contains_key("password")
-        {
-            w.problem("smtp.password", "passwords never go in the configuration text; set password_env = \"NAME\" (an environment variable) or password_file = \"/path\"".into());
-        }
+        let mail = w.mail(t, &resolve);
+        let findings = w.findings(t);
 
         for (key, dir) in [
             ("paths.archive", &archive),
@@ -382,6 +459,8 @@ impl Config {
             series,
             feeds,
             canonical: Layout::default(),
+            mail,
+            findings,
         })
     }
 
@@ -596,6 +675,229 @@ impl Walker {
         hi: f64,
     ) -> Duration {
         Duration::from_secs_f64(self.number(t, at, key, Some((lo, hi))).unwrap_or(default))
+    }
+
+    fn string_list(&mut self, t: &Table, at: &str, key: &str) -> Option<Vec<String>> {
+        let v = t.get(key)?;
+        match v.as_array() {
+            Some(a) if a.iter().all(|x| x.is_str()) => Some(
+                a.iter()
+                    .filter_map(|x| x.as_str().map(str::to_string))
+                    .collect(),
+            ),
+            _ => {
+                self.problem(
+                    &join(at, key),
+                    format!(
+                        "expected a list of addresses such as [\"analyst@example.org\"], found {}",
+                        type_name(v)
+                    ),
+                );
+                None
+            }
+        }
+    }
+
+    fn mail(&mut self, t: &Table, resolve: &dyn Fn(String) -> PathBuf) -> MailSettings {
+        let empty = Table::new();
+        let m = self.table(t, "mail").unwrap_or(&empty);
+        self.known(
+            m,
+            "mail",
+            &[
+                "from",
+                "to",
+                "instance",
+                "max_per_hour",
+                "outbox_dir",
+                "route",
+                "severity",
+            ],
+        );
+        let from = self
+            .string(m, "mail", "from")
+            .unwrap_or_else(|| "slopewarden@localhost".into());
+        let to = self
+            .string_list(m, "mail", "to")
+            .unwrap_or_else(|| vec!["analyst@localhost".into()]);
+        let instance = self
+            .string(m, "mail", "instance")
+            .unwrap_or_else(|| "slopewarden.localhost".into());
+        let max_per_hour = self
+            .number(m, "mail", "max_per_hour", Some((1.0, 10_000.0)))
+            .unwrap_or(6.0) as u32;
+        let outbox_dir = self
+            .string(m, "mail", "outbox_dir")
+            .map_or_else(|| resolve("data/outbox".into()), resolve);
+        let mut routes = Vec::new();
+        for (i, r) in self.array_of_tables(m, "route").into_iter().enumerate() {
+            let at = format!("mail.route[{i}]");
+            self.known(r, &at, &["series", "to"]);
+            let pattern = self.string(r, &at, "series");
+            let to = self.string_list(r, &at, "to").unwrap_or_default();
+            match pattern.map(|p| Glob::new(&p)) {
+                Some(Ok(g)) => routes.push((g.compile_matcher(), to)),
+                Some(Err(e)) => {
+                    self.problem(&format!("{at}.series"), format!("not a valid pattern: {e}"))
+                }
+                None => self.problem(
+                    &format!("{at}.series"),
+                    "missing; write a pattern of series keys, e.g. \"MW-*/*\"".into(),
+                ),
+            }
+        }
+        let mut severity: Vec<(String, String)> = [
+            ("high_leverage", "warning"),
+            ("influential", "warning"),
+            ("outlier", "warning"),
+            ("sign_reversal", "alert"),
+            ("significance_change", "warning"),
+            ("conflict", "warning"),
+            ("quarantined", "warning"),
+            ("silent_feed", "notice"),
+        ]
+        .iter()
+        .map(|(k, v)| (k.to_string(), v.to_string()))
+        .collect();
+        if let Some(sev) = self.table(m, "severity") {
+            for (k, v) in sev {
+                let at = format!("mail.severity.{k}");
+                match (severity.iter_mut().find(|(kk, _)| kk == k), v.as_str()) {
+                    (Some(slot), Some(level @ ("notice" | "warning" | "alert"))) => {
+                        slot.1 = level.to_string()
+                    }
+                    (None, _) => self.problem(
+                        &at,
+                        "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined or silent_feed".into(),
+                    ),
+                    (Some(_), _) => {
+                        self.problem(&at, "write \"notice\", \"warning\" or \"alert\"".into())
+                    }
+                }
+            }
+        }
+        let smtp = self.table(t, "smtp").map(|st| {
+            self.known(
+                st,
+                "smtp",
+                &[
+                    "host",
+                    "port",
+                    "tls",
+                    "username",
+                    "password",
+                    "password_env",
+                    "password_file",
+                    "ca_file",
+                    "timeout_seconds",
+                ],
+            );
+            if st.contains_key("password") {
+                self.problem("smtp.password", "passwords never go in the configuration text; set password_env = \"NAME\" (an environment variable) or password_file = \"/path\"".into());
+            }
+            let host = self.string(st, "smtp", "host").unwrap_or_default();
+            if host.is_empty() {
+                self.problem("smtp.host", "missing; write the mail server's name, e.g. \"mail.example.org\", or remove [smtp] to write messages to the outbox folder".into());
+            }
+            let tls = self
+                .string(st, "smtp", "tls")
+                .unwrap_or_else(|| "starttls".into());
+            if !matches!(tls.as_str(), "starttls" | "implicit" | "none") {
+                self.problem("smtp.tls", "write \"starttls\", \"implicit\" or \"none\"".into());
+            }
+            SmtpConfig {
+                host,
+                port: self
+                    .number(st, "smtp", "port", Some((1.0, 65535.0)))
+                    .map(|p| p as u16),
+                tls,
+                username: self.string(st, "smtp", "username"),
+                password_env: self.string(st, "smtp", "password_env"),
+                password_file: self.string(st, "smtp", "password_file").map(resolve),
+                ca_file: self.string(st, "smtp", "ca_file").map(resolve),
+                timeout: self.seconds(st, "smtp", "timeout_seconds", 30.0, 1.0, 600.0),
+            }
+        });
+        MailSettings {
+            from,
+            to,
+            routes,
+            instance,
+            max_per_hour,
+            outbox_dir,
+            smtp,
+            severity,
+        }
+    }
+
+    fn findings(&mut self, t: &Table) -> Thresholds {
+        let d = Thresholds::default();
+        let Some(f) = self.table(t, "findings") else {
+            return d;
+        };
+        self.known(
+            f,
+            "findings",
+            &[
+                "leverage_multiplier",
+                "unexpected_leverage_factor",
+                "cooks_distance",
+                "outlier_alpha",
+                "significance_alpha",
+                "release_alpha",
+                "min_points",
+                "min_points_trend",
+            ],
+        );
+        let num = |w: &mut Self, k: &str, r: (f64, f64), def: f64| {
+            w.number(f, "findings", k, Some(r)).unwrap_or(def)
+        };
+        let cooks = match self.string(f, "findings", "cooks_distance").as_deref() {
+            None | Some("median-f") => CooksRule::MedianF,
+            Some("4/n") => CooksRule::FourOverN,
+            Some(_) => {
+                self.problem(
+                    "findings.cooks_distance",
+                    "write \"median-f\" (median of F(p, n-p)) or \"4/n\"".into(),
+                );
+                CooksRule::MedianF
+            }
+        };
+        let t = Thresholds {
+            leverage_multiplier: num(
+                self,
+                "leverage_multiplier",
+                (1.0, 10.0),
+                d.leverage_multiplier,
+            ),
+            unexpected_factor: num(
+                self,
+                "unexpected_leverage_factor",
+                (1.0, 100.0),
+                d.unexpected_factor,
+            ),
+            cooks,
+            outlier_alpha: num(self, "outlier_alpha", (1e-9, 0.2), d.outlier_alpha),
+            significance_alpha: num(
+                self,
+                "significance_alpha",
+                (1e-6, 0.5),
+                d.significance_alpha,
+            ),
+            release_alpha: num(self, "release_alpha", (1e-6, 0.5), d.release_alpha),
+            min_n_record: num(self, "min_points", (4.0, 1e6), d.min_n_record as f64) as usize,
+            min_n_trend: num(self, "min_points_trend", (4.0, 1e6), d.min_n_trend as f64) as usize,
+        };
+        if t.release_alpha < t.significance_alpha {
+            self.problem(
+                "findings.release_alpha",
+                format!(
+                    "must be at least significance_alpha ({}); it is the wider band a significant trend must leave to stop being so",
+                    t.significance_alpha
+                ),
+            );
+        }
+        t
     }
 
     fn series_overrides(&mut self, t: &Table, at: &str, with_match: bool) -> SeriesOverrides {

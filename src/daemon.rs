@@ -38,6 +38,9 @@ pub enum DaemonError {
     /// The store failed at start-up.
     #[error(transparent)]
     Store(#[from] crate::store::StoreError),
+    /// Messages cannot be sent with these settings.
+    #[error(transparent)]
+    Mail(#[from] crate::outbox::MailerError),
     /// A folder or file given cannot be used.
     #[error("{path}: {source}; check that it exists and is readable", path = path.display())]
     Path {
@@ -93,6 +96,55 @@ pub fn run(
     store: &mut Store,
     stop: &AtomicBool,
 ) -> Result<RunTotals, DaemonError> {
+    // The sender works beside the watcher on its own connection, so that a
+    // slow or absent mail server never holds up ingestion.
+    let mailer = crate::outbox::mailer(config)?;
+    let mut sender_store = Store::open(store.path())?;
+    std::thread::scope(|scope| {
+        scope.spawn(|| send_until_stopped(config, &mut sender_store, mailer.as_ref(), stop));
+        let result = watch(config, store, stop);
+        // Make sure the sender stops even when watching failed.
+        stop.store(true, Ordering::SeqCst);
+        result
+    })
+}
+
+/// How often the sender looks for due messages.
+const SEND_EVERY: Duration = Duration::from_secs(2);
+
+fn send_until_stopped(
+    config: &Config,
+    store: &mut Store,
+    mailer: &dyn crate::messages::Mailer,
+    stop: &AtomicBool,
+) {
+    loop {
+        match crate::outbox::send_due(config, store, mailer, SystemTime::now()) {
+            Ok(pass) if pass != crate::outbox::Pass::default() => {
+                info!(
+                    sent = pass.sent,
+                    deferred = pass.deferred,
+                    failed = pass.failed,
+                    digests = pass.digests,
+                    "outbox pass"
+                );
+            }
+            Ok(_) => {}
+            Err(e) => error!(error = %e, "outbox pass failed; will retry"),
+        }
+        if stop.load(Ordering::SeqCst) {
+            return;
+        }
+        sleep_unless_stopped(SEND_EVERY, stop);
+        if stop.load(Ordering::SeqCst) {
+            // One last pass so that findings of the last file go out.
+            let _ = crate::outbox::send_due(config, store, mailer, SystemTime::now());
+            return;
+        }
+    }
+}
+
+fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTotals, DaemonError> {
     std::fs::create_dir_all(&config.inbox).map_err(|source| DaemonError::Path {
         path: config.inbox.clone(),
         source,
@@ -263,6 +315,12 @@ pub fn ingest_paths(
         progress(i + 1, total, &file.path, &result);
         Flow::Continue
     });
+    // Deliver (or write to the outbox folder) what the files raised.
+    let mailer = crate::outbox::mailer(config)?;
+    let pass = crate::outbox::send_due(config, store, mailer.as_ref(), SystemTime::now())?;
+    if pass.sent + pass.deferred + pass.failed > 0 {
+        info!(sent = pass.sent, deferred = pass.deferred, failed = pass.failed, via = %mailer.describe(), "messages");
+    }
     Ok(totals)
 }
 

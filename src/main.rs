@@ -100,6 +100,28 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Findings: records and trend changes that deserve a check.
+    Findings {
+        /// Only those still awaiting a verdict.
+        #[arg(long)]
+        open: bool,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON list instead of the table.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Send a short test message with the configured mail settings (or
+    /// write it to the outbox folder when no server is configured).
+    SendTestEmail {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// Recipient (default: the configured `mail.to`).
+        #[arg(long)]
+        to: Option<String>,
+    },
     /// Every fit version of one series, with what triggered it.
     History {
         /// The series key.
@@ -184,6 +206,12 @@ fn main() -> ExitCode {
             config,
             json,
         } => commands::history(config.as_deref(), &series, json),
+        Command::Findings { open, config, json } => {
+            commands::findings(config.as_deref(), open, json)
+        }
+        Command::SendTestEmail { config, to } => {
+            commands::send_test_email(config.as_deref(), to.as_deref())
+        }
     }
 }
 
@@ -489,6 +517,75 @@ mod commands {
             Ok(()) => ExitCode::SUCCESS,
             Err(e) => {
                 eprintln!("slopewarden: cannot write the output: {e}");
+                ExitCode::from(EXIT_IO)
+            }
+        }
+    }
+
+    pub fn findings(config: Option<&Path>, open: bool, json: bool) -> ExitCode {
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let rows = match store.findings(open) {
+            Ok(r) => r,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if json {
+            return print_json(&rows);
+        }
+        if rows.is_empty() {
+            println!("no {}findings", if open { "open " } else { "" });
+            return ExitCode::SUCCESS;
+        }
+        println!(
+            "{:>6}  {:<8} {:<9} {:<20}  summary",
+            "id", "severity", "status", "created"
+        );
+        for r in &rows {
+            println!(
+                "{:>6}  {:<8} {:<9} {:<20}  {}",
+                r.id, r.severity, r.status, r.created_at, r.summary
+            );
+        }
+        println!(
+            "\nA flag is a prompt to verify a record, not a compliance determination. Check the record, then record a verdict with `slopewarden review ID --verdict confirmed|corrected|excluded --note TEXT`."
+        );
+        ExitCode::SUCCESS
+    }
+
+    pub fn send_test_email(config: Option<&Path>, to: Option<&str>) -> ExitCode {
+        let config = match load(config) {
+            Ok(c) => c,
+            Err(code) => return code,
+        };
+        let mailer = match slopewarden::outbox::mailer(&config) {
+            Ok(m) => m,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_CONFIG);
+            }
+        };
+        let recipients: Vec<String> = match to {
+            Some(t) => vec![t.to_string()],
+            None => config.mail.to.clone(),
+        };
+        match slopewarden::messages::send_test_email(
+            mailer.as_ref(),
+            &config.mail.from,
+            &recipients,
+            &config.mail.instance,
+            std::time::SystemTime::now(),
+        ) {
+            Ok(report) => {
+                println!("{report}");
+                ExitCode::SUCCESS
+            }
+            Err(e) => {
+                eprintln!("slopewarden: the test message was not sent: {e}");
                 ExitCode::from(EXIT_IO)
             }
         }

@@ -22,10 +22,14 @@ use tracing::{debug, info, info_span, warn};
 
 use crate::clock;
 use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
+use crate::findings::rules::{
+    CutoffCache, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with, judge_trend,
+};
 use crate::inbox::{self, InboxError, ReadyFile};
+use crate::raise;
 use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
 use crate::stats::robust::{mann_kendall, theil_sen};
-use crate::stats::{Arrival, LineFit, SeriesState, TQuantiles, Transform};
+use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
 use crate::store::{
     AuditKind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch, RecordPlacement,
     RobustRow, SeriesRow, Store, StoreError,
@@ -36,6 +40,10 @@ use crate::store::{
 /// within a small multiple of one computation at the final size.
 const ROBUST_GROWTH: f64 = 2.0;
 
+/// Records awaiting review are left out of the judging fit up to one in
+/// this many of the series' points.
+const MAX_LEFT_OUT_SHARE: usize = 10;
+
 /// Series rows kept between files by the one writer, so that a series
 /// touched by every file is not read back each time. Cleared whenever a
 /// transaction fails, since its rows may then be ahead of the database.
@@ -45,6 +53,10 @@ pub struct SeriesCache {
     /// The fit points (fitted scale) of series whose robust slope has been
     /// computed once, so that later checkpoints need not read them back.
     points: HashMap<String, Vec<(f64, f64)>>,
+    /// Points of records awaiting review, per series.
+    awaiting: HashMap<String, Vec<(f64, f64)>>,
+    /// Critical values of the finding rules.
+    cutoffs: CutoffCache,
     quantiles: Option<TQuantiles>,
 }
 
@@ -54,9 +66,12 @@ impl SeriesCache {
         SeriesCache::default()
     }
 
-    fn clear(&mut self) {
+    /// Forgets everything (after a failed transaction, or when another
+    /// process may have changed findings, as a verdict does).
+    pub fn clear(&mut self) {
         self.rows.clear();
         self.points.clear();
+        self.awaiting.clear();
     }
 
     fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
@@ -297,7 +312,18 @@ fn process_file_inner(
         }
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
-    let result = store_file(config, store, cache, &name, &sha, size, feed, &parsed, &at);
+    let result = store_file(
+        config,
+        store,
+        cache,
+        &name,
+        &sha,
+        size,
+        feed,
+        &parsed,
+        &at,
+        clock::unix_seconds(now),
+    );
     // Handed back for freeing off this thread.
     prepared.parsed = Some(Ok(parsed));
     let (counts, refits) = result?;
@@ -367,6 +393,20 @@ fn quarantine_whole(
         Some(reason),
     )?;
     tx.append_audit(at, AuditKind::FileQuarantined, name, reason)?;
+    raise::plain_finding(
+        &tx,
+        config,
+        "quarantined",
+        None,
+        Some((id, name)),
+        &[],
+        &format!("file {name} set aside whole: {reason}"),
+        serde_json::json!({ "reason": reason, "caution": raise::CAUTION,
+            "judged_against": "the file format the feed expects" }),
+        (None, None),
+        at,
+        clock::unix_seconds(now),
+    )?;
     tx.commit()?;
     let moved_to = if config.keep_files {
         None
@@ -394,6 +434,24 @@ struct Touched {
     changed: bool,
     /// Points this file added to the fit, in order.
     new_points: Vec<(f64, f64)>,
+    /// The series' co-moments before this file.
+    before: Moments,
+    /// Points of records awaiting review (kept out of the judging fit).
+    awaiting: Vec<(f64, f64)>,
+    /// Records of this series in the file (Bonferroni over a backlog).
+    in_file: usize,
+    /// The last arrival of this file and its record id.
+    last: Option<(Arrival, String)>,
+}
+
+/// A record the rules flagged, waiting for the file's fits.
+struct Flagged {
+    index: usize,
+    row_id: i64,
+    arrival: Arrival,
+    judgement: RecordJudgement,
+    fit_point: (f64, f64),
+    left_out: usize,
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -407,6 +465,7 @@ fn store_file(
     feed: &str,
     parsed: &records::ParsedFile,
     at: &str,
+    now_unix: i64,
 ) -> Result<(FileCounts, usize), PipelineError> {
     let tx = store.begin()?;
     let file_id = tx.insert_file(&NewFile {
@@ -428,8 +487,14 @@ fn store_file(
     // Ids stored by earlier files: those records take the slow path (same
     // record again, or a conflict); all others are written in batches.
     let stored = tx.stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
+    let mut per_series: HashMap<&str, usize> = HashMap::new();
+    for r in &parsed.records {
+        *per_series.entry(r.series.as_str()).or_default() += 1;
+    }
     let mut batch = RecordBatch::new();
-    for record in &parsed.records {
+    let mut flagged: Vec<Flagged> = Vec::new();
+    let mut plain: Vec<PlainFinding> = Vec::new();
+    for (index, record) in parsed.records.iter().enumerate() {
         let key = record.series.as_str();
         if !touched.contains_key(key) {
             let settings = config.series_settings(&record.series);
@@ -448,14 +513,22 @@ fn store_file(
                 },
             };
             let state = SeriesState::from_moments(row.moments);
+            let awaiting = match cache.awaiting.remove(key) {
+                Some(a) => a,
+                None => tx.awaiting_review(row.id)?,
+            };
             touched.insert(
                 key.to_string(),
                 Touched {
+                    before: row.moments,
                     row,
                     settings,
                     state,
                     changed: false,
                     new_points: Vec::new(),
+                    awaiting,
+                    in_file: per_series.get(key).copied().unwrap_or(1),
+                    last: None,
                 },
             );
             order.push(key.to_string());
@@ -510,9 +583,59 @@ fn store_file(
             }
             t.row.last_arrival = Some(at.to_string());
             t.changed = true;
-            if let (Some(_), Some(p)) = (&arrival, fit_point) {
+            if let (Some(a), Some(p)) = (&arrival, fit_point) {
+                // Judge against the fit without records awaiting review.
+                // At most a tenth of the points are left out (the newest
+                // suspects): leaving out more would judge newcomers against
+                // a fit too thin to trust, and swamp clean records.
+                let cap = (t.state.n() as usize) / MAX_LEFT_OUT_SHARE;
+                let left_out = &t.awaiting[t.awaiting.len().saturating_sub(cap)..];
+                let judged = if left_out.is_empty() {
+                    Some(*a)
+                } else {
+                    let mut js = t.state;
+                    let mut ok = true;
+                    for &(ax, ay) in left_out {
+                        ok &= js.remove(ax, ay).is_ok();
+                    }
+                    if ok { js.add(p.0, p.1).ok() } else { Some(*a) }
+                };
+                if let (Some(judged), Some((lo, hi))) = (judged, t.row.x_span)
+                    && let Some(j) = judge_record_with(
+                        &judged,
+                        Span { min: lo, max: hi },
+                        t.in_file,
+                        &config.findings,
+                        &mut cache.cutoffs,
+                    )
+                    && !j.kinds.is_empty()
+                {
+                    // Only a record that sits off the line or far out in x
+                    // can mask the next one; an influential record on the
+                    // line stays in the judging fit.
+                    let suspect = j
+                        .kinds
+                        .iter()
+                        .any(|k| matches!(k, RecordKind::Outlier | RecordKind::HighLeverage));
+                    flagged.push(Flagged {
+                        index,
+                        row_id,
+                        arrival: *a,
+                        judgement: j,
+                        fit_point: p,
+                        left_out: left_out.len(),
+                    });
+                    if suspect {
+                        t.awaiting.push(p);
+                    }
+                }
+                t.row.x_span = Some(match t.row.x_span {
+                    Some((lo, hi)) => (lo.min(p.0), hi.max(p.0)),
+                    None => (p.0, p.0),
+                });
                 t.state = probe;
                 t.new_points.push(p);
+                t.last = Some((*a, record.record_id.clone()));
             }
             continue;
         }
@@ -533,6 +656,21 @@ fn store_file(
         )? {
             counts.conflict += 1;
             tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+            plain.push(PlainFinding {
+                kind: "conflict",
+                series: key.to_string(),
+                record_ids: vec![record.record_id.clone()],
+                summary: format!(
+                    "record {} resubmitted in {name} line {} with other values (stored: x {}, y {}; new: x {}, y {}); kept as proposed version {}, the stored version is unchanged",
+                    record.record_id,
+                    record.line,
+                    stored_record.x,
+                    stored_record.y,
+                    record.x,
+                    record.y.number(),
+                    max_version + 1
+                ),
+            });
             tx.append_audit(
                 at,
                 AuditKind::Conflict,
@@ -592,6 +730,7 @@ fn store_file(
     let mut refits = 0;
     let mut refit_list = String::new();
     let mut fits = FitBatch::new();
+    let mut trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)> = Vec::new();
     for key in &order {
         let Some(t) = touched.get_mut(key) else {
             continue;
@@ -609,6 +748,23 @@ fn store_file(
         let robust = robust_of.get(key.as_str()).copied();
         if robust.is_some() {
             t.row.robust_n = t.state.n() as i64;
+        }
+        if let Ok(new_fit) = &fit {
+            let previous = LineFit::from_moments(&t.before, config.level).ok();
+            let without = t
+                .last
+                .as_ref()
+                .and_then(|(a, _)| a.slope_without().map(|s| (s, a.slope_p_without())));
+            let (significant, changes) = judge_trend(
+                previous.as_ref().map(|f| (f.slope, t.row.significant)),
+                new_fit,
+                without,
+                &config.findings,
+            );
+            t.row.significant = significant;
+            for change in changes {
+                trends.push((key.clone(), change, previous, *new_fit));
+            }
         }
         let note = match (&fit, &robust) {
             (Err(e), _) => Some(format!("no fit yet: {e}")),
@@ -643,6 +799,19 @@ fn store_file(
         FileOutcome::Ingested
     };
     tx.flush_fits(&mut fits)?;
+    let findings = raise_findings(
+        &tx,
+        config,
+        cache,
+        parsed,
+        &touched,
+        &flagged,
+        &plain,
+        &trends,
+        (file_id, name),
+        at,
+        now_unix,
+    )?;
     tx.finish_file(file_id, outcome, counts, None)?;
     tx.append_audit(
         at,
@@ -658,9 +827,165 @@ fn store_file(
         if let Some(p) = cache.points.get_mut(&key) {
             p.append(&mut t.new_points);
         }
+        cache.awaiting.insert(key.clone(), t.awaiting);
         cache.rows.insert(key, t.row);
     }
+    if findings > 0 {
+        info!(findings, "findings raised");
+    }
     Ok((counts, refits))
+}
+
+/// A finding without a record under judgement, waiting for the file's fits.
+struct PlainFinding {
+    kind: &'static str,
+    series: String,
+    record_ids: Vec<String>,
+    summary: String,
+}
+
+/// Raises the file's findings (records flagged by the rules, conflicts,
+/// refused rows, trend changes) in its transaction. Returns how many.
+#[allow(clippy::too_many_arguments)]
+fn raise_findings(
+    tx: &crate::store::Tx<'_>,
+    config: &Config,
+    cache: &SeriesCache,
+    parsed: &records::ParsedFile,
+    touched: &HashMap<String, Touched>,
+    flagged: &[Flagged],
+    plain: &[PlainFinding],
+    trends: &[(String, TrendChange, Option<LineFit>, LineFit)],
+    file: (crate::store::FileId, &str),
+    at: &str,
+    now_unix: i64,
+) -> Result<usize, PipelineError> {
+    let mut raised = 0;
+    if !flagged.is_empty() {
+        let others: Vec<(&str, LineFit)> = touched
+            .iter()
+            .filter_map(|(k, t)| {
+                LineFit::from_moments(t.state.moments(), config.level)
+                    .ok()
+                    .map(|f| (k.as_str(), f))
+            })
+            .collect();
+        for f in flagged {
+            let Some(record) = parsed.records.get(f.index) else {
+                continue;
+            };
+            let key = record.series.as_str();
+            let Some(t) = touched.get(key) else {
+                continue;
+            };
+            let points = tx.fit_points(&t.row)?;
+            let mine: Vec<(&str, LineFit)> =
+                others.iter().filter(|(k, _)| *k != key).copied().collect();
+            let robust = cache
+                .points
+                .get(key)
+                .and_then(|p| robust_row(p, config.level))
+                .map(|r| (r.slope, r.ci_low, r.ci_high));
+            raise::record_finding(
+                tx,
+                config,
+                &raise::RecordCase {
+                    record,
+                    row_id: f.row_id,
+                    series: &t.row,
+                    transform: t.settings.transform,
+                    arrival: &f.arrival,
+                    judgement: &f.judgement,
+                    left_out: f.left_out,
+                    fit_point: f.fit_point,
+                    points: &points,
+                    awaiting: &t.awaiting,
+                    others: &mine,
+                    robust,
+                },
+                file,
+                at,
+                now_unix,
+            )?;
+            raised += 1;
+        }
+    }
+    for p in plain {
+        let series = touched.get(&p.series).map(|t| &t.row);
+        raise::plain_finding(
+            tx,
+            config,
+            p.kind,
+            series,
+            Some(file),
+            &p.record_ids,
+            &p.summary,
+            serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION }),
+            (None, None),
+            at,
+            now_unix,
+        )?;
+        raised += 1;
+    }
+    if !parsed.errors.is_empty() {
+        let ids: Vec<String> = parsed
+            .errors
+            .iter()
+            .filter_map(|e| e.record_id.clone())
+            .collect();
+        let rows: Vec<serde_json::Value> = parsed
+            .errors
+            .iter()
+            .map(|e| {
+                serde_json::json!({"line": e.line, "column": e.column, "field": e.field,
+                "record_id": e.record_id, "reason": e.reason})
+            })
+            .collect();
+        let first = parsed
+            .errors
+            .first()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
+        let summary = format!(
+            "{} row(s) of {} set aside by validation; the rest of the file was stored. First: {first}",
+            parsed.errors.len(),
+            file.1
+        );
+        raise::plain_finding(
+            tx,
+            config,
+            "quarantined",
+            None,
+            Some(file),
+            &ids,
+            &summary,
+            serde_json::json!({ "rows": rows, "caution": raise::CAUTION,
+                "judged_against": "the validation rules of the series (see the configuration)" }),
+            (None, None),
+            at,
+            now_unix,
+        )?;
+        raised += 1;
+    }
+    for (key, change, before, after) in trends {
+        let Some(t) = touched.get(key) else {
+            continue;
+        };
+        raise::trend_finding(
+            tx,
+            config,
+            change,
+            &t.row,
+            file,
+            before.as_ref(),
+            after,
+            t.last.as_ref().map(|(_, id)| id.as_str()),
+            at,
+            now_unix,
+        )?;
+        raised += 1;
+    }
+    Ok(raised)
 }
 
 /// A stored-side refusal of a parsed record, in the parser's error shape.

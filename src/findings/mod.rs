@@ -4,3 +4,4 @@
 
 pub mod advice;
 pub mod causes;
+pub mod rules;

@@ -22,6 +22,10 @@ pub enum AuditKind {
     Conflict,
     /// The daemon started or stopped.
     Lifecycle,
+    /// A finding was raised.
+    Finding,
+    /// A message was delivered, or given up on.
+    Message,
 }
 
 impl AuditKind {
@@ -34,6 +38,8 @@ impl AuditKind {
             AuditKind::Refit => "refit",
             AuditKind::Conflict => "conflict",
             AuditKind::Lifecycle => "lifecycle",
+            AuditKind::Finding => "finding",
+            AuditKind::Message => "message",
         }
     }
 }

@@ -22,6 +22,7 @@
 //! busy timeout rides out checkpoints.
 
 mod audit;
+mod findings;
 
 use std::cell::Cell;
 use std::collections::HashSet;
@@ -36,6 +37,7 @@ use crate::records::{Record, RecordError};
 use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
+pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
 
 /// Columns of a record row, in the order [`bind_record`] binds them.
 const INSERT_RECORD_HEAD: &str =
@@ -139,8 +141,8 @@ const INSERT_FIT_HEAD: &str = "INSERT INTO fits (id, series_id, version, trigger
     transform, non_detects, n, n_censored, level, slope, intercept, slope_se, intercept_se, slope_t,
     slope_p, slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
     theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note, records, robust_n,
-    origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit) VALUES ";
-const FIT_COLUMNS: usize = 37;
+    origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit, x_min, x_max, significant) VALUES ";
+const FIT_COLUMNS: usize = 40;
 const FIT_CHUNK: usize = 16;
 
 /// A fit row waiting in a [`FitBatch`].
@@ -162,6 +164,8 @@ struct PendingFit {
     records: i64,
     robust_n: i64,
     prev_fit: Option<i64>,
+    x_span: Option<(f64, f64)>,
+    significant: bool,
 }
 
 /// Fit rows queued for multi-row inserts within one transaction; flushed
@@ -228,6 +232,9 @@ fn bind_fit(
     put(&m.syy)?;
     put(&m.sse)?;
     put(&row.prev_fit)?;
+    put(&row.x_span.map(|s| s.0))?;
+    put(&row.x_span.map(|s| s.1))?;
+    put(&row.significant)?;
     debug_assert_eq!(i - base, FIT_COLUMNS);
     Ok(())
 }
@@ -294,10 +301,16 @@ fn bind_record(
 }
 
 /// The embedded migrations, in order.
-const MIGRATIONS: &[(&str, &str)] = &[(
-    "0001_initial",
-    include_str!("../../migrations/0001_initial.sql"),
-)];
+const MIGRATIONS: &[(&str, &str)] = &[
+    (
+        "0001_initial",
+        include_str!("../../migrations/0001_initial.sql"),
+    ),
+    (
+        "0002_findings",
+        include_str!("../../migrations/0002_findings.sql"),
+    ),
+];
 
 /// Why the store failed.
 #[derive(Debug, Error)]
@@ -410,6 +423,10 @@ pub struct SeriesRow {
     pub latest_fit: Option<i64>,
     /// Row of the newest current record.
     pub latest_record: Option<i64>,
+    /// Smallest and largest x in the fit (fitted scale), when it has points.
+    pub x_span: Option<(f64, f64)>,
+    /// The trend's hysteresis state: taken as significant.
+    pub significant: bool,
 }
 
 /// A stored record's current version, for duplicate and conflict checks.
@@ -699,7 +716,8 @@ impl Store {
             .prepare(
                 "SELECT s.key, COALESCE(f.n, 0), COALESCE(f.version, 0), f.created_at, s.transform,
                         s.non_detects, s.unit, COALESCE(f.records, 0), COALESCE(f.n_censored, 0),
-                        f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p
+                        f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p,
+                        (SELECT COUNT(*) FROM findings g WHERE g.series_id = s.id AND g.status = 'open')
                  FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
                  ORDER BY s.key",
             )
@@ -720,7 +738,7 @@ impl Store {
                     slope_ci_low: r.get(10)?,
                     slope_ci_high: r.get(11)?,
                     slope_p: r.get(12)?,
-                    open_findings: 0,
+                    open_findings: r.get(13)?,
                 })
             })
             .map_err(self.wrap())?;
@@ -951,6 +969,8 @@ impl Tx<'_> {
             censored: 0,
             latest_fit: None,
             latest_record: None,
+            x_span: None,
+            significant: false,
         })
     }
 
@@ -1170,6 +1190,8 @@ impl Tx<'_> {
             records: st.records,
             robust_n: st.robust_n,
             prev_fit: st.latest_fit,
+            x_span: st.x_span,
+            significant: st.significant,
         });
         if batch.rows.len() >= FIT_CHUNK {
             self.flush_fits(batch)?;
@@ -1282,7 +1304,8 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
         "SELECT s.id, s.key, s.unit, s.transform, s.non_detects, COALESCE(f.n, 0), COALESCE(f.origin, 0),
                 COALESCE(f.mean_x, 0), COALESCE(f.mean_y, 0), COALESCE(f.sxx, 0), COALESCE(f.sxy, 0),
                 COALESCE(f.syy, 0), COALESCE(f.sse, 0), COALESCE(f.version, 0), COALESCE(f.robust_n, 0),
-                f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0), s.latest_fit, s.latest_record
+                f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0), s.latest_fit, s.latest_record,
+                f.x_min, f.x_max, COALESCE(f.significant, 0)
          FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
          WHERE s.key = ?1",
     )?
@@ -1310,6 +1333,11 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
             censored: r.get(17)?,
             latest_fit: r.get(18)?,
             latest_record: r.get(19)?,
+            x_span: match (r.get::<_, Option<f64>>(20)?, r.get::<_, Option<f64>>(21)?) {
+                (Some(a), Some(b)) => Some((a, b)),
+                _ => None,
+            },
+            significant: r.get(22)?,
         })
     })
     .optional()

@@ -1,0 +1,532 @@
+//! The rules that decide whether a new record, or a refit, deserves the
+//! analyst's attention. Pure: numbers in, a judgement out.
+//!
+//! Alerts are trusted only when rare and right, so a record-level finding is
+//! raised by three tests that clean arrivals seldom fail:
+//! - `outlier`: the record against the fit *before* it arrived (its
+//!   prediction t, which equals the externally studentized residual), beyond
+//!   t(1 − α/(2k), n − 2) with a small α; k is the number of records of the
+//!   series judged at once (Bonferroni over a backlog).
+//! - `high_leverage`: leverage above the 2p/n cutoff *and* well above what a
+//!   record at the series' usual spacing would have. In a time series the
+//!   newest record always sits at the end of the x range, so 2p/n alone
+//!   would flag routine arrivals; a gap, a wrong year or a distance typo
+//!   puts the record far beyond the usual spacing.
+//! - `influential`: Cook's distance beyond the median of F(p, n − p) (Cook
+//!   1977), or 4/n when configured. |DFFITS| and |DFBETAS| crossings are
+//!   reported with the finding but do not raise one alone: for the newest
+//!   point of an evenly spaced series they cross their cutoffs for about
+//!   one clean arrival in six (common practice treats them as screening
+//!   values, not tests).
+//!
+//! Trend-level findings (`sign_reversal`, `significance_change`) use
+//! hysteresis: a trend becomes significant when p falls below α and stops
+//! only when p rises above a wider release level, so a p-value hovering
+//! near α does not flap; nothing is said below a minimum n.
+
+use statrs::distribution::{ContinuousCDF, FisherSnedecor};
+
+use crate::stats::dist::t_quantile;
+use crate::stats::{Arrival, LineFit};
+
+/// Number of coefficients of the straight line.
+const P: usize = 2;
+
+/// The Cook's distance cutoff in use.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CooksRule {
+    /// Median of F(p, n − p) (Cook 1977).
+    MedianF,
+    /// 4/n (Bollen & Jackman 1990).
+    FourOverN,
+}
+
+/// Thresholds of the rules; [`Thresholds::default`] gives the published
+/// cutoffs and the defaults documented in config/slopewarden.example.toml.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Thresholds {
+    /// Leverage cutoff multiplier m in m·p/n (2, Hoaglin & Welsch 1978).
+    pub leverage_multiplier: f64,
+    /// Leverage must also exceed this multiple of the leverage a record at
+    /// the series' usual spacing would have (2; a project default).
+    pub unexpected_factor: f64,
+    /// Cook's distance rule.
+    pub cooks: CooksRule,
+    /// Two-sided α of the outlier test, before Bonferroni (0.001).
+    pub outlier_alpha: f64,
+    /// A trend becomes significant below this p (0.05).
+    pub significance_alpha: f64,
+    /// A significant trend stops being so only above this p (0.10).
+    pub release_alpha: f64,
+    /// Records are judged once the series held this many points before the
+    /// newcomer (10).
+    pub min_n_record: usize,
+    /// Trend changes are reported from this n on (10).
+    pub min_n_trend: usize,
+}
+
+impl Default for Thresholds {
+    fn default() -> Self {
+        Thresholds {
+            leverage_multiplier: 2.0,
+            unexpected_factor: 2.0,
+            cooks: CooksRule::MedianF,
+            outlier_alpha: 0.001,
+            significance_alpha: 0.05,
+            release_alpha: 0.10,
+            min_n_record: 10,
+            min_n_trend: 10,
+        }
+    }
+}
+
+/// The kinds of record-level findings raised by these rules.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum RecordKind {
+    /// Leverage beyond the cutoff and beyond the usual spacing.
+    HighLeverage,
+    /// Cook's distance beyond its cutoff.
+    Influential,
+    /// Far from the fit before it arrived.
+    Outlier,
+}
+
+impl RecordKind {
+    /// The stored name.
+    pub fn name(self) -> &'static str {
+        match self {
+            RecordKind::HighLeverage => "high_leverage",
+            RecordKind::Influential => "influential",
+            RecordKind::Outlier => "outlier",
+        }
+    }
+}
+
+/// One measured value beside its cutoff, for the message.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Measured {
+    /// The finding kind the measure supports.
+    pub kind: &'static str,
+    /// What was measured.
+    pub measure: &'static str,
+    /// Its value.
+    pub value: f64,
+    /// The cutoff.
+    pub cutoff: f64,
+    /// Whether the cutoff was crossed.
+    pub crossed: bool,
+    /// Where the cutoff comes from.
+    pub source: String,
+}
+
+/// Where the series' x values lay before the newcomer.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Span {
+    /// Smallest x in the fit.
+    pub min: f64,
+    /// Largest x in the fit.
+    pub max: f64,
+}
+
+/// The verdict of the rules on one new record.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RecordJudgement {
+    /// Kinds raised (empty: nothing to report).
+    pub kinds: Vec<RecordKind>,
+    /// Every measure looked at, crossed or not.
+    pub measures: Vec<Measured>,
+    /// The record's leverage in the fit with it.
+    pub leverage: f64,
+    /// The leverage a record at the usual spacing would have had.
+    pub expected_leverage: f64,
+    /// Points in the fit with the record.
+    pub n: usize,
+}
+
+/// Judges one arrival. `judged` is the fit's arrival as seen by the rules
+/// (against the fit without records still awaiting review); `span` is the x
+/// range before it; `k` the number of the series' records judged together.
+/// `None` while the series is too short to judge.
+pub fn judge_record(
+    judged: &Arrival,
+    span: Span,
+    k: usize,
+    t: &Thresholds,
+) -> Option<RecordJudgement> {
+    judge_record_with(judged, span, k, t, &mut CutoffCache::default())
+}
+
+/// Critical values already computed, keyed by their degrees of freedom:
+/// a quantile costs microseconds, and a backlog judges millions of
+/// records against a few thousand distinct values. Memoisation only; the
+/// results are those of [`judge_record`].
+#[derive(Debug, Default, Clone)]
+pub struct CutoffCache {
+    outlier_t: std::collections::HashMap<(usize, usize, u64), f64>,
+    median_f: std::collections::HashMap<usize, f64>,
+}
+
+/// [`judge_record`] with a cache of critical values.
+pub fn judge_record_with(
+    judged: &Arrival,
+    span: Span,
+    k: usize,
+    t: &Thresholds,
+    cache: &mut CutoffCache,
+) -> Option<RecordJudgement> {
+    let n_before = judged.before.n() as usize;
+    if n_before < t.min_n_record.max(3) {
+        return None;
+    }
+    let n = n_before + 1;
+    let nf = n as f64;
+    let pf = P as f64;
+    let mut kinds = Vec::new();
+    let mut measures = Vec::new();
+
+    // Outlier: prediction t against the fit before the record.
+    if let Some(pred) = judged.prediction
+        && let Some(tv) = pred.t
+        && pred.df >= 1
+    {
+        let kk = k.max(1);
+        let k = kk as f64;
+        let crit = *cache
+            .outlier_t
+            .entry((pred.df, kk, t.outlier_alpha.to_bits()))
+            .or_insert_with(|| t_quantile(1.0 - t.outlier_alpha / (2.0 * k), pred.df as f64));
+        let crossed = tv.abs() > crit;
+        if crossed {
+            kinds.push(RecordKind::Outlier);
+        }
+        measures.push(Measured {
+            kind: "outlier",
+            measure: "prediction t (externally studentized residual)",
+            value: tv,
+            cutoff: crit,
+            crossed,
+            source: if k > 1.0 {
+                format!(
+                    "t(1 - {}/(2*{k}), {}) for a two-sided test at alpha = {}, Bonferroni over {k} records judged together",
+                    t.outlier_alpha, pred.df, t.outlier_alpha
+                )
+            } else {
+                format!(
+                    "t(1 - {}/2, {}) for a two-sided test at alpha = {}",
+                    t.outlier_alpha, pred.df, t.outlier_alpha
+                )
+            },
+        });
+    }
+
+    // Leverage, against the cutoff and against the usual spacing.
+    let mb = judged.before.mean_x();
+    let sb = judged.before.sxx();
+    let x = judged.x;
+    let leverage_of = |xe: f64| {
+        let m = (n_before as f64 * mb + xe) / nf;
+        let s = sb + n_before as f64 / nf * (xe - mb) * (xe - mb);
+        if s > 0.0 {
+            1.0 / nf + (xe - m) * (xe - m) / s
+        } else {
+            1.0
+        }
+    };
+    let leverage = judged
+        .influence
+        .as_ref()
+        .map_or_else(|| leverage_of(x), |p| p.leverage());
+    let gap = if n_before > 1 {
+        (span.max - span.min) / (n_before - 1) as f64
+    } else {
+        0.0
+    };
+    let expected_x = x.clamp(span.min - gap, span.max + gap);
+    let expected_leverage = leverage_of(expected_x);
+    let cutoff = t.leverage_multiplier * pf / nf;
+    let crossed = leverage > cutoff && leverage > t.unexpected_factor * expected_leverage;
+    if crossed {
+        kinds.push(RecordKind::HighLeverage);
+    }
+    measures.push(Measured {
+        kind: "high_leverage",
+        measure: "leverage",
+        value: leverage,
+        cutoff: cutoff.max(t.unexpected_factor * expected_leverage),
+        crossed,
+        source: format!(
+            "above {}p/n = {cutoff:.3} (Hoaglin & Welsch 1978) and above {} x the leverage of a record at the usual spacing ({expected_leverage:.3}; project default)",
+            t.leverage_multiplier, t.unexpected_factor
+        ),
+    });
+
+    // Influence.
+    if let Some(inf) = judged.influence.as_ref() {
+        if let Some(d) = inf.cooks_distance() {
+            let (cut, source) = match t.cooks {
+                CooksRule::MedianF => (
+                    *cache.median_f.entry(n).or_insert_with(|| {
+                        FisherSnedecor::new(pf, nf - pf)
+                            .map(|f| f.inverse_cdf(0.5))
+                            .unwrap_or(f64::INFINITY)
+                    }),
+                    "median of F(p, n-p) (Cook 1977)",
+                ),
+                CooksRule::FourOverN => (4.0 / nf, "4/n (Bollen & Jackman 1990)"),
+            };
+            let crossed = d > cut;
+            if crossed {
+                kinds.push(RecordKind::Influential);
+            }
+            measures.push(Measured {
+                kind: "influential",
+                measure: "Cook's distance",
+                value: d,
+                cutoff: cut,
+                crossed,
+                source: source.into(),
+            });
+        }
+        if let Some(v) = inf.dffits() {
+            let cut = 2.0 * (pf / nf).sqrt();
+            measures.push(Measured {
+                kind: "influential",
+                measure: "|DFFITS| (reported, not raised alone)",
+                value: v.abs(),
+                cutoff: cut,
+                crossed: v.abs() > cut,
+                source: "2*sqrt(p/n) (Belsley, Kuh & Welsch 1980)".into(),
+            });
+        }
+        if let Some(v) = inf.dfbetas_slope() {
+            let cut = 2.0 / nf.sqrt();
+            measures.push(Measured {
+                kind: "influential",
+                measure: "|DFBETAS of the slope| (reported, not raised alone)",
+                value: v.abs(),
+                cutoff: cut,
+                crossed: v.abs() > cut,
+                source: "2/sqrt(n) (Belsley, Kuh & Welsch 1980)".into(),
+            });
+        }
+    }
+    kinds.sort();
+    Some(RecordJudgement {
+        kinds,
+        measures,
+        leverage,
+        expected_leverage,
+        n,
+    })
+}
+
+/// A change in the trend reported by [`judge_trend`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct TrendChange {
+    /// `sign_reversal` or `significance_change`.
+    pub kind: &'static str,
+    /// What changed, for people.
+    pub summary: String,
+    /// Whether the newest record alone causes it (without it, the change
+    /// would not happen).
+    pub caused_by_newest: Option<bool>,
+}
+
+/// The trend's hysteresis state after a fit: is it taken as significant?
+pub fn next_significance(previous: bool, p: Option<f64>, n: usize, t: &Thresholds) -> bool {
+    match p {
+        _ if n < t.min_n_trend => false,
+        None => previous,
+        Some(p) if previous => p <= t.release_alpha,
+        Some(p) => p < t.significance_alpha,
+    }
+}
+
+/// Compares a refit with the previous one. `previous` is the slope and its
+/// hysteresis state before; `without_newest` the slope and p of the new fit
+/// without its newest record, when known.
+pub fn judge_trend(
+    previous: Option<(f64, bool)>,
+    new_fit: &LineFit,
+    without_newest: Option<(f64, Option<f64>)>,
+    t: &Thresholds,
+) -> (bool, Vec<TrendChange>) {
+    let n = new_fit.n;
+    let prev_sig = previous.is_some_and(|(_, s)| s);
+    let now_sig = next_significance(prev_sig, new_fit.slope_p, n, t);
+    let mut out = Vec::new();
+    let Some((prev_slope, _)) = previous else {
+        return (now_sig, out);
+    };
+    if n < t.min_n_trend {
+        return (now_sig, out);
+    }
+    let p_text = |p: Option<f64>| p.map_or("undefined".to_string(), |p| format!("{p:.3}"));
+    if prev_sig && prev_slope.signum() != new_fit.slope.signum() && new_fit.slope != 0.0 {
+        let caused = without_newest.map(|(s, _)| s.signum() == prev_slope.signum());
+        out.push(TrendChange {
+            kind: "sign_reversal",
+            summary: format!(
+                "the slope changed sign: {prev_slope:.4} before, {:.4} now (p = {})",
+                new_fit.slope,
+                p_text(new_fit.slope_p)
+            ),
+            caused_by_newest: caused,
+        });
+    }
+    if now_sig != prev_sig {
+        let caused =
+            without_newest.map(|(_, p)| next_significance(prev_sig, p, n - 1, t) == prev_sig);
+        out.push(TrendChange {
+            kind: "significance_change",
+            summary: if now_sig {
+                format!(
+                    "the trend became significant: p = {} < {} (it stops being so only above {})",
+                    p_text(new_fit.slope_p),
+                    t.significance_alpha,
+                    t.release_alpha
+                )
+            } else {
+                format!(
+                    "the trend is no longer significant: p = {} > {}",
+                    p_text(new_fit.slope_p),
+                    t.release_alpha
+                )
+            },
+            caused_by_newest: caused,
+        });
+    }
+    (now_sig, out)
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+    use crate::stats::{SeriesState, fit_line};
+
+    /// Quarterly series with a small deterministic wiggle (invented).
+    fn quarterly(n: usize) -> Vec<(f64, f64)> {
+        (0..n)
+            .map(|i| {
+                let x = 2010.0 + i as f64 * 0.25;
+                (
+                    x,
+                    5.0 + 0.2 * (x - 2010.0) + 0.3 * ((i * 7 % 5) as f64 - 2.0) / 2.0,
+                )
+            })
+            .collect()
+    }
+
+    fn judge(points: &[(f64, f64)], newcomer: (f64, f64)) -> RecordJudgement {
+        let mut s = SeriesState::new();
+        for &(x, y) in points {
+            s.add(x, y).unwrap();
+        }
+        let span = Span {
+            min: points.iter().map(|p| p.0).fold(f64::INFINITY, f64::min),
+            max: points.iter().map(|p| p.0).fold(f64::NEG_INFINITY, f64::max),
+        };
+        let a = s.add(newcomer.0, newcomer.1).unwrap();
+        judge_record(&a, span, 1, &Thresholds::default()).unwrap()
+    }
+
+    #[test]
+    fn a_routine_next_quarter_raises_nothing() {
+        let pts = quarterly(30);
+        let j = judge(&pts, (2017.5, 5.0 + 0.2 * 7.5 + 0.1));
+        assert!(j.kinds.is_empty(), "{j:?}");
+        // The newest point's leverage is near 4/n, twice the average
+        // 2/n; it is expected there.
+        assert!(j.leverage > 3.5 / 31.0, "{}", j.leverage);
+    }
+
+    #[test]
+    fn a_value_entered_ten_times_too_large_is_an_outlier_and_influential() {
+        let pts = quarterly(30);
+        let j = judge(&pts, (2017.5, 10.0 * (5.0 + 0.2 * 7.5)));
+        assert!(j.kinds.contains(&RecordKind::Outlier), "{j:?}");
+        assert!(j.kinds.contains(&RecordKind::Influential), "{j:?}");
+    }
+
+    #[test]
+    fn a_wrong_year_far_ahead_has_unexpected_leverage() {
+        let pts = quarterly(30);
+        // 2027 instead of 2017: ten years beyond the surveyed range.
+        let j = judge(&pts, (2027.5, 5.0 + 0.2 * 7.5));
+        assert!(j.kinds.contains(&RecordKind::HighLeverage), "{j:?}");
+    }
+
+    #[test]
+    fn short_series_are_not_judged() {
+        let pts = quarterly(5);
+        let mut s = SeriesState::new();
+        for &(x, y) in &pts {
+            s.add(x, y).unwrap();
+        }
+        let a = s.add(2030.0, 100.0).unwrap();
+        let span = Span {
+            min: 2010.0,
+            max: 2011.0,
+        };
+        assert!(judge_record(&a, span, 1, &Thresholds::default()).is_none());
+    }
+
+    #[test]
+    fn bonferroni_raises_the_bar_for_records_judged_together() {
+        let pts = quarterly(30);
+        let mut s = SeriesState::new();
+        for &(x, y) in &pts {
+            s.add(x, y).unwrap();
+        }
+        let a = s.add(2017.5, 5.0 + 0.2 * 7.5 + 1.6).unwrap();
+        let span = Span {
+            min: 2010.0,
+            max: 2017.25,
+        };
+        let one = judge_record(&a, span, 1, &Thresholds::default()).unwrap();
+        let many = judge_record(&a, span, 50, &Thresholds::default()).unwrap();
+        let cut = |j: &RecordJudgement| j.measures[0].cutoff;
+        assert!(cut(&many) > cut(&one));
+    }
+
+    #[test]
+    fn significance_has_hysteresis() {
+        let t = Thresholds::default();
+        assert!(next_significance(false, Some(0.04), 20, &t));
+        assert!(!next_significance(false, Some(0.06), 20, &t));
+        // Once significant, p between alpha and the release level keeps it.
+        assert!(next_significance(true, Some(0.07), 20, &t));
+        assert!(!next_significance(true, Some(0.11), 20, &t));
+        assert!(!next_significance(true, Some(0.001), 5, &t));
+    }
+
+    #[test]
+    fn a_p_value_hovering_around_alpha_does_not_flap() {
+        let t = Thresholds::default();
+        let mut sig = false;
+        let mut flips = 0;
+        for (i, p) in [0.049, 0.051, 0.048, 0.06, 0.055, 0.045, 0.07, 0.052, 0.049]
+            .iter()
+            .enumerate()
+        {
+            let now = next_significance(sig, Some(*p), 20 + i, &t);
+            flips += usize::from(now != sig);
+            sig = now;
+        }
+        assert_eq!(flips, 1);
+    }
+
+    #[test]
+    fn a_reversed_significant_slope_is_reported_with_its_cause() {
+        let t = Thresholds::default();
+        let x: Vec<f64> = (0..20).map(|i| i as f64).collect();
+        let y: Vec<f64> = x.iter().map(|v| 10.0 - 0.5 * v + 0.1 * (v % 3.0)).collect();
+        let fit = fit_line(&x, &y, 0.95).unwrap();
+        let (sig, changes) = judge_trend(Some((0.4, true)), &fit, Some((0.3, Some(0.01))), &t);
+        assert!(sig);
+        assert_eq!(changes.len(), 1);
+        assert_eq!(changes[0].kind, "sign_reversal");
+        assert_eq!(changes[0].caused_by_newest, Some(true));
+    }
+}

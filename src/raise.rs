@@ -1,0 +1,552 @@
+//! Raising findings inside a file's transaction: store the finding, its
+//! audit entry and its messages (rendered now, sent later by the outbox
+//! sender), all in the transaction that stores the records, so that a
+//! finding and its messages exist exactly when its records do.
+//!
+//! The judging itself is in [`crate::findings::rules`]; the wording in
+//! [`crate::messages`]. This module only gathers what they need.
+
+use serde_json::json;
+
+use crate::config::Config;
+use crate::findings::advice::{AdviceInput, advise};
+use crate::findings::causes::{CauseInput, XKind, rank_causes};
+use crate::findings::rules::{Measured, RecordJudgement, TrendChange};
+use crate::messages::{
+    Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
+    RobustSlope, Severity, render_notice,
+};
+use crate::records::Record;
+use crate::stats::{Arrival, LineFit, Transform};
+use crate::store::{AuditKind, FileId, NewFinding, NewMessage, SeriesRow, StoreError, Tx};
+
+type Result<T> = std::result::Result<T, StoreError>;
+
+/// What the file's transaction knows about one flagged record.
+pub struct RecordCase<'a> {
+    /// The record.
+    pub record: &'a Record,
+    /// Its stored row.
+    pub row_id: i64,
+    /// The series row (after the record).
+    pub series: &'a SeriesRow,
+    /// Its transform.
+    pub transform: Transform,
+    /// Its arrival in the full fit.
+    pub arrival: &'a Arrival,
+    /// What the rules said (judged against the fit without records
+    /// awaiting review).
+    pub judgement: &'a RecordJudgement,
+    /// How many records awaiting review were left out of the judging fit.
+    pub left_out: usize,
+    /// The record's point on the fitted scale.
+    pub fit_point: (f64, f64),
+    /// The series' points (fitted scale), the record included.
+    pub points: &'a [(f64, f64)],
+    /// Points awaiting review (fitted scale).
+    pub awaiting: &'a [(f64, f64)],
+    /// Fits of other series in the same file, for "belongs to another series".
+    pub others: &'a [(&'a str, LineFit)],
+    /// Robust slope of the series, if known.
+    pub robust: Option<(f64, f64, f64)>,
+}
+
+/// Raises a record-level finding; returns its id.
+pub fn record_finding(
+    tx: &Tx<'_>,
+    config: &Config,
+    case: &RecordCase<'_>,
+    file: (FileId, &str),
+    at: &str,
+    now_unix: i64,
+) -> Result<i64> {
+    let r = case.record;
+    let kinds: Vec<String> = case
+        .judgement
+        .kinds
+        .iter()
+        .map(|k| k.name().to_string())
+        .collect();
+    let severity = severity_of(config, &kinds);
+    let level = config.level;
+    let with = case.arrival.fit_with(level).ok();
+    let without = case.arrival.fit_without(level).ok();
+    let judged_against = if case.left_out == 0 {
+        "the fit of the series before this record".to_string()
+    } else {
+        format!(
+            "the fit of the series before this record, without the {} record(s) still awaiting review (so that one unverified record cannot mask another)",
+            case.left_out
+        )
+    };
+
+    // Likely entry errors, scored against the fit without the record.
+    let others: Vec<(&str, &LineFit)> = case.others.iter().map(|(k, f)| (*k, f)).collect();
+    let x_kind = if (1800.0..=2200.0).contains(&r.x) {
+        XKind::DecimalYear
+    } else {
+        XKind::Distance
+    };
+    let x_raw = format!("{}", r.x);
+    let y_raw = format!("{}", r.y.number());
+    let causes = without
+        .as_ref()
+        .map(|fit| {
+            rank_causes(&CauseInput {
+                fit_without: fit,
+                transform: case.transform,
+                x: r.x,
+                y: r.y.number(),
+                x_raw: &x_raw,
+                y_raw: &y_raw,
+                x_kind,
+                unit: r.unit.as_deref(),
+                others: &others,
+                max: 4,
+            })
+            .candidates
+        })
+        .unwrap_or_default();
+    let advice = if case
+        .judgement
+        .kinds
+        .contains(&crate::findings::rules::RecordKind::HighLeverage)
+    {
+        let xs: Vec<f64> = case
+            .points
+            .iter()
+            .map(|p| original(case.transform, p.0, p.1).0)
+            .collect();
+        let index = case
+            .points
+            .iter()
+            .rposition(|p| *p == case.fit_point)
+            .unwrap_or(xs.len().saturating_sub(1));
+        advise(&AdviceInput {
+            x: &xs,
+            record: index,
+            transform: case.transform,
+            multiplier: config.findings.leverage_multiplier,
+            bound: 10_000,
+        })
+        .ok()
+        .map(|a| a.sentence())
+    } else {
+        None
+    };
+
+    let summary = format!(
+        "record {} in {}: {}",
+        r.record_id,
+        case.series.key,
+        kinds.join(", ").replace('_', " ")
+    );
+    let detail = json!({
+        "record": {"id": r.record_id, "x": r.x, "y": r.y.number(), "censored": r.y.is_censored(),
+                   "unit": r.unit, "file": file.1, "line": r.line},
+        "judged_against": judged_against,
+        "measures": measures_json(&case.judgement.measures),
+        "leverage": case.judgement.leverage,
+        "expected_leverage": case.judgement.expected_leverage,
+        "fit_with": fit_json(with.as_ref()),
+        "fit_without": fit_json(without.as_ref()),
+        "robust": case.robust.map(|(s, lo, hi)| json!({"theil_sen_slope": s, "ci_low": lo, "ci_high": hi})),
+        "causes": causes.iter().map(|c| json!({"kind": format!("{:?}", c.kind), "label": c.label,
+            "x": c.x, "y": c.y, "prediction_t": c.score.t, "p": c.score.p})).collect::<Vec<_>>(),
+        "sampling_advice": advice,
+        "transform": case.transform.name(),
+        "non_detects": config.series_settings(&r.series).non_detects.name(),
+        "caution": CAUTION,
+    });
+    let id = tx.insert_finding(&NewFinding {
+        created_at: at,
+        series: Some(case.series.id),
+        file: Some(file.0),
+        record_row: Some(case.row_id),
+        record_ids: std::slice::from_ref(&r.record_id),
+        kinds: &kinds,
+        severity: severity.as_str(),
+        fit_version: Some(case.series.fit_version + 1),
+        // Only a suspect record is kept out of later judging (see pipeline).
+        fit_point: case
+            .judgement
+            .kinds
+            .iter()
+            .any(|k| {
+                matches!(
+                    k,
+                    crate::findings::rules::RecordKind::Outlier
+                        | crate::findings::rules::RecordKind::HighLeverage
+                )
+            })
+            .then_some(case.fit_point),
+        summary: &summary,
+        detail: &detail,
+    })?;
+    tx.append_audit(at, AuditKind::Finding, &format!("finding {id}"), &summary)?;
+
+    // The message.
+    let mut points: Vec<ChartPoint> = case
+        .points
+        .iter()
+        .map(|&(fx, fy)| {
+            let (x, y) = original(case.transform, fx, fy);
+            let role = if (fx, fy) == case.fit_point {
+                PointRole::ThisRecord
+            } else if case.awaiting.contains(&(fx, fy)) {
+                PointRole::AwaitingReview
+            } else {
+                PointRole::Fitted
+            };
+            ChartPoint {
+                x,
+                y,
+                role,
+                non_detect: false,
+            }
+        })
+        .collect();
+    if !points.iter().any(|p| p.role == PointRole::ThisRecord) {
+        let (x, y) = original(case.transform, case.fit_point.0, case.fit_point.1);
+        points.push(ChartPoint {
+            x,
+            y,
+            role: PointRole::ThisRecord,
+            non_detect: r.y.is_censored(),
+        });
+    }
+    let (lo, hi) = case
+        .points
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), p| {
+            (a.min(p.0), b.max(p.0))
+        });
+    let notice = Notice {
+        finding_id: id,
+        instance: config.mail.instance.clone(),
+        series: case.series.key.clone(),
+        record: Some(RecordInfo {
+            id: r.record_id.clone(),
+            file: file.1.to_string(),
+            line: r.line,
+            x: x_raw.clone(),
+            y: y_raw.clone(),
+        }),
+        unit: r.unit.clone().unwrap_or_default(),
+        x_label: match x_kind {
+            XKind::DecimalYear => "year".into(),
+            _ => "x".into(),
+        },
+        severity,
+        flags: flags(&case.judgement.measures),
+        fit_with: with.as_ref().map(summary_of),
+        fit_without: without.as_ref().map(summary_of),
+        ci_level: level,
+        scale_note: match case.transform {
+            Transform::None => None,
+            t => Some(format!(
+                "fitted on the {} scale; slopes are on that scale",
+                t.name()
+            )),
+        },
+        robust: case.robust.map(|(s, a, b)| RobustSlope {
+            slope: s,
+            ci: Some((a, b)),
+        }),
+        judged_against,
+        causes: causes
+            .iter()
+            .map(|c| Cause {
+                label: c.label.clone(),
+                corrected_value: format!("x = {}, y = {}", c.x, c.y),
+                score_p: c.score.p,
+            })
+            .collect(),
+        sampling_advice: advice,
+        nondetect_policy: config.series_settings(&r.series).non_detects.name(),
+        points,
+        line_with: with
+            .as_ref()
+            .map(|f| line(case.transform, f, lo, hi))
+            .unwrap_or_default(),
+        line_without: without
+            .as_ref()
+            .map(|f| line(case.transform, f, lo, hi))
+            .unwrap_or_default(),
+        verdict_commands: verdict_commands(id),
+        created_at: at.to_string(),
+    };
+    queue(
+        tx,
+        config,
+        id,
+        Some(&case.series.key),
+        &render_notice(&notice),
+        now_unix,
+    )?;
+    Ok(id)
+}
+
+/// Raises a finding without a record under judgement (a trend change, a
+/// conflict, rows or a file set aside); returns its id.
+#[allow(clippy::too_many_arguments)]
+pub fn plain_finding(
+    tx: &Tx<'_>,
+    config: &Config,
+    kind: &str,
+    series: Option<&SeriesRow>,
+    file: Option<(FileId, &str)>,
+    record_ids: &[String],
+    summary: &str,
+    detail: serde_json::Value,
+    fits: (Option<&LineFit>, Option<&LineFit>),
+    at: &str,
+    now_unix: i64,
+) -> Result<i64> {
+    let kinds = vec![kind.to_string()];
+    let severity = severity_of(config, &kinds);
+    let id = tx.insert_finding(&NewFinding {
+        created_at: at,
+        series: series.map(|s| s.id),
+        file: file.map(|f| f.0),
+        record_row: None,
+        record_ids,
+        kinds: &kinds,
+        severity: severity.as_str(),
+        fit_version: series.map(|s| s.fit_version),
+        fit_point: None,
+        summary,
+        detail: &detail,
+    })?;
+    tx.append_audit(at, AuditKind::Finding, &format!("finding {id}"), summary)?;
+    let notice = Notice {
+        finding_id: id,
+        instance: config.mail.instance.clone(),
+        series: series.map_or_else(|| file.map_or("", |f| f.1).to_string(), |s| s.key.clone()),
+        record: None,
+        unit: series.and_then(|s| s.unit.clone()).unwrap_or_default(),
+        x_label: "x".into(),
+        severity,
+        flags: vec![Flag {
+            kind: FindingKind::from_name(kind).unwrap_or(FindingKind::Quarantined),
+            measure: summary.to_string(),
+            value: None,
+            cutoff: None,
+            cutoff_source: detail
+                .get("rule")
+                .and_then(|v| v.as_str())
+                .unwrap_or("")
+                .to_string(),
+        }],
+        fit_with: fits.0.map(summary_of),
+        fit_without: fits.1.map(summary_of),
+        ci_level: config.level,
+        scale_note: None,
+        robust: None,
+        judged_against: detail
+            .get("judged_against")
+            .and_then(|v| v.as_str())
+            .unwrap_or("the previous fit of the series")
+            .to_string(),
+        causes: Vec::new(),
+        sampling_advice: None,
+        nondetect_policy: series.map_or_else(String::new, |s| s.non_detects.clone()),
+        points: Vec::new(),
+        line_with: Vec::new(),
+        line_without: Vec::new(),
+        verdict_commands: verdict_commands(id),
+        created_at: at.to_string(),
+    };
+    queue(
+        tx,
+        config,
+        id,
+        series.map(|s| s.key.as_str()),
+        &render_notice(&notice),
+        now_unix,
+    )?;
+    Ok(id)
+}
+
+/// A trend change as a finding.
+#[allow(clippy::too_many_arguments)]
+pub fn trend_finding(
+    tx: &Tx<'_>,
+    config: &Config,
+    change: &TrendChange,
+    series: &SeriesRow,
+    file: (FileId, &str),
+    before: Option<&LineFit>,
+    after: &LineFit,
+    newest: Option<&str>,
+    at: &str,
+    now_unix: i64,
+) -> Result<i64> {
+    let cause = match change.caused_by_newest {
+        Some(true) => {
+            " The newest record alone causes it: without it, the change would not happen."
+        }
+        Some(false) => " It does not hinge on the newest record alone.",
+        None => "",
+    };
+    let summary = format!(
+        "{} in {}: {}.{cause}",
+        change.kind.replace('_', " "),
+        series.key,
+        change.summary
+    );
+    let detail = json!({
+        "change": change.summary,
+        "caused_by_newest_record": change.caused_by_newest,
+        "newest_record": newest,
+        "fit_before": fit_json(before),
+        "fit_after": fit_json(Some(after)),
+        "rule": format!("becomes significant below p = {}, stops above p = {}, from n = {} (hysteresis; project defaults)",
+            config.findings.significance_alpha, config.findings.release_alpha, config.findings.min_n_trend),
+        "judged_against": "the previous fit version of the series",
+        "caution": CAUTION,
+    });
+    let ids: Vec<String> = newest.map(|s| vec![s.to_string()]).unwrap_or_default();
+    plain_finding(
+        tx,
+        config,
+        change.kind,
+        Some(series),
+        Some(file),
+        &ids,
+        &summary,
+        detail,
+        (Some(after), before),
+        at,
+        now_unix,
+    )
+}
+
+/// The caution every finding carries.
+pub const CAUTION: &str = "A statistical flag is a prompt to verify the record, not a compliance determination. The applicable regulations, the site's approved sampling plan and licensed professionals decide what the data mean.";
+
+fn verdict_commands(id: i64) -> Vec<String> {
+    ["confirmed", "corrected --value V", "excluded"]
+        .iter()
+        .map(|v| format!("slopewarden review {id} --verdict {v} --note \"...\""))
+        .collect()
+}
+
+fn severity_of(config: &Config, kinds: &[String]) -> Severity {
+    let rank = |s: &str| match s {
+        "alert" => 2,
+        "warning" => 1,
+        _ => 0,
+    };
+    let mut best = kinds
+        .iter()
+        .map(|k| rank(config.mail.severity_of(k)))
+        .max()
+        .unwrap_or(0);
+    // Two independent record-level signals at once: the record changes
+    // what the trend says.
+    if kinds.len() >= 2 {
+        best = best.max(2);
+    }
+    match best {
+        2 => Severity::Alert,
+        1 => Severity::Warning,
+        _ => Severity::Notice,
+    }
+}
+
+/// Queues the rendered message for each recipient, holding it for a digest
+/// when the recipient has had `max_per_hour` messages in the last hour.
+fn queue(
+    tx: &Tx<'_>,
+    config: &Config,
+    finding: i64,
+    series: Option<&str>,
+    rendered: &Rendered,
+    now_unix: i64,
+) -> Result<()> {
+    for to in config.mail.recipients(series) {
+        let recent = tx.messages_since(&to, now_unix - 3600)?;
+        tx.queue_message(&NewMessage {
+            finding: Some(finding),
+            recipient: &to,
+            message_id: &rendered.message_id,
+            subject: &rendered.subject,
+            text: &rendered.text,
+            html: &rendered.html,
+            chart: rendered
+                .chart
+                .as_ref()
+                .map(|c| (c.content_id.as_str(), c.png.as_slice())),
+            date_unix: now_unix,
+            held: recent >= i64::from(config.mail.max_per_hour),
+        })?;
+    }
+    Ok(())
+}
+
+fn flags(measures: &[Measured]) -> Vec<Flag> {
+    measures
+        .iter()
+        .filter(|m| m.crossed)
+        .map(|m| Flag {
+            kind: FindingKind::from_name(m.kind).unwrap_or(FindingKind::Influential),
+            measure: m.measure.to_string(),
+            value: Some(m.value),
+            cutoff: Some(m.cutoff),
+            cutoff_source: m.source.clone(),
+        })
+        .collect()
+}
+
+fn measures_json(measures: &[Measured]) -> serde_json::Value {
+    measures
+        .iter()
+        .map(|m| {
+            json!({"kind": m.kind, "measure": m.measure, "value": m.value, "cutoff": m.cutoff,
+                   "crossed": m.crossed, "source": m.source})
+        })
+        .collect()
+}
+
+fn fit_json(f: Option<&LineFit>) -> serde_json::Value {
+    match f {
+        None => serde_json::Value::Null,
+        Some(f) => json!({"n": f.n, "slope": f.slope, "intercept": f.intercept,
+            "slope_ci_low": f.slope_ci_low, "slope_ci_high": f.slope_ci_high, "slope_p": f.slope_p}),
+    }
+}
+
+fn summary_of(f: &LineFit) -> FitSummary {
+    FitSummary {
+        n: f.n as u64,
+        slope: f.slope,
+        slope_ci: Some((f.slope_ci_low, f.slope_ci_high)),
+        slope_p: f.slope_p,
+        intercept: f.intercept,
+    }
+}
+
+/// A fitted-scale point in original units.
+fn original(t: Transform, x: f64, y: f64) -> (f64, f64) {
+    match t {
+        Transform::None => (x, y),
+        Transform::LogY => (x, y.exp()),
+        Transform::LogX => (x.exp(), y),
+        Transform::LogLog => (x.exp(), y.exp()),
+    }
+}
+
+/// A fit as a polyline in original units over [lo, hi] (fitted scale).
+fn line(t: Transform, f: &LineFit, lo: f64, hi: f64) -> Vec<(f64, f64)> {
+    if !(lo.is_finite() && hi.is_finite()) {
+        return Vec::new();
+    }
+    let steps = if t == Transform::None { 1 } else { 40 };
+    (0..=steps)
+        .map(|i| {
+            let x = lo + (hi - lo) * i as f64 / steps as f64;
+            original(t, x, f.predict(x))
+        })
+        .collect()
+}

@@ -1,0 +1,401 @@
+//! Findings and the outbox: the SQL behind raising a finding, queueing its
+//! messages in the same transaction, and the sender's bookkeeping.
+
+use rusqlite::{OptionalExtension, params};
+
+use super::{FileId, Result, SeriesRowId, Store, Tx};
+
+/// A finding about to be stored.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewFinding<'a> {
+    /// RFC 3339 UTC.
+    pub created_at: &'a str,
+    /// The series concerned, if any.
+    pub series: Option<SeriesRowId>,
+    /// The file that brought it, if any.
+    pub file: Option<FileId>,
+    /// The record's row, for a record-level finding.
+    pub record_row: Option<i64>,
+    /// Record ids concerned.
+    pub record_ids: &'a [String],
+    /// Kind names.
+    pub kinds: &'a [String],
+    /// `notice`, `warning` or `alert`.
+    pub severity: &'a str,
+    /// The fit version the finding was made on.
+    pub fit_version: Option<i64>,
+    /// The record's point on the fitted scale, kept out of judging later
+    /// records while the finding is open.
+    pub fit_point: Option<(f64, f64)>,
+    /// One line for lists.
+    pub summary: &'a str,
+    /// The numbers, as a JSON document.
+    pub detail: &'a serde_json::Value,
+}
+
+/// A finding as stored.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct FindingRow {
+    /// Finding id.
+    pub id: i64,
+    /// Series key, if any.
+    pub series: Option<String>,
+    /// Record ids concerned.
+    pub record_ids: Vec<String>,
+    /// Kind names.
+    pub kinds: Vec<String>,
+    /// Severity.
+    pub severity: String,
+    /// `open` until a verdict.
+    pub status: String,
+    /// RFC 3339 UTC.
+    pub created_at: String,
+    /// The file that brought it, if any.
+    pub file: Option<String>,
+    /// Fit version it was made on.
+    pub fit_version: Option<i64>,
+    /// One line for lists.
+    pub summary: String,
+    /// The numbers.
+    pub detail: serde_json::Value,
+}
+
+/// A message about to be queued.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewMessage<'a> {
+    /// The finding (None for a digest).
+    pub finding: Option<i64>,
+    /// One recipient.
+    pub recipient: &'a str,
+    /// Message-ID with angle brackets.
+    pub message_id: &'a str,
+    /// Subject.
+    pub subject: &'a str,
+    /// Plain-text part.
+    pub text: &'a str,
+    /// HTML part.
+    pub html: &'a str,
+    /// Inline chart and its Content-ID.
+    pub chart: Option<(&'a str, &'a [u8])>,
+    /// Date of the message, seconds since the epoch.
+    pub date_unix: i64,
+    /// Held back by the recipient's rate limit (goes into a digest).
+    pub held: bool,
+}
+
+/// A message held back by a rate limit: (outbox row, finding, recipient,
+/// subject).
+pub type HeldMessage = (i64, Option<i64>, String, String);
+
+/// A queued message as the sender reads it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OutboxMessage {
+    /// Outbox row.
+    pub id: i64,
+    /// The finding, if any.
+    pub finding: Option<i64>,
+    /// Recipient.
+    pub recipient: String,
+    /// Message-ID.
+    pub message_id: String,
+    /// Subject.
+    pub subject: String,
+    /// Plain text.
+    pub text: String,
+    /// HTML.
+    pub html: String,
+    /// Chart Content-ID and PNG.
+    pub chart: Option<(String, Vec<u8>)>,
+    /// Date, seconds since the epoch.
+    pub date_unix: i64,
+    /// Attempts so far.
+    pub attempts: i64,
+}
+
+impl Tx<'_> {
+    /// Stores a finding and returns its id.
+    pub fn insert_finding(&self, f: &NewFinding<'_>) -> Result<i64> {
+        let ids = serde_json::to_string(f.record_ids).unwrap_or_else(|_| "[]".into());
+        let kinds = serde_json::to_string(f.kinds).unwrap_or_else(|_| "[]".into());
+        self.tx
+            .prepare_cached(
+                "INSERT INTO findings (created_at, series_id, file_id, record_row, record_ids, kinds,
+                    severity, status, fit_version, fit_x, fit_y, summary, detail)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, 'open', ?8, ?9, ?10, ?11, ?12)",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    f.created_at,
+                    f.series.map(|s| s.0),
+                    f.file.map(|s| s.0),
+                    f.record_row,
+                    ids,
+                    kinds,
+                    f.severity,
+                    f.fit_version,
+                    f.fit_point.map(|p| p.0),
+                    f.fit_point.map(|p| p.1),
+                    f.summary,
+                    f.detail.to_string()
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(self.tx.last_insert_rowid())
+    }
+
+    /// Points (fitted scale) of the series' records whose findings are still
+    /// open: they stay in the fit but out of the fit that judges newcomers.
+    pub fn awaiting_review(&self, series: SeriesRowId) -> Result<Vec<(f64, f64)>> {
+        let mut stmt = self
+            .tx
+            .prepare_cached(
+                "SELECT fit_x, fit_y FROM findings
+                 WHERE series_id = ?1 AND status = 'open' AND fit_x IS NOT NULL AND fit_y IS NOT NULL",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([series.0], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// Messages queued or sent to `recipient` dated at or after `since`
+    /// (for the rate limit).
+    pub fn messages_since(&self, recipient: &str, since_unix: i64) -> Result<i64> {
+        self.tx
+            .prepare_cached(
+                "SELECT COUNT(*) FROM outbox WHERE recipient = ?1 AND date_unix >= ?2
+                 AND status IN ('pending', 'sent', 'failed')",
+            )
+            .and_then(|mut s| s.query_row(params![recipient, since_unix], |r| r.get(0)))
+            .map_err(self.wrap())
+    }
+
+    /// Queues a message (pending, or held for a digest).
+    pub fn queue_message(&self, m: &NewMessage<'_>) -> Result<()> {
+        self.tx
+            .prepare_cached(
+                "INSERT OR IGNORE INTO outbox (finding_id, recipient, message_id, subject, body_text,
+                    body_html, chart_cid, chart, date_unix, status, next_attempt_unix)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?9)",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    m.finding,
+                    m.recipient,
+                    m.message_id,
+                    m.subject,
+                    m.text,
+                    m.html,
+                    m.chart.map(|c| c.0),
+                    m.chart.map(|c| c.1),
+                    m.date_unix,
+                    if m.held { "held" } else { "pending" }
+                ])
+            })
+            .map_err(self.wrap())?;
+        Ok(())
+    }
+
+    /// Marks held messages as folded into a digest.
+    pub fn mark_digested(&self, ids: &[i64]) -> Result<()> {
+        let mut stmt = self
+            .tx
+            .prepare_cached(
+                "UPDATE outbox SET status = 'digested' WHERE id = ?1 AND status = 'held'",
+            )
+            .map_err(self.wrap())?;
+        for id in ids {
+            stmt.execute([id]).map_err(self.wrap())?;
+        }
+        Ok(())
+    }
+}
+
+fn finding_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<FindingRow> {
+    let ids: String = r.get(2)?;
+    let kinds: String = r.get(3)?;
+    let detail: String = r.get(10)?;
+    Ok(FindingRow {
+        id: r.get(0)?,
+        series: r.get(1)?,
+        record_ids: serde_json::from_str(&ids).unwrap_or_default(),
+        kinds: serde_json::from_str(&kinds).unwrap_or_default(),
+        severity: r.get(4)?,
+        status: r.get(5)?,
+        created_at: r.get(6)?,
+        file: r.get(7)?,
+        fit_version: r.get(8)?,
+        summary: r.get(9)?,
+        detail: serde_json::from_str(&detail).unwrap_or(serde_json::Value::Null),
+    })
+}
+
+const FINDING_SELECT: &str = "SELECT g.id, s.key, g.record_ids, g.kinds, g.severity, g.status,
+        g.created_at, f.name, g.fit_version, g.summary, g.detail
+     FROM findings g LEFT JOIN series s ON s.id = g.series_id
+     LEFT JOIN source_files f ON f.id = g.file_id";
+
+impl Store {
+    /// Findings, newest first; only open ones when `open_only`.
+    pub fn findings(&self, open_only: bool) -> Result<Vec<FindingRow>> {
+        let sql = if open_only {
+            format!("{FINDING_SELECT} WHERE g.status = 'open' ORDER BY g.id DESC")
+        } else {
+            format!("{FINDING_SELECT} ORDER BY g.id DESC")
+        };
+        let mut stmt = self.conn.prepare(&sql).map_err(self.wrap())?;
+        let rows = stmt.query_map([], finding_row).map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// One finding.
+    pub fn finding(&self, id: i64) -> Result<Option<FindingRow>> {
+        self.conn
+            .query_row(
+                &format!("{FINDING_SELECT} WHERE g.id = ?1"),
+                [id],
+                finding_row,
+            )
+            .optional()
+            .map_err(self.wrap())
+    }
+
+    /// Pending messages due at `now_unix`, oldest first.
+    pub fn due_messages(&self, now_unix: i64, limit: usize) -> Result<Vec<OutboxMessage>> {
+        let mut stmt = self
+            .conn
+            .prepare_cached(
+                "SELECT id, finding_id, recipient, message_id, subject, body_text, body_html,
+                        chart_cid, chart, date_unix, attempts
+                 FROM outbox WHERE status = 'pending' AND next_attempt_unix <= ?1
+                 ORDER BY id LIMIT ?2",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map(params![now_unix, limit as i64], |r| {
+                let cid: Option<String> = r.get(7)?;
+                let png: Option<Vec<u8>> = r.get(8)?;
+                Ok(OutboxMessage {
+                    id: r.get(0)?,
+                    finding: r.get(1)?,
+                    recipient: r.get(2)?,
+                    message_id: r.get(3)?,
+                    subject: r.get(4)?,
+                    text: r.get(5)?,
+                    html: r.get(6)?,
+                    chart: cid.zip(png),
+                    date_unix: r.get(9)?,
+                    attempts: r.get(10)?,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// Held messages whose recipient's window has passed: (row, finding,
+    /// recipient, subject), oldest first.
+    pub fn held_messages(&self, older_than_unix: i64) -> Result<Vec<HeldMessage>> {
+        let mut stmt = self
+            .conn
+            .prepare_cached(
+                "SELECT id, finding_id, recipient, subject FROM outbox
+                 WHERE status = 'held' AND date_unix <= ?1 ORDER BY recipient, id",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([older_than_unix], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+
+    /// Records a delivery, with its audit entry, in one transaction.
+    pub fn mark_sent(
+        &mut self,
+        id: i64,
+        message_id: &str,
+        recipient: &str,
+        now_unix: i64,
+        at: &str,
+    ) -> Result<()> {
+        let tx = self.begin()?;
+        let changed = tx
+            .tx
+            .execute(
+                "UPDATE outbox SET status = 'sent', sent_unix = ?2, attempts = attempts + 1, last_error = NULL
+                 WHERE id = ?1 AND status = 'pending'",
+                params![id, now_unix],
+            )
+            .map_err(tx.wrap())?;
+        if changed == 1 {
+            tx.append_audit(
+                at,
+                super::AuditKind::Message,
+                message_id,
+                &format!("delivered to {recipient}"),
+            )?;
+        }
+        tx.commit()
+    }
+
+    /// Records a failed attempt: retried at `next_unix`, or given up on
+    /// (`next_unix` None) with an audit entry.
+    pub fn mark_attempt_failed(
+        &mut self,
+        id: i64,
+        error: &str,
+        next_unix: Option<i64>,
+        at: &str,
+    ) -> Result<()> {
+        let tx = self.begin()?;
+        match next_unix {
+            Some(next) => {
+                tx.tx
+                    .execute(
+                        "UPDATE outbox SET attempts = attempts + 1, last_error = ?2, next_attempt_unix = ?3
+                         WHERE id = ?1 AND status = 'pending'",
+                        params![id, error, next],
+                    )
+                    .map_err(tx.wrap())?;
+            }
+            None => {
+                let changed = tx
+                    .tx
+                    .execute(
+                        "UPDATE outbox SET status = 'failed', attempts = attempts + 1, last_error = ?2
+                         WHERE id = ?1 AND status = 'pending'",
+                        params![id, error],
+                    )
+                    .map_err(tx.wrap())?;
+                if changed == 1 {
+                    tx.append_audit(
+                        at,
+                        super::AuditKind::Message,
+                        &format!("outbox {id}"),
+                        &format!("not delivered, given up: {error}"),
+                    )?;
+                }
+            }
+        }
+        tx.commit()
+    }
+
+    /// Counts of outbox rows by status.
+    pub fn outbox_counts(&self) -> Result<Vec<(String, i64)>> {
+        let mut stmt = self
+            .conn
+            .prepare("SELECT status, COUNT(*) FROM outbox GROUP BY status ORDER BY status")
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(self.wrap())?;
+        rows.collect::<std::result::Result<Vec<_>, _>>()
+            .map_err(self.wrap())
+    }
+}

@@ -179,6 +179,9 @@ pub struct MailSettings {
     pub smtp: Option<SmtpConfig>,
     /// Severity per finding kind (kind name -> notice, warning, alert).
     pub severity: Vec<(String, String)>,
+    /// First wait before retrying a failed delivery; it doubles per
+    /// attempt, up to an hour.
+    pub retry_first: Duration,
 }
 
 impl MailSettings {
@@ -712,6 +715,7 @@ impl Walker {
                 "outbox_dir",
                 "route",
                 "severity",
+                "retry_seconds",
             ],
         );
         let from = self
@@ -818,7 +822,9 @@ impl Walker {
                 timeout: self.seconds(st, "smtp", "timeout_seconds", 30.0, 1.0, 600.0),
             }
         });
+        let retry_first = self.seconds(m, "mail", "retry_seconds", 30.0, 0.1, 3600.0);
         MailSettings {
+            retry_first,
             from,
             to,
             routes,

@@ -79,10 +79,11 @@ pub struct Pass {
     pub digests: usize,
 }
 
-/// Backoff before attempt `attempts + 1`: 30 s doubling, at most 1 hour.
-pub fn backoff(attempts: i64) -> Duration {
-    let secs = 30u64.saturating_mul(1u64 << attempts.clamp(0, 7));
-    Duration::from_secs(secs.min(3600))
+/// Backoff before attempt `attempts + 1`: `first` doubling, at most 1 hour.
+pub fn backoff(first: Duration, attempts: i64) -> Duration {
+    first
+        .saturating_mul(1u32 << attempts.clamp(0, 16))
+        .min(Duration::from_secs(3600))
 }
 
 /// One pass: digests for held messages whose hour has passed, then every
@@ -129,7 +130,7 @@ pub fn send_due(
                 pass.sent += 1;
             }
             Err(e) if e.is_transient() && m.attempts + 1 < MAX_ATTEMPTS => {
-                let next = now_unix + backoff(m.attempts).as_secs() as i64;
+                let next = now_unix + backoff(config.mail.retry_first, m.attempts).as_secs().max(1) as i64;
                 store.mark_attempt_failed(m.id, &e.to_string(), Some(next), &at)?;
                 warn!(message = %m.message_id, error = %e, retry_in_s = next - now_unix, "message not delivered; will retry");
                 pass.deferred += 1;

@@ -130,7 +130,10 @@ pub fn send_due(
                 pass.sent += 1;
             }
             Err(e) if e.is_transient() && m.attempts + 1 < MAX_ATTEMPTS => {
-                let next = now_unix + backoff(config.mail.retry_first, m.attempts).as_secs().max(1) as i64;
+                let next = now_unix
+                    + backoff(config.mail.retry_first, m.attempts)
+                        .as_secs()
+                        .max(1) as i64;
                 store.mark_attempt_failed(m.id, &e.to_string(), Some(next), &at)?;
                 warn!(message = %m.message_id, error = %e, retry_in_s = next - now_unix, "message not delivered; will retry");
                 pass.deferred += 1;

@@ -57,6 +57,8 @@ pub struct SeriesCache {
     awaiting: HashMap<String, Vec<(f64, f64)>>,
     /// Critical values of the finding rules.
     cutoffs: CutoffCache,
+    /// The last robust slope and interval computed per series.
+    robust: HashMap<String, (f64, f64, f64)>,
     quantiles: Option<TQuantiles>,
 }
 
@@ -72,6 +74,7 @@ impl SeriesCache {
         self.rows.clear();
         self.points.clear();
         self.awaiting.clear();
+        self.robust.clear();
     }
 
     fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
@@ -725,6 +728,9 @@ fn store_file(
             .collect();
         for (key, r) in robust_rows(&jobs, config.level) {
             robust_of.insert(key, r);
+            cache
+                .robust
+                .insert(key.to_string(), (r.slope, r.ci_low, r.ci_high));
         }
     }
     let mut refits = 0;
@@ -862,14 +868,6 @@ fn raise_findings(
 ) -> Result<usize, PipelineError> {
     let mut raised = 0;
     if !flagged.is_empty() {
-        let others: Vec<(&str, LineFit)> = touched
-            .iter()
-            .filter_map(|(k, t)| {
-                LineFit::from_moments(t.state.moments(), config.level)
-                    .ok()
-                    .map(|f| (k.as_str(), f))
-            })
-            .collect();
         for f in flagged {
             let Some(record) = parsed.records.get(f.index) else {
                 continue;
@@ -878,14 +876,34 @@ fn raise_findings(
             let Some(t) = touched.get(key) else {
                 continue;
             };
-            let points = tx.fit_points(&t.row)?;
-            let mine: Vec<(&str, LineFit)> =
-                others.iter().filter(|(k, _)| *k != key).copied().collect();
-            let robust = cache
-                .points
-                .get(key)
-                .and_then(|p| robust_row(p, config.level))
-                .map(|r| (r.slope, r.ci_low, r.ci_high));
+            // Points feed the chart and the sampling advice; a message held
+            // for a digest has no chart.
+            let high_leverage = f.judgement.kinds.contains(&RecordKind::HighLeverage);
+            let draw_chart = !raise::all_held(tx, config, Some(key), now_unix)?;
+            let points = if high_leverage || draw_chart {
+                tx.fit_points(&t.row)?
+            } else {
+                Vec::new()
+            };
+            // "Belongs to another series": the series of this file that
+            // share its site or its parameter (the key's part before or
+            // after the first '/').
+            let (site, parameter) = key.split_once('/').unwrap_or((key, ""));
+            let mine: Vec<(&str, LineFit)> = touched
+                .iter()
+                .filter(|(k, _)| k.as_str() != key)
+                .filter(|(k, _)| {
+                    let (s2, p2) = k.split_once('/').unwrap_or((k.as_str(), ""));
+                    s2 == site || (!parameter.is_empty() && p2 == parameter)
+                })
+                .filter(|(_, o)| o.settings.transform == t.settings.transform)
+                .filter_map(|(k, o)| {
+                    LineFit::from_moments(o.state.moments(), config.level)
+                        .ok()
+                        .map(|fit| (k.as_str(), fit))
+                })
+                .collect();
+            let robust = cache.robust.get(key).copied();
             raise::record_finding(
                 tx,
                 config,
@@ -902,6 +920,7 @@ fn raise_findings(
                     awaiting: &t.awaiting,
                     others: &mine,
                     robust,
+                    draw_chart,
                 },
                 file,
                 at,

@@ -49,6 +49,8 @@ pub struct RecordCase<'a> {
     pub others: &'a [(&'a str, LineFit)],
     /// Robust slope of the series, if known.
     pub robust: Option<(f64, f64, f64)>,
+    /// Whether to draw the chart (not for a message held for a digest).
+    pub draw_chart: bool,
 }
 
 /// Raises a record-level finding; returns its id.
@@ -206,7 +208,9 @@ pub fn record_finding(
             }
         })
         .collect();
-    if !points.iter().any(|p| p.role == PointRole::ThisRecord) {
+    if !case.draw_chart {
+        points.clear();
+    } else if !case.points.is_empty() && !points.iter().any(|p| p.role == PointRole::ThisRecord) {
         let (x, y) = original(case.transform, case.fit_point.0, case.fit_point.1);
         points.push(ChartPoint {
             x,
@@ -453,6 +457,18 @@ fn severity_of(config: &Config, kinds: &[String]) -> Severity {
         1 => Severity::Warning,
         _ => Severity::Notice,
     }
+}
+
+/// Whether every recipient of the series is at their hourly limit, so that
+/// its messages will be held for a digest (which carries no chart): the
+/// caller can then skip reading points and drawing.
+pub fn all_held(tx: &Tx<'_>, config: &Config, series: Option<&str>, now_unix: i64) -> Result<bool> {
+    for to in config.mail.recipients(series) {
+        if tx.messages_since(&to, now_unix - 3600)? < i64::from(config.mail.max_per_hour) {
+            return Ok(false);
+        }
+    }
+    Ok(true)
 }
 
 /// Queues the rendered message for each recipient, holding it for a digest

@@ -48,3 +48,9 @@ CREATE TABLE outbox (
     UNIQUE (message_id, recipient)
 );
 CREATE INDEX outbox_by_status ON outbox(status, next_attempt_unix);
+
+-- A random token per database: Message-IDs derive from it and the finding
+-- id, so two installations, or a database rebuilt from scratch, never
+-- reuse a Message-ID that mail systems would take for a duplicate.
+CREATE TABLE store_identity (token TEXT NOT NULL);
+INSERT INTO store_identity (token) VALUES (lower(hex(randomblob(6))));

@@ -455,6 +455,7 @@ struct Flagged {
     judgement: RecordJudgement,
     fit_point: (f64, f64),
     left_out: usize,
+    span_before: (f64, f64),
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -627,6 +628,7 @@ fn store_file(
                         judgement: j,
                         fit_point: p,
                         left_out: left_out.len(),
+                        span_before: (lo, hi),
                     });
                     if suspect {
                         t.awaiting.push(p);
@@ -762,7 +764,7 @@ fn store_file(
                 .as_ref()
                 .and_then(|(a, _)| a.slope_without().map(|s| (s, a.slope_p_without())));
             let (significant, changes) = judge_trend(
-                previous.as_ref().map(|f| (f.slope, t.row.significant)),
+                previous.as_ref().map(|f| (f.slope, t.row.significant, f.n)),
                 new_fit,
                 without,
                 &config.findings,
@@ -921,6 +923,7 @@ fn raise_findings(
                     others: &mine,
                     robust,
                     draw_chart,
+                    span_before: Some(f.span_before),
                 },
                 file,
                 at,

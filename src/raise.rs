@@ -51,6 +51,8 @@ pub struct RecordCase<'a> {
     pub robust: Option<(f64, f64, f64)>,
     /// Whether to draw the chart (not for a message held for a digest).
     pub draw_chart: bool,
+    /// The series' x range (fitted scale) before the record.
+    pub span_before: Option<(f64, f64)>,
 }
 
 /// Raises a record-level finding; returns its id.
@@ -84,7 +86,19 @@ pub fn record_finding(
 
     // Likely entry errors, scored against the fit without the record.
     let others: Vec<(&str, &LineFit)> = case.others.iter().map(|(k, f)| (*k, f)).collect();
-    let x_kind = if (1800.0..=2200.0).contains(&r.x) {
+    // Decimal years when the feed takes x from a date column, or when the
+    // series' surveyed x range lies in calendar years; never guessed from
+    // the record itself, whose x may be the typo.
+    let from_date = matches!(
+        config.feed_for(std::path::Path::new(file.1)).1.x,
+        crate::records::XSource::Date { .. }
+    );
+    let span_in_years = case.span_before.is_some_and(|(lo, hi)| {
+        case.transform == Transform::None
+            && (1800.0..=2200.0).contains(&lo)
+            && (1800.0..=2200.0).contains(&hi)
+    });
+    let x_kind = if from_date || span_in_years {
         XKind::DecimalYear
     } else {
         XKind::Distance
@@ -227,7 +241,7 @@ pub fn record_finding(
         });
     let notice = Notice {
         finding_id: id,
-        instance: config.mail.instance.clone(),
+        instance: message_domain(tx, config)?,
         series: case.series.key.clone(),
         record: Some(RecordInfo {
             id: r.record_id.clone(),
@@ -325,7 +339,7 @@ pub fn plain_finding(
     tx.append_audit(at, AuditKind::Finding, &format!("finding {id}"), summary)?;
     let notice = Notice {
         finding_id: id,
-        instance: config.mail.instance.clone(),
+        instance: message_domain(tx, config)?,
         series: series.map_or_else(|| file.map_or("", |f| f.1).to_string(), |s| s.key.clone()),
         record: None,
         unit: series.and_then(|s| s.unit.clone()).unwrap_or_default(),
@@ -428,6 +442,11 @@ pub fn trend_finding(
 
 /// The caution every finding carries.
 pub const CAUTION: &str = "A statistical flag is a prompt to verify the record, not a compliance determination. The applicable regulations, the site's approved sampling plan and licensed professionals decide what the data mean.";
+
+/// The Message-ID domain: this database's token under the instance name.
+fn message_domain(tx: &Tx<'_>, config: &Config) -> Result<String> {
+    Ok(format!("{}.{}", tx.store_token()?, config.mail.instance))
+}
 
 fn verdict_commands(id: i64) -> Vec<String> {
     ["confirmed", "corrected --value V", "excluded"]

@@ -342,23 +342,25 @@ pub fn next_significance(previous: bool, p: Option<f64>, n: usize, t: &Threshold
     }
 }
 
-/// Compares a refit with the previous one. `previous` is the slope and its
-/// hysteresis state before; `without_newest` the slope and p of the new fit
-/// without its newest record, when known.
+/// Compares a refit with the previous one. `previous` is the slope, its
+/// hysteresis state and its n before; `without_newest` the slope and p of
+/// the new fit without its newest record, when known. Nothing is reported
+/// until the previous fit itself had the minimum n: reaching it only sets
+/// the state, the same as when a series arrives whole in one file.
 pub fn judge_trend(
-    previous: Option<(f64, bool)>,
+    previous: Option<(f64, bool, usize)>,
     new_fit: &LineFit,
     without_newest: Option<(f64, Option<f64>)>,
     t: &Thresholds,
 ) -> (bool, Vec<TrendChange>) {
     let n = new_fit.n;
-    let prev_sig = previous.is_some_and(|(_, s)| s);
+    let prev_sig = previous.is_some_and(|(_, s, _)| s);
     let now_sig = next_significance(prev_sig, new_fit.slope_p, n, t);
     let mut out = Vec::new();
-    let Some((prev_slope, _)) = previous else {
+    let Some((prev_slope, _, prev_n)) = previous else {
         return (now_sig, out);
     };
-    if n < t.min_n_trend {
+    if n < t.min_n_trend || prev_n < t.min_n_trend {
         return (now_sig, out);
     }
     let p_text = |p: Option<f64>| p.map_or("undefined".to_string(), |p| format!("{p:.3}"));
@@ -518,12 +520,25 @@ mod tests {
     }
 
     #[test]
+    fn reaching_the_minimum_n_sets_the_state_without_a_finding() {
+        // Regression: the 10th arrival of a steep series was reported as
+        // "became significant", though it was significant all along.
+        let t = Thresholds::default();
+        let x: Vec<f64> = (0..10).map(|i| i as f64).collect();
+        let y: Vec<f64> = x.iter().map(|v| 1.0 + 2.0 * v + 0.1 * (v % 3.0)).collect();
+        let fit = fit_line(&x, &y, 0.95).unwrap();
+        let (sig, changes) = judge_trend(Some((2.0, false, 9)), &fit, Some((2.0, Some(1e-6))), &t);
+        assert!(sig);
+        assert!(changes.is_empty(), "{changes:?}");
+    }
+
+    #[test]
     fn a_reversed_significant_slope_is_reported_with_its_cause() {
         let t = Thresholds::default();
         let x: Vec<f64> = (0..20).map(|i| i as f64).collect();
         let y: Vec<f64> = x.iter().map(|v| 10.0 - 0.5 * v + 0.1 * (v % 3.0)).collect();
         let fit = fit_line(&x, &y, 0.95).unwrap();
-        let (sig, changes) = judge_trend(Some((0.4, true)), &fit, Some((0.3, Some(0.01))), &t);
+        let (sig, changes) = judge_trend(Some((0.4, true, 19)), &fit, Some((0.3, Some(0.01))), &t);
         assert!(sig);
         assert_eq!(changes.len(), 1);
         assert_eq!(changes[0].kind, "sign_reversal");

@@ -113,6 +113,14 @@ pub struct OutboxMessage {
 }
 
 impl Tx<'_> {
+    /// This database's random token (see migration 0002).
+    pub fn store_token(&self) -> Result<String> {
+        self.tx
+            .prepare_cached("SELECT token FROM store_identity LIMIT 1")
+            .and_then(|mut s| s.query_row([], |r| r.get(0)))
+            .map_err(self.wrap())
+    }
+
     /// Stores a finding and returns its id.
     pub fn insert_finding(&self, f: &NewFinding<'_>) -> Result<i64> {
         let ids = serde_json::to_string(f.record_ids).unwrap_or_else(|_| "[]".into());

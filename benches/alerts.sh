@@ -33,3 +33,20 @@ c = collections.Counter(k for x in f for k in x["kinds"])
 print("findings by kind:", dict(c))
 PY
 /usr/bin/python3 "$SHARED/bench/score_alerts.py" "$work/w/labels.csv" "$work/alerts.txt"
+# The issue's figures: errors arriving when their series held >= 20 points.
+/usr/bin/python3 - "$work" <<'PY'
+import csv, sys
+work = sys.argv[1]
+alerted = set(open(f"{work}/alerts.txt").read().split())
+gross = {"decimal_x10", "decimal_div10", "unit_x1000", "sign", "x_typo"}
+g = a = gc = ac = 0
+for d in csv.DictReader(open(f"{work}/w/details.csv")):
+    kind = d["error_kind"]
+    if kind in ("", "real_extreme") or int(d["arrival_n"]) < 20:
+        continue
+    hit = d["record_id"] in alerted
+    a += 1; ac += hit
+    if kind in gross:
+        g += 1; gc += hit
+print(f"late errors (series held >= 20 points): gross kinds {gc}/{g} = {100*gc/max(g,1):.1f}%, all kinds {ac}/{a} = {100*ac/max(a,1):.1f}%")
+PY

@@ -23,7 +23,8 @@ use tracing::{debug, info, info_span, warn};
 use crate::clock;
 use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
 use crate::findings::rules::{
-    CutoffCache, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with, judge_trend,
+    CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with,
+    judge_trend,
 };
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
@@ -59,6 +60,8 @@ pub struct SeriesCache {
     cutoffs: CutoffCache,
     /// The last robust slope and interval computed per series.
     robust: HashMap<String, (f64, f64, f64)>,
+    /// The ln(y) screen per series (None: not applicable).
+    log: HashMap<String, Option<SeriesState>>,
     quantiles: Option<TQuantiles>,
 }
 
@@ -75,6 +78,7 @@ impl SeriesCache {
         self.points.clear();
         self.awaiting.clear();
         self.robust.clear();
+        self.log.clear();
     }
 
     fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
@@ -445,6 +449,9 @@ struct Touched {
     in_file: usize,
     /// The last arrival of this file and its record id.
     last: Option<(Arrival, String)>,
+    /// The fit of ln(y) on x, a second screen for multiplicative slips, for
+    /// series fitted on the original scale while every y is positive.
+    log: Option<SeriesState>,
 }
 
 /// A record the rules flagged, waiting for the file's fits.
@@ -521,6 +528,18 @@ fn store_file(
                 Some(a) => a,
                 None => tx.awaiting_review(row.id)?,
             };
+            let log = match cache.log.remove(key) {
+                Some(l) => l,
+                None if settings.transform != Transform::None => None,
+                None => {
+                    let points = if row.moments.n() == 0 {
+                        Vec::new()
+                    } else {
+                        tx.fit_points(&row)?
+                    };
+                    log_state(&points)
+                }
+            };
             touched.insert(
                 key.to_string(),
                 Touched {
@@ -533,6 +552,7 @@ fn store_file(
                     awaiting,
                     in_file: per_series.get(key).copied().unwrap_or(1),
                     last: None,
+                    log,
                 },
             );
             order.push(key.to_string());
@@ -604,14 +624,61 @@ fn store_file(
                     }
                     if ok { js.add(p.0, p.1).ok() } else { Some(*a) }
                 };
-                if let (Some(judged), Some((lo, hi))) = (judged, t.row.x_span)
-                    && let Some(j) = judge_record_with(
+                // The same on the ln(y) scale, where a decimal slip or a unit
+                // mix-up stands out even in a series whose scatter grows
+                // with its level.
+                let log_judged = match t.log.as_mut() {
+                    Some(ls) if p.1 > 0.0 => {
+                        let ly = p.1.ln();
+                        let mut js = *ls;
+                        let mut ok = true;
+                        for &(ax, ay) in left_out {
+                            ok &= ay > 0.0 && js.remove(ax, ay.ln()).is_ok();
+                        }
+                        let judged = if ok { js.add(p.0, ly).ok() } else { None };
+                        if ls.add(p.0, ly).is_err() {
+                            t.log = None;
+                        }
+                        judged
+                    }
+                    Some(_) => {
+                        t.log = None;
+                        None
+                    }
+                    None => None,
+                };
+                let mut judgement = match (judged, t.row.x_span) {
+                    (Some(judged), Some((lo, hi))) => judge_record_with(
                         &judged,
                         Span { min: lo, max: hi },
                         t.in_file,
                         &config.findings,
                         &mut cache.cutoffs,
+                    ),
+                    _ => None,
+                };
+                if let (Some(j), Some(lj), Some((lo, hi))) =
+                    (judgement.as_mut(), log_judged, t.row.x_span)
+                    && !j.kinds.contains(&RecordKind::Outlier)
+                    && let Some(l) = judge_record_with(
+                        &lj,
+                        Span { min: lo, max: hi },
+                        t.in_file,
+                        &config.findings,
+                        &mut cache.cutoffs,
                     )
+                    && l.kinds.contains(&RecordKind::Outlier)
+                {
+                    j.kinds.push(RecordKind::Outlier);
+                    j.kinds.sort();
+                    if let Some(m) = l.measures.into_iter().find(|m| m.kind == "outlier") {
+                        j.measures.push(Measured {
+                            measure: "prediction t on the ln(y) scale (second screen for multiplicative slips)",
+                            ..m
+                        });
+                    }
+                }
+                if let (Some(j), Some((lo, hi))) = (judgement, t.row.x_span)
                     && !j.kinds.is_empty()
                 {
                     // Only a record that sits off the line or far out in x
@@ -836,12 +903,25 @@ fn store_file(
             p.append(&mut t.new_points);
         }
         cache.awaiting.insert(key.clone(), t.awaiting);
+        cache.log.insert(key.clone(), t.log);
         cache.rows.insert(key, t.row);
     }
     if findings > 0 {
         info!(findings, "findings raised");
     }
     Ok((counts, refits))
+}
+
+/// The ln(y)-on-x state of a series' points, when every y is positive.
+fn log_state(points: &[(f64, f64)]) -> Option<SeriesState> {
+    let mut s = SeriesState::new();
+    for &(x, y) in points {
+        if y <= 0.0 {
+            return None;
+        }
+        s.add(x, y.ln()).ok()?;
+    }
+    Some(s)
 }
 
 /// A finding without a record under judgement, waiting for the file's fits.

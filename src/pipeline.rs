@@ -825,7 +825,9 @@ fn store_file(
             t.row.robust_n = t.state.n() as i64;
         }
         if let Ok(new_fit) = &fit {
-            let previous = LineFit::from_moments(&t.before, config.level).ok();
+            let quantiles = cache.quantiles(config.level);
+            let previous =
+                LineFit::from_moments_with(&t.before, config.level, |df| quantiles.get(df)).ok();
             let without = t
                 .last
                 .as_ref()
@@ -938,7 +940,7 @@ struct PlainFinding {
 fn raise_findings(
     tx: &crate::store::Tx<'_>,
     config: &Config,
-    cache: &SeriesCache,
+    cache: &mut SeriesCache,
     parsed: &records::ParsedFile,
     touched: &HashMap<String, Touched>,
     flagged: &[Flagged],
@@ -950,6 +952,8 @@ fn raise_findings(
 ) -> Result<usize, PipelineError> {
     let mut raised = 0;
     if !flagged.is_empty() {
+        let quantiles = cache.quantiles(config.level);
+        let mut quantiles = std::mem::replace(quantiles, TQuantiles::new(config.level));
         for f in flagged {
             let Some(record) = parsed.records.get(f.index) else {
                 continue;
@@ -980,9 +984,11 @@ fn raise_findings(
                 })
                 .filter(|(_, o)| o.settings.transform == t.settings.transform)
                 .filter_map(|(k, o)| {
-                    LineFit::from_moments(o.state.moments(), config.level)
-                        .ok()
-                        .map(|fit| (k.as_str(), fit))
+                    LineFit::from_moments_with(o.state.moments(), config.level, |df| {
+                        quantiles.get(df)
+                    })
+                    .ok()
+                    .map(|fit| (k.as_str(), fit))
                 })
                 .collect();
             let robust = cache.robust.get(key).copied();
@@ -1011,6 +1017,7 @@ fn raise_findings(
             )?;
             raised += 1;
         }
+        *cache.quantiles(config.level) = quantiles;
     }
     for p in plain {
         let series = touched.get(&p.series).map(|t| &t.row);

@@ -430,13 +430,25 @@ mod commands {
             Ok(v) => v,
             Err(code) => return code,
         };
-        let rows = match store.status() {
+        let mut rows = match store.status() {
             Ok(r) => r,
             Err(e) => {
                 eprintln!("slopewarden: {e}");
                 return ExitCode::from(EXIT_STORE);
             }
         };
+        for r in &mut rows {
+            r.min_detectable_relative_error = match (r.residual_sd, r.level) {
+                (Some(sd), Some(level)) => slopewarden::findings::rules::smallest_detectable_error(
+                    r.n.max(0) as usize,
+                    sd,
+                    level,
+                    matches!(r.transform.as_str(), "log-y" | "log-log"),
+                    &config.findings,
+                ),
+                _ => None,
+            };
+        }
         if json {
             return print_json(&rows);
         }
@@ -448,12 +460,12 @@ mod commands {
             return ExitCode::SUCCESS;
         }
         println!(
-            "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9}  {:<22}  non-detects",
-            "series", "records", "ND", "n", "slope", "CI", "p", "last arrival"
+            "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9} {:>5} {:>8}  {:<22}  non-detects",
+            "series", "records", "ND", "n", "slope", "CI", "p", "open", "catches", "last arrival"
         );
         for r in rows {
             println!(
-                "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9}  {:<22}  {}",
+                "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9} {:>5} {:>8}  {:<22}  {}",
                 r.series,
                 r.records,
                 r.censored,
@@ -461,6 +473,9 @@ mod commands {
                 opt(r.slope),
                 interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
+                r.open_findings,
+                r.min_detectable_relative_error
+                    .map_or("-".into(), |e| format!("±{:.0}%", 100.0 * e)),
                 r.last_arrival.unwrap_or_default(),
                 r.non_detects
             );

@@ -401,6 +401,33 @@ pub fn judge_trend(
     (now_sig, out)
 }
 
+/// The smallest relative error in y that the outlier test would catch for
+/// a record at the series' mean x, at its current scatter: the test's
+/// critical value times the prediction standard error s·sqrt(1 + 1/n),
+/// relative to the level there (for a ln(y) fit, the ratio exp(...) − 1).
+/// Errors smaller than this hide in the scatter; `None` when the fit has no
+/// degrees of freedom or a zero level.
+pub fn smallest_detectable_error(
+    n: usize,
+    residual_sd: f64,
+    level: f64,
+    log_y: bool,
+    t: &Thresholds,
+) -> Option<f64> {
+    if n < 3 || !residual_sd.is_finite() {
+        return None;
+    }
+    let crit = t_quantile(1.0 - t.outlier_alpha / 2.0, (n - 2) as f64);
+    let half = crit * residual_sd * (1.0 + 1.0 / n as f64).sqrt();
+    if log_y {
+        Some(half.exp_m1())
+    } else if level != 0.0 && level.is_finite() {
+        Some(half / level.abs())
+    } else {
+        None
+    }
+}
+
 #[cfg(test)]
 mod tests {
     #![allow(clippy::unwrap_used)]
@@ -490,6 +517,20 @@ mod tests {
         let many = judge_record(&a, span, 50, &Thresholds::default()).unwrap();
         let cut = |j: &RecordJudgement| j.measures[0].cutoff;
         assert!(cut(&many) > cut(&one));
+    }
+
+    #[test]
+    fn smallest_detectable_error_grows_with_scatter() {
+        let t = Thresholds::default();
+        let a = smallest_detectable_error(30, 0.1, 5.0, false, &t).unwrap();
+        let b = smallest_detectable_error(30, 0.2, 5.0, false, &t).unwrap();
+        assert!((b / a - 2.0).abs() < 1e-12);
+        // t(0.9995, 28) is 3.674 (R: qt(0.9995, 28)); 3.674 * 0.1 * sqrt(31/30) / 5.
+        assert!(
+            (a - 3.6739 * 0.1 * (31.0f64 / 30.0).sqrt() / 5.0).abs() < 1e-4,
+            "{a}"
+        );
+        assert!(smallest_detectable_error(2, 0.1, 5.0, false, &t).is_none());
     }
 
     #[test]

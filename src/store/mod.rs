@@ -544,8 +544,15 @@ pub struct SeriesStatus {
     pub slope_p: Option<f64>,
     /// Last arrival.
     pub last_arrival: Option<String>,
-    /// Open findings (none before findings exist).
+    /// Open findings.
     pub open_findings: i64,
+    /// Residual SD of the current fit (fitted scale).
+    pub residual_sd: Option<f64>,
+    /// The fit's level at the mean of x (fitted scale).
+    pub level: Option<f64>,
+    /// The smallest relative error in y the outlier test would catch at the
+    /// current scatter (filled by the caller, which knows the thresholds).
+    pub min_detectable_relative_error: Option<f64>,
     /// Current fit version.
     pub fit_version: i64,
     /// Transform.
@@ -717,7 +724,8 @@ impl Store {
                 "SELECT s.key, COALESCE(f.n, 0), COALESCE(f.version, 0), f.created_at, s.transform,
                         s.non_detects, s.unit, COALESCE(f.records, 0), COALESCE(f.n_censored, 0),
                         f.slope, f.slope_ci_low, f.slope_ci_high, f.slope_p,
-                        (SELECT COUNT(*) FROM findings g WHERE g.series_id = s.id AND g.status = 'open')
+                        (SELECT COUNT(*) FROM findings g WHERE g.series_id = s.id AND g.status = 'open'),
+                        f.residual_sd, f.mean_y
                  FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
                  ORDER BY s.key",
             )
@@ -739,6 +747,9 @@ impl Store {
                     slope_ci_high: r.get(11)?,
                     slope_p: r.get(12)?,
                     open_findings: r.get(13)?,
+                    residual_sd: r.get(14)?,
+                    level: r.get(15)?,
+                    min_detectable_relative_error: None,
                 })
             })
             .map_err(self.wrap())?;

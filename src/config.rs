@@ -117,6 +117,9 @@ pub struct Feed {
     matcher: GlobMatcher,
     /// The layout of its files.
     pub layout: Layout,
+    /// How often files of this feed are expected; longer silence raises a
+    /// `silent_feed` finding.
+    pub expected_every: Option<Duration>,
 }
 
 /// A validated configuration.
@@ -1003,9 +1006,13 @@ impl Walker {
                 "note",
                 "detection_limit",
                 "qualifier",
+                "expected_every_days",
             ],
         );
         let name = self.string(t, at, "name");
+        let expected_every = self
+            .number(t, at, "expected_every_days", Some((0.0001, 3650.0)))
+            .map(|d| Duration::from_secs_f64(d * 86_400.0));
         let pattern = self.string(t, at, "files");
         let mut layout = Layout::default();
         match self.string(t, at, "delimiter").as_deref() {
@@ -1095,6 +1102,7 @@ impl Walker {
             pattern,
             matcher,
             layout,
+            expected_every,
         })
     }
 }

@@ -183,6 +183,9 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
                     Vec::new()
                 }
             };
+            if let Err(e) = check_silent_feeds(config, store, started, SystemTime::now()) {
+                error!(error = %e, "cannot check for silent feeds; will retry");
+            }
             let ready: Vec<(&Config, ReadyFile)> = settler
                 .observe(listed, Instant::now())
                 .into_iter()
@@ -233,6 +236,60 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
         ),
     )?;
     Ok(totals)
+}
+
+/// Raises a `silent_feed` finding for each feed with an expected interval
+/// whose newest file (or, before any, the daemon's start) is older than
+/// that interval, once per silence.
+pub fn check_silent_feeds(
+    config: &Config,
+    store: &mut Store,
+    started: SystemTime,
+    now: SystemTime,
+) -> Result<usize, crate::store::StoreError> {
+    let mut raised = 0;
+    for feed in config.feeds() {
+        let Some(every) = feed.expected_every else {
+            continue;
+        };
+        let last = store.last_arrival_of_feed(&feed.name)?;
+        let since = last
+            .clone()
+            .unwrap_or_else(|| crate::clock::rfc3339(started));
+        let due = crate::clock::rfc3339(now.checked_sub(every).unwrap_or(SystemTime::UNIX_EPOCH));
+        if since.as_str() >= due.as_str() || store.silence_reported(&feed.name, &since)? {
+            continue;
+        }
+        let at = crate::clock::rfc3339(now);
+        let summary = format!(
+            "feed {} has delivered no file since {} (expected every {:.1} days); check the lab's or the field crew's deliveries",
+            feed.name,
+            last.as_deref()
+                .unwrap_or("this daemon started, and never before"),
+            every.as_secs_f64() / 86_400.0
+        );
+        let tx = store.begin()?;
+        crate::raise::plain_finding(
+            &tx,
+            config,
+            "silent_feed",
+            None,
+            None,
+            &[],
+            &summary,
+            serde_json::json!({ "feed": feed.name, "last_file_at": last,
+                "expected_every_days": every.as_secs_f64() / 86_400.0,
+                "rule": "no file for longer than the feed's expected_every_days (configuration)",
+                "judged_against": "the feed's expected delivery interval" }),
+            (None, None),
+            &at,
+            crate::clock::unix_seconds(now),
+        )?;
+        tx.commit()?;
+        warn!(feed = %feed.name, "feed silent longer than expected; finding raised");
+        raised += 1;
+    }
+    Ok(raised)
 }
 
 fn sleep_unless_stopped(total: Duration, stop: &AtomicBool) {
@@ -328,5 +385,43 @@ fn same_folder(a: &Path, b: &Path) -> bool {
     match (a.canonicalize(), b.canonicalize()) {
         (Ok(x), Ok(y)) => x == y,
         _ => false,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+
+    #[test]
+    fn a_silent_feed_is_reported_once_per_silence() {
+        let dir = tempfile::tempdir().unwrap();
+        let config = Config::from_toml(
+            "[[feed]]\nname = \"ridge-lab\"\nfiles = \"ridge_*.csv\"\nexpected_every_days = 7\n",
+            dir.path(),
+        )
+        .unwrap();
+        let mut store = Store::open(&dir.path().join("db.sqlite3")).unwrap();
+        let started = SystemTime::UNIX_EPOCH + Duration::from_secs(1_700_000_000);
+        let day = Duration::from_secs(86_400);
+        // Six days of silence: within the expected interval.
+        assert_eq!(
+            check_silent_feeds(&config, &mut store, started, started + 6 * day).unwrap(),
+            0
+        );
+        // Eight days: one finding, and only one however often it is checked.
+        assert_eq!(
+            check_silent_feeds(&config, &mut store, started, started + 8 * day).unwrap(),
+            1
+        );
+        assert_eq!(
+            check_silent_feeds(&config, &mut store, started, started + 9 * day).unwrap(),
+            0
+        );
+        let f = store.findings(true).unwrap();
+        assert_eq!(f.len(), 1);
+        assert_eq!(f[0].kinds, vec!["silent_feed".to_string()]);
+        assert_eq!(f[0].detail["feed"], "ridge-lab");
+        assert_eq!(f[0].severity, "notice");
     }
 }

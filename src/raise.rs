@@ -340,7 +340,14 @@ pub fn plain_finding(
     let notice = Notice {
         finding_id: id,
         instance: message_domain(tx, config)?,
-        series: series.map_or_else(|| file.map_or("", |f| f.1).to_string(), |s| s.key.clone()),
+        series: match (series, file) {
+            (Some(s), _) => s.key.clone(),
+            (None, Some(f)) => f.1.to_string(),
+            (None, None) => detail
+                .get("feed")
+                .and_then(|v| v.as_str())
+                .map_or_else(String::new, |f| format!("feed {f}")),
+        },
         record: None,
         unit: series.and_then(|s| s.unit.clone()).unwrap_or_default(),
         x_label: "x".into(),

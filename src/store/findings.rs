@@ -246,6 +246,30 @@ const FINDING_SELECT: &str = "SELECT g.id, s.key, g.record_ids, g.kinds, g.sever
      LEFT JOIN source_files f ON f.id = g.file_id";
 
 impl Store {
+    /// When the feed's newest file arrived (RFC 3339), if ever.
+    pub fn last_arrival_of_feed(&self, feed: &str) -> Result<Option<String>> {
+        self.conn
+            .query_row(
+                "SELECT MAX(arrived_at) FROM source_files WHERE feed = ?1",
+                [feed],
+                |r| r.get(0),
+            )
+            .map_err(self.wrap())
+    }
+
+    /// Whether a `silent_feed` finding about `feed` was raised at or after
+    /// `since` (RFC 3339), so that one silence is reported once.
+    pub fn silence_reported(&self, feed: &str, since: &str) -> Result<bool> {
+        self.conn
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM findings WHERE kinds = '[\"silent_feed\"]'
+                   AND json_extract(detail, '$.feed') = ?1 AND created_at >= ?2)",
+                params![feed, since],
+                |r| r.get(0),
+            )
+            .map_err(self.wrap())
+    }
+
     /// Findings, newest first; only open ones when `open_only`.
     pub fn findings(&self, open_only: bool) -> Result<Vec<FindingRow>> {
         let sql = if open_only {

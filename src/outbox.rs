@@ -221,3 +221,97 @@ fn queue_digests(config: &Config, store: &mut Store, now: SystemTime) -> Result<
     }
     Ok(queued)
 }
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+    use crate::messages::Recording;
+    use crate::store::NewFinding;
+
+    /// Raises `count` findings for one recipient at `at_unix`, queued as the
+    /// pipeline does (held beyond the hourly limit).
+    fn raise(config: &Config, store: &mut Store, count: usize, at_unix: i64) {
+        for i in 0..count {
+            let tx = store.begin().unwrap();
+            let ids = vec![format!("R{i}")];
+            let kinds = vec!["outlier".to_string()];
+            let id = tx
+                .insert_finding(&NewFinding {
+                    created_at: "2026-01-01T00:00:00Z",
+                    series: None,
+                    file: None,
+                    record_row: None,
+                    record_ids: &ids,
+                    kinds: &kinds,
+                    severity: "warning",
+                    fit_version: None,
+                    fit_point: None,
+                    summary: "test",
+                    detail: &serde_json::json!({}),
+                })
+                .unwrap();
+            let to = &config.mail.to[0];
+            let recent = tx.messages_since(to, at_unix - 3600).unwrap();
+            let mid = format!("<finding-{id}@test>");
+            tx.queue_message(&NewMessage {
+                finding: Some(id),
+                recipient: to,
+                message_id: &mid,
+                subject: "s",
+                text: "t",
+                html: "h",
+                chart: None,
+                date_unix: at_unix,
+                held: recent >= i64::from(config.mail.max_per_hour),
+            })
+            .unwrap();
+            tx.commit().unwrap();
+        }
+    }
+
+    #[test]
+    fn messages_beyond_the_hourly_limit_go_out_once_as_one_digest() {
+        let dir = tempfile::tempdir().unwrap();
+        let config = Config::from_toml(
+            "[mail]\nto = [\"a@example.org\"]\nmax_per_hour = 2\n",
+            dir.path(),
+        )
+        .unwrap();
+        let mut store = Store::open(&dir.path().join("db.sqlite3")).unwrap();
+        let t0 = SystemTime::UNIX_EPOCH + Duration::from_secs(1_800_000_000);
+        raise(&config, &mut store, 5, clock::unix_seconds(t0));
+        let mailer = Recording::new();
+        // Now: the first two go out, three are held.
+        let pass = send_due(&config, &mut store, &mailer, t0).unwrap();
+        assert_eq!((pass.sent, pass.digests), (2, 0));
+        // Within the hour nothing more goes out.
+        let pass = send_due(&config, &mut store, &mailer, t0 + Duration::from_secs(1800)).unwrap();
+        assert_eq!((pass.sent, pass.digests), (0, 0));
+        // After the hour: one digest listing the three held findings.
+        let later = t0 + Duration::from_secs(3700);
+        let pass = send_due(&config, &mut store, &mailer, later).unwrap();
+        assert_eq!((pass.sent, pass.digests), (1, 1));
+        let sent = mailer.sent();
+        assert_eq!(sent.len(), 3);
+        let digest = &sent[2].rendered.text;
+        for id in ["3", "4", "5"] {
+            assert!(
+                digest.contains(&format!("#{id}")) || digest.contains(id),
+                "{digest}"
+            );
+        }
+        // And never again.
+        let pass = send_due(
+            &config,
+            &mut store,
+            &mailer,
+            later + Duration::from_secs(7200),
+        )
+        .unwrap();
+        assert_eq!((pass.sent, pass.digests), (0, 0));
+        let counts = store.outbox_counts().unwrap();
+        assert!(counts.contains(&("digested".to_string(), 3)), "{counts:?}");
+        assert!(counts.contains(&("sent".to_string(), 3)), "{counts:?}");
+    }
+}

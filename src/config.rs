@@ -93,6 +93,8 @@ pub struct SeriesSettings {
     pub allow_negative: bool,
     /// Non-detect handling.
     pub non_detects: NonDetectPolicy,
+    /// Thresholds of the finding rules for this series.
+    pub findings: Thresholds,
 }
 
 impl SeriesSettings {
@@ -238,8 +240,36 @@ pub struct SmtpConfig {
     pub timeout: Duration,
 }
 
+/// Threshold keys as written in one `[findings]` table.
+#[derive(Debug, Clone, Default, PartialEq)]
+struct ThresholdPatch {
+    values: Vec<(&'static str, f64)>,
+    cooks: Option<CooksRule>,
+}
+
+impl ThresholdPatch {
+    fn apply(&self, t: &mut Thresholds) {
+        for &(key, v) in &self.values {
+            match key {
+                "leverage_multiplier" => t.leverage_multiplier = v,
+                "unexpected_leverage_factor" => t.unexpected_factor = v,
+                "outlier_alpha" => t.outlier_alpha = v,
+                "significance_alpha" => t.significance_alpha = v,
+                "release_alpha" => t.release_alpha = v,
+                "min_points" => t.min_n_record = v as usize,
+                "min_points_trend" => t.min_n_trend = v as usize,
+                _ => {}
+            }
+        }
+        if let Some(c) = self.cooks {
+            t.cooks = c;
+        }
+    }
+}
+
 #[derive(Debug, Clone, Default)]
 struct SeriesOverrides {
+    findings: Option<ThresholdPatch>,
     unit: Option<String>,
     matrix: Option<Matrix>,
     transform: Option<Transform>,
@@ -398,6 +428,7 @@ impl Config {
             x_range: range_of(d.x_min, d.x_max),
             allow_negative: d.allow_negative.unwrap_or(false),
             non_detects: d.non_detects.unwrap_or(NonDetectPolicy::Exclude),
+            findings: Thresholds::default(),
         };
         let mut series = Vec::new();
         for (i, entry) in w.array_of_tables(t, "series").into_iter().enumerate() {
@@ -428,6 +459,8 @@ impl Config {
         }
         let mail = w.mail(t, &resolve);
         let findings = w.findings(t);
+        let mut defaults = defaults;
+        defaults.findings = findings;
 
         for (key, dir) in [
             ("paths.archive", &archive),
@@ -499,6 +532,9 @@ impl Config {
             }
             if let Some(v) = o.non_detects {
                 s.non_detects = v;
+            }
+            if let Some(p) = &o.findings {
+                p.apply(&mut s.findings);
             }
         }
         s.x_range = range_of(lo, hi);
@@ -840,73 +876,57 @@ impl Walker {
     }
 
     fn findings(&mut self, t: &Table) -> Thresholds {
-        let d = Thresholds::default();
+        let mut d = Thresholds::default();
         let Some(f) = self.table(t, "findings") else {
             return d;
         };
-        self.known(
-            f,
-            "findings",
-            &[
-                "leverage_multiplier",
-                "unexpected_leverage_factor",
-                "cooks_distance",
-                "outlier_alpha",
-                "significance_alpha",
-                "release_alpha",
-                "min_points",
-                "min_points_trend",
-            ],
-        );
-        let num = |w: &mut Self, k: &str, r: (f64, f64), def: f64| {
-            w.number(f, "findings", k, Some(r)).unwrap_or(def)
-        };
-        let cooks = match self.string(f, "findings", "cooks_distance").as_deref() {
-            None | Some("median-f") => CooksRule::MedianF,
-            Some("4/n") => CooksRule::FourOverN,
-            Some(_) => {
-                self.problem(
-                    "findings.cooks_distance",
-                    "write \"median-f\" (median of F(p, n-p)) or \"4/n\"".into(),
-                );
-                CooksRule::MedianF
-            }
-        };
-        let t = Thresholds {
-            leverage_multiplier: num(
-                self,
-                "leverage_multiplier",
-                (1.0, 10.0),
-                d.leverage_multiplier,
-            ),
-            unexpected_factor: num(
-                self,
-                "unexpected_leverage_factor",
-                (1.0, 100.0),
-                d.unexpected_factor,
-            ),
-            cooks,
-            outlier_alpha: num(self, "outlier_alpha", (1e-9, 0.2), d.outlier_alpha),
-            significance_alpha: num(
-                self,
-                "significance_alpha",
-                (1e-6, 0.5),
-                d.significance_alpha,
-            ),
-            release_alpha: num(self, "release_alpha", (1e-6, 0.5), d.release_alpha),
-            min_n_record: num(self, "min_points", (4.0, 1e6), d.min_n_record as f64) as usize,
-            min_n_trend: num(self, "min_points_trend", (4.0, 1e6), d.min_n_trend as f64) as usize,
-        };
-        if t.release_alpha < t.significance_alpha {
+        self.threshold_patch(f, "findings").apply(&mut d);
+        if d.release_alpha < d.significance_alpha {
             self.problem(
                 "findings.release_alpha",
                 format!(
                     "must be at least significance_alpha ({}); it is the wider band a significant trend must leave to stop being so",
-                    t.significance_alpha
+                    d.significance_alpha
                 ),
             );
         }
-        t
+        d
+    }
+
+    /// The threshold keys written in a `[findings]` table (global, or of a
+    /// `[[series]]` entry).
+    fn threshold_patch(&mut self, f: &Table, at: &str) -> ThresholdPatch {
+        const KEYS: [(&str, (f64, f64)); 7] = [
+            ("leverage_multiplier", (1.0, 10.0)),
+            ("unexpected_leverage_factor", (1.0, 100.0)),
+            ("outlier_alpha", (1e-9, 0.2)),
+            ("significance_alpha", (1e-6, 0.5)),
+            ("release_alpha", (1e-6, 0.5)),
+            ("min_points", (4.0, 1e6)),
+            ("min_points_trend", (4.0, 1e6)),
+        ];
+        let mut known: Vec<&str> = KEYS.iter().map(|k| k.0).collect();
+        known.push("cooks_distance");
+        self.known(f, at, &known);
+        let mut patch = ThresholdPatch::default();
+        for (key, range) in KEYS {
+            if let Some(v) = self.number(f, at, key, Some(range)) {
+                patch.values.push((key, v));
+            }
+        }
+        patch.cooks = match self.string(f, at, "cooks_distance").as_deref() {
+            None => None,
+            Some("median-f") => Some(CooksRule::MedianF),
+            Some("4/n") => Some(CooksRule::FourOverN),
+            Some(_) => {
+                self.problem(
+                    &join(at, "cooks_distance"),
+                    "write \"median-f\" (median of F(p, n-p)) or \"4/n\"".into(),
+                );
+                None
+            }
+        };
+        patch
     }
 
     fn series_overrides(&mut self, t: &Table, at: &str, with_match: bool) -> SeriesOverrides {
@@ -922,8 +942,15 @@ impl Walker {
         ];
         if with_match {
             keys.push("match");
+            keys.push("findings");
         }
         self.known(t, at, &keys);
+        let findings = if with_match {
+            self.table(t, "findings")
+                .map(|f| self.threshold_patch(f, &join(at, "findings")))
+        } else {
+            None
+        };
         let matrix = match self.string(t, at, "matrix").as_deref() {
             None => None,
             Some("soil") => Some(Matrix::Soil),
@@ -983,6 +1010,7 @@ impl Walker {
             x_max,
             allow_negative: self.boolean(t, at, "allow_negative"),
             non_detects,
+            findings,
         }
     }
 
@@ -1173,6 +1201,34 @@ mod tests {
         );
         // The secret itself never appears in a message.
         assert!(problems.iter().all(|p| !p.message.contains("hunter2")));
+    }
+
+    #[test]
+    fn a_series_entry_can_tighten_the_finding_thresholds() {
+        let c = Config::from_toml(
+            "[findings]\noutlier_alpha = 0.002\n\n[[series]]\nmatch = \"MW-*\"\n[series.findings]\noutlier_alpha = 0.01\ncooks_distance = \"4/n\"\n",
+            Path::new("/srv"),
+        )
+        .unwrap();
+        let well = c.series_settings(&SeriesId("MW-3/nitrate".into()));
+        assert_eq!(well.findings.outlier_alpha, 0.01);
+        assert_eq!(well.findings.cooks, CooksRule::FourOverN);
+        assert_eq!(
+            well.findings.min_n_record,
+            Thresholds::default().min_n_record
+        );
+        let other = c.series_settings(&SeriesId("T1/lead".into()));
+        assert_eq!(other.findings.outlier_alpha, 0.002);
+        let bad = Config::from_toml(
+            "[[series]]\nmatch = \"MW-*\"\n[series.findings]\ncooks_distance = \"huge\"\n",
+            Path::new("/srv"),
+        )
+        .unwrap_err();
+        assert!(
+            bad.iter()
+                .any(|p| p.key == "series[0].findings.cooks_distance"),
+            "{bad:?}"
+        );
     }
 
     #[test]

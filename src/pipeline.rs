@@ -652,7 +652,7 @@ fn store_file(
                         &judged,
                         Span { min: lo, max: hi },
                         t.in_file,
-                        &config.findings,
+                        &t.settings.findings,
                         &mut cache.cutoffs,
                     ),
                     _ => None,
@@ -664,7 +664,7 @@ fn store_file(
                         &lj,
                         Span { min: lo, max: hi },
                         t.in_file,
-                        &config.findings,
+                        &t.settings.findings,
                         &mut cache.cutoffs,
                     )
                     && l.kinds.contains(&RecordKind::Outlier)
@@ -836,7 +836,7 @@ fn store_file(
                 previous.as_ref().map(|f| (f.slope, t.row.significant, f.n)),
                 new_fit,
                 without,
-                &config.findings,
+                &t.settings.findings,
             );
             t.row.significant = significant;
             for change in changes {

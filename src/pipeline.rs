@@ -617,26 +617,15 @@ fn store_file(
                 let judged = if left_out.is_empty() {
                     Some(*a)
                 } else {
-                    let mut js = t.state;
-                    let mut ok = true;
-                    for &(ax, ay) in left_out {
-                        ok &= js.remove(ax, ay).is_ok();
-                    }
-                    if ok { js.add(p.0, p.1).ok() } else { Some(*a) }
+                    judging_arrival(t.state, left_out, p, Some).or(Some(*a))
                 };
                 // The same on the ln(y) scale, where a decimal slip or a unit
                 // mix-up stands out even in a series whose scatter grows
                 // with its level.
                 let log_judged = match t.log.as_mut() {
                     Some(ls) if p.1 > 0.0 => {
-                        let ly = p.1.ln();
-                        let mut js = *ls;
-                        let mut ok = true;
-                        for &(ax, ay) in left_out {
-                            ok &= ay > 0.0 && js.remove(ax, ay.ln()).is_ok();
-                        }
-                        let judged = if ok { js.add(p.0, ly).ok() } else { None };
-                        if ls.add(p.0, ly).is_err() {
+                        let judged = judging_arrival(*ls, left_out, p, positive_ln);
+                        if ls.add(p.0, p.1.ln()).is_err() {
                             t.log = None;
                         }
                         judged
@@ -912,6 +901,25 @@ fn store_file(
         info!(findings, "findings raised");
     }
     Ok((counts, refits))
+}
+
+/// The newcomer `p` arriving in `state` without the `left_out` points, all
+/// with y mapped by `scale` (identity, or ln); `None` when a point cannot
+/// be mapped or removed.
+fn judging_arrival(
+    mut state: SeriesState,
+    left_out: &[(f64, f64)],
+    p: (f64, f64),
+    scale: impl Fn(f64) -> Option<f64>,
+) -> Option<Arrival> {
+    for &(x, y) in left_out {
+        state.remove(x, scale(y)?).ok()?;
+    }
+    state.add(p.0, scale(p.1)?).ok()
+}
+
+fn positive_ln(y: f64) -> Option<f64> {
+    (y > 0.0).then(|| y.ln())
 }
 
 /// The ln(y)-on-x state of a series' points, when every y is positive.

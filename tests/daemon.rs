@@ -7,6 +7,10 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output};
 use std::time::{Duration, Instant};
 
+#[path = "support/wait.rs"]
+mod wait;
+use wait::wait_for;
+
 use serde_json::Value;
 
 struct Site {
@@ -113,17 +117,6 @@ fn rusqlite_count(db: &Path, query: &str) -> i64 {
         rusqlite::Connection::open_with_flags(db, rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY)
             .unwrap();
     conn.query_row(query, [], |r| r.get(0)).unwrap()
-}
-
-fn wait_for(what: &str, timeout: Duration, mut ok: impl FnMut() -> bool) {
-    let until = Instant::now() + timeout;
-    while Instant::now() < until {
-        if ok() {
-            return;
-        }
-        std::thread::sleep(Duration::from_millis(50));
-    }
-    panic!("timed out waiting for {what}");
 }
 
 fn well_file(first_id: usize, rows: &[(f64, f64)]) -> String {

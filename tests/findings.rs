@@ -28,7 +28,11 @@ mod smtp;
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output};
-use std::time::{Duration, Instant};
+use std::time::Duration;
+
+#[path = "support/wait.rs"]
+mod wait;
+use wait::wait_for;
 
 use mailparse::{MailHeaderMap, ParsedMail, parse_mail};
 use serde_json::Value;
@@ -258,17 +262,6 @@ struct OutboxRow {
     message_id: String,
     next_attempt_unix: i64,
     last_error: Option<String>,
-}
-
-fn wait_for(what: &str, timeout: Duration, mut ok: impl FnMut() -> bool) {
-    let until = Instant::now() + timeout;
-    while Instant::now() < until {
-        if ok() {
-            return;
-        }
-        std::thread::sleep(Duration::from_millis(50));
-    }
-    panic!("timed out after {timeout:?} waiting for {what}");
 }
 
 /// The documented shape of one `findings --json` object.

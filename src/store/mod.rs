@@ -1054,30 +1054,49 @@ impl Tx<'_> {
 
     /// Writes every queued record.
     pub fn flush_records(&self, batch: &mut RecordBatch<'_>) -> Result<()> {
-        static CHUNK_SQL: OnceLock<String> = OnceLock::new();
-        let chunk_sql = CHUNK_SQL
-            .get_or_init(|| multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, RECORD_CHUNK));
-        static ONE_SQL: OnceLock<String> = OnceLock::new();
-        let one_sql =
-            ONE_SQL.get_or_init(|| multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, 1));
-        let mut rows = batch.rows.drain(..);
-        let full = rows.len() / RECORD_CHUNK;
+        static SQL: OnceLock<(String, String)> = OnceLock::new();
+        let sql = SQL.get_or_init(|| {
+            (
+                multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, RECORD_CHUNK),
+                multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, 1),
+            )
+        });
+        self.write_chunked(
+            batch.rows.drain(..),
+            sql,
+            RECORD_CHUNK,
+            RECORD_COLUMNS,
+            bind_record,
+        )
+    }
+
+    /// Writes `rows` with the `chunk`-row statement while full chunks last,
+    /// then the rest one row at a time (`sql` holds both statements).
+    fn write_chunked<R>(
+        &self,
+        mut rows: impl ExactSizeIterator<Item = R>,
+        sql: &(String, String),
+        chunk: usize,
+        columns: usize,
+        bind: fn(&mut rusqlite::Statement<'_>, usize, &R) -> rusqlite::Result<()>,
+    ) -> Result<()> {
+        let full = rows.len() / chunk;
         if full > 0 {
-            let mut stmt = self.tx.prepare_cached(chunk_sql).map_err(self.wrap())?;
+            let mut stmt = self.tx.prepare_cached(&sql.0).map_err(self.wrap())?;
             for _ in 0..full {
-                for k in 0..RECORD_CHUNK {
+                for k in 0..chunk {
                     let Some(row) = rows.next() else {
                         unreachable!("BUG: a full chunk was counted above");
                     };
-                    bind_record(&mut stmt, k * RECORD_COLUMNS, &row).map_err(self.wrap())?;
+                    bind(&mut stmt, k * columns, &row).map_err(self.wrap())?;
                 }
                 stmt.raw_execute().map_err(self.wrap())?;
             }
         }
         if rows.len() > 0 {
-            let mut stmt = self.tx.prepare_cached(one_sql).map_err(self.wrap())?;
+            let mut stmt = self.tx.prepare_cached(&sql.1).map_err(self.wrap())?;
             for row in rows {
-                bind_record(&mut stmt, 0, &row).map_err(self.wrap())?;
+                bind(&mut stmt, 0, &row).map_err(self.wrap())?;
                 stmt.raw_execute().map_err(self.wrap())?;
             }
         }
@@ -1212,33 +1231,14 @@ impl Tx<'_> {
 
     /// Writes every queued fit row.
     pub fn flush_fits(&self, batch: &mut FitBatch) -> Result<()> {
-        static CHUNK_SQL: OnceLock<String> = OnceLock::new();
-        let chunk_sql =
-            CHUNK_SQL.get_or_init(|| multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, FIT_CHUNK));
-        static ONE_SQL: OnceLock<String> = OnceLock::new();
-        let one_sql = ONE_SQL.get_or_init(|| multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, 1));
-        let mut rows = batch.rows.drain(..);
-        let full = rows.len() / FIT_CHUNK;
-        if full > 0 {
-            let mut stmt = self.tx.prepare_cached(chunk_sql).map_err(self.wrap())?;
-            for _ in 0..full {
-                for k in 0..FIT_CHUNK {
-                    let Some(row) = rows.next() else {
-                        unreachable!("BUG: a full chunk was counted above");
-                    };
-                    bind_fit(&mut stmt, k * FIT_COLUMNS, &row).map_err(self.wrap())?;
-                }
-                stmt.raw_execute().map_err(self.wrap())?;
-            }
-        }
-        if rows.len() > 0 {
-            let mut stmt = self.tx.prepare_cached(one_sql).map_err(self.wrap())?;
-            for row in rows {
-                bind_fit(&mut stmt, 0, &row).map_err(self.wrap())?;
-                stmt.raw_execute().map_err(self.wrap())?;
-            }
-        }
-        Ok(())
+        static SQL: OnceLock<(String, String)> = OnceLock::new();
+        let sql = SQL.get_or_init(|| {
+            (
+                multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, FIT_CHUNK),
+                multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, 1),
+            )
+        });
+        self.write_chunked(batch.rows.drain(..), sql, FIT_CHUNK, FIT_COLUMNS, bind_fit)
     }
 
     /// The points of a series' current fit (fitted scale), in arrival

@@ -6,6 +6,8 @@
 #      diagnostics, audit, commit per file), with its peak RSS.
 # Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
 #        (default 1000 1000 1000: 1,000,000 records in 1,000 files)
+# ERRORS=0 benches/ingest.sh generates the stream without injected entry
+# errors or planted extremes (the workload's defaults are 3 % and 0.5 %).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 SERIES=${1:-1000}
@@ -16,7 +18,8 @@ work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
 
 python3 "$SHARED/bench/make_workload.py" --out "$work/w" --series "$SERIES" \
-  --points-per-series "$POINTS" --batch "$BATCH" --seed 3 >/dev/null
+  --points-per-series "$POINTS" --batch "$BATCH" --seed 3 \
+  ${ERRORS:+--error-rate "$ERRORS" --extreme-rate "$ERRORS"} >/dev/null
 files=$(ls "$work/w/inbox" | wc -l)
 echo "workload: $SERIES series x $POINTS points, $files files"
 

@@ -536,7 +536,7 @@ fn flags(measures: &[Measured]) -> Vec<Flag> {
             measure: m.measure.to_string(),
             value: Some(m.value),
             cutoff: Some(m.cutoff),
-            cutoff_source: m.source.clone(),
+            cutoff_source: m.source.to_string(),
         })
         .collect()
 }
@@ -546,7 +546,7 @@ fn measures_json(measures: &[Measured]) -> serde_json::Value {
         .iter()
         .map(|m| {
             json!({"kind": m.kind, "measure": m.measure, "value": m.value, "cutoff": m.cutoff,
-                   "crossed": m.crossed, "source": m.source})
+                   "crossed": m.crossed, "source": m.source.to_string()})
         })
         .collect()
 }

@@ -115,8 +115,63 @@ pub struct Measured {
     pub cutoff: f64,
     /// Whether the cutoff was crossed.
     pub crossed: bool,
-    /// Where the cutoff comes from.
-    pub source: String,
+    /// Where the cutoff comes from (rendered only when a finding is
+    /// written: most records cross nothing, and formatting every record's
+    /// sources cost a tenth of the ingest time).
+    pub source: CutoffSource,
+}
+
+/// Where a cutoff comes from, with the numbers that make it up.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum CutoffSource {
+    /// The outlier test: alpha, residual degrees of freedom, and the
+    /// number of records judged together (Bonferroni when above 1).
+    Outlier {
+        /// Two-sided level.
+        alpha: f64,
+        /// Degrees of freedom of the prediction t.
+        df: usize,
+        /// Records of the series judged together.
+        k: usize,
+    },
+    /// The leverage rule and the usual-spacing comparison.
+    Leverage {
+        /// The multiplier of p/n.
+        multiplier: f64,
+        /// multiplier * p / n.
+        cutoff: f64,
+        /// The factor over the usual-spacing leverage.
+        factor: f64,
+        /// The leverage of a record at the usual spacing.
+        expected: f64,
+    },
+    /// A fixed rule with its published source.
+    Fixed(&'static str),
+}
+
+impl std::fmt::Display for CutoffSource {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match *self {
+            CutoffSource::Outlier { alpha, df, k } if k > 1 => write!(
+                f,
+                "t(1 - {alpha}/(2*{k}), {df}) for a two-sided test at alpha = {alpha}, Bonferroni over {k} records judged together"
+            ),
+            CutoffSource::Outlier { alpha, df, .. } => write!(
+                f,
+                "t(1 - {alpha}/2, {df}) for a two-sided test at alpha = {alpha}"
+            ),
+            CutoffSource::Leverage {
+                multiplier,
+                cutoff,
+                factor,
+                expected,
+            } => write!(
+                f,
+                "above {multiplier}p/n = {cutoff:.3} (Hoaglin & Welsch 1978) and above {factor} x the leverage of a record at the usual spacing ({expected:.3}; project default)"
+            ),
+            CutoffSource::Fixed(s) => f.write_str(s),
+        }
+    }
 }
 
 /// Where the series' x values lay before the newcomer.
@@ -205,16 +260,10 @@ pub fn judge_record_with(
             value: tv,
             cutoff: crit,
             crossed,
-            source: if k > 1.0 {
-                format!(
-                    "t(1 - {}/(2*{k}), {}) for a two-sided test at alpha = {}, Bonferroni over {k} records judged together",
-                    t.outlier_alpha, pred.df, t.outlier_alpha
-                )
-            } else {
-                format!(
-                    "t(1 - {}/2, {}) for a two-sided test at alpha = {}",
-                    t.outlier_alpha, pred.df, t.outlier_alpha
-                )
+            source: CutoffSource::Outlier {
+                alpha: t.outlier_alpha,
+                df: pred.df,
+                k: kk,
             },
         });
     }
@@ -254,10 +303,12 @@ pub fn judge_record_with(
         value: leverage,
         cutoff: cutoff.max(t.unexpected_factor * expected_leverage),
         crossed,
-        source: format!(
-            "above {}p/n = {cutoff:.3} (Hoaglin & Welsch 1978) and above {} x the leverage of a record at the usual spacing ({expected_leverage:.3}; project default)",
-            t.leverage_multiplier, t.unexpected_factor
-        ),
+        source: CutoffSource::Leverage {
+            multiplier: t.leverage_multiplier,
+            cutoff,
+            factor: t.unexpected_factor,
+            expected: expected_leverage,
+        },
     });
 
     // Influence.
@@ -284,7 +335,7 @@ pub fn judge_record_with(
                 value: d,
                 cutoff: cut,
                 crossed,
-                source: source.into(),
+                source: CutoffSource::Fixed(source),
             });
         }
         if let Some(v) = inf.dffits() {
@@ -295,7 +346,7 @@ pub fn judge_record_with(
                 value: v.abs(),
                 cutoff: cut,
                 crossed: v.abs() > cut,
-                source: "2*sqrt(p/n) (Belsley, Kuh & Welsch 1980)".into(),
+                source: CutoffSource::Fixed("2*sqrt(p/n) (Belsley, Kuh & Welsch 1980)"),
             });
         }
         if let Some(v) = inf.dfbetas_slope() {
@@ -306,7 +357,7 @@ pub fn judge_record_with(
                 value: v.abs(),
                 cutoff: cut,
                 crossed: v.abs() > cut,
-                source: "2/sqrt(n) (Belsley, Kuh & Welsch 1980)".into(),
+                source: CutoffSource::Fixed("2/sqrt(n) (Belsley, Kuh & Welsch 1980)"),
             });
         }
     }

@@ -76,6 +76,19 @@ impl NonDetectPolicy {
             NonDetectPolicy::Substitute { fraction } => format!("substitute:{fraction}"),
         }
     }
+
+    /// Reads a stored name back (see [`NonDetectPolicy::name`]).
+    pub fn from_name(name: &str) -> Option<NonDetectPolicy> {
+        match name.split_once(':') {
+            None if name == "exclude" => Some(NonDetectPolicy::Exclude),
+            Some(("substitute", f)) => f
+                .parse::<f64>()
+                .ok()
+                .filter(|f| *f > 0.0 && *f <= 1.0)
+                .map(|fraction| NonDetectPolicy::Substitute { fraction }),
+            _ => None,
+        }
+    }
 }
 
 /// Settings of one series.
@@ -95,6 +108,9 @@ pub struct SeriesSettings {
     pub non_detects: NonDetectPolicy,
     /// Thresholds of the finding rules for this series.
     pub findings: Thresholds,
+    /// The analysis window of the fit (None: all points). A window set
+    /// with the `window` command overrides this one.
+    pub window: Option<crate::window::Window>,
 }
 
 impl SeriesSettings {
@@ -277,6 +293,8 @@ struct SeriesOverrides {
     x_max: Option<f64>,
     allow_negative: Option<bool>,
     non_detects: Option<NonDetectPolicy>,
+    /// Some(None): `window = "all"`.
+    window: Option<Option<crate::window::Window>>,
 }
 
 impl Config {
@@ -429,6 +447,7 @@ impl Config {
             allow_negative: d.allow_negative.unwrap_or(false),
             non_detects: d.non_detects.unwrap_or(NonDetectPolicy::Exclude),
             findings: Thresholds::default(),
+            window: d.window.flatten(),
         };
         let mut series = Vec::new();
         for (i, entry) in w.array_of_tables(t, "series").into_iter().enumerate() {
@@ -535,6 +554,9 @@ impl Config {
             }
             if let Some(p) = &o.findings {
                 p.apply(&mut s.findings);
+            }
+            if let Some(w) = o.window {
+                s.window = w;
             }
         }
         s.x_range = range_of(lo, hi);
@@ -939,6 +961,7 @@ impl Walker {
             "allow_negative",
             "non_detects",
             "substitute_fraction",
+            "window",
         ];
         if with_match {
             keys.push("match");
@@ -970,6 +993,20 @@ impl Walker {
                 Some(tr) => Some(tr),
                 None => {
                     self.problem(&join(at, "transform"), format!("`{name}` is not a transform; write \"none\", \"log-y\", \"log-x\" or \"log-log\""));
+                    None
+                }
+            },
+        };
+        let window = match self.string(t, at, "window").as_deref() {
+            None => None,
+            Some("all") => Some(None),
+            Some(text) => match crate::window::Window::parse(text) {
+                Ok(w) => Some(Some(w)),
+                Err(e) => {
+                    self.problem(
+                        &join(at, "window"),
+                        format!("{e}; or \"all\" for every point"),
+                    );
                     None
                 }
             },
@@ -1010,6 +1047,7 @@ impl Walker {
             x_max,
             allow_negative: self.boolean(t, at, "allow_negative"),
             non_detects,
+            window,
             findings,
         }
     }

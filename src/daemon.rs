@@ -109,6 +109,30 @@ pub fn run(
     })
 }
 
+/// Records and refits the series whose configured analysis window changed
+/// since their last fit (a changed configuration takes effect at start-up).
+fn apply_config_windows(config: &Config, store: &mut Store) -> Result<(), DaemonError> {
+    let at = crate::clock::rfc3339(SystemTime::now());
+    match crate::review::apply_config_windows(store, config, &at) {
+        Ok(changed) => {
+            for c in changed {
+                info!(
+                    series = %c.series,
+                    window = c.window.as_deref().unwrap_or("all points"),
+                    version = c.fit_version,
+                    "analysis window changed in the configuration; refitted"
+                );
+            }
+            Ok(())
+        }
+        Err(crate::review::ReviewError::Store(e)) => Err(e.into()),
+        Err(e) => {
+            error!(error = %e, "analysis windows not applied");
+            Ok(())
+        }
+    }
+}
+
 /// How often the sender looks for due messages.
 const SEND_EVERY: Duration = Duration::from_secs(2);
 
@@ -165,6 +189,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
         "daemon",
         &format!("started; watching {}", config.inbox.display()),
     )?;
+    apply_config_windows(config, store)?;
     info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
     let mut settler = Settler::new(config.settle);
     let mut cache = SeriesCache::new();
@@ -310,6 +335,7 @@ pub fn ingest_paths(
     stop: &AtomicBool,
     mut progress: impl FnMut(usize, usize, &Path, &Result<Outcome, PipelineError>),
 ) -> Result<RunTotals, DaemonError> {
+    apply_config_windows(config, store)?;
     let mut files: Vec<(Candidate, bool)> = Vec::new();
     for p in paths {
         let meta = std::fs::metadata(p).map_err(|source| DaemonError::Path {

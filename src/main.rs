@@ -7,6 +7,7 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand, ValueEnum};
 use slopewarden::fitreport::analyse;
+use slopewarden::review::{Action, Verdict};
 use slopewarden::stats::Transform;
 use slopewarden::table::read_xy_file;
 
@@ -18,6 +19,8 @@ const EXIT_IO: u8 = 1;
 const EXIT_CONFIG: u8 = 3;
 /// Exit code when the database cannot be opened or written.
 const EXIT_STORE: u8 = 4;
+/// Exit code when `verify` finds the audit chain, a seal or a fit broken.
+const EXIT_VERIFY: u8 = 5;
 
 #[derive(Parser)]
 #[command(
@@ -112,6 +115,79 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Everything about one finding: its numbers and cutoffs, the fit with
+    /// and without the record, the likely causes, its verdicts.
+    Show {
+        /// The finding id (from `findings` or the email).
+        finding: i64,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON object instead of the text.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Record a verdict on a finding after checking the record (field
+    /// sheet, chain of custody, lab report); the series refits.
+    Review {
+        /// The finding id.
+        finding: i64,
+        /// What the check showed.
+        #[arg(
+            long,
+            value_enum,
+            required_unless_present = "revert",
+            conflicts_with = "revert"
+        )]
+        verdict: Option<VerdictArg>,
+        /// The corrected value (with `--verdict corrected`), in the unit stored.
+        #[arg(
+            long,
+            required_if_eq("verdict", "corrected"),
+            allow_hyphen_values = true
+        )]
+        value: Option<f64>,
+        /// Undo the finding's latest verdict and reopen the finding.
+        #[arg(long)]
+        revert: bool,
+        /// What was checked and what it showed (kept in the audit trail).
+        #[arg(long)]
+        note: String,
+        /// Who gives the verdict (default: the login name).
+        #[arg(long)]
+        by: Option<String>,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
+    /// Set the analysis window of a series (audited; the series refits):
+    /// `x:LO..HI` (either side may be empty), `last:N`, `since:YYYY-MM-DD`,
+    /// `all` for every point, or `config` to follow the configuration again.
+    Window {
+        /// The series key.
+        series: String,
+        /// The window.
+        window: String,
+        /// Why (kept in the audit trail).
+        #[arg(long)]
+        note: String,
+        /// Who changes it (default: the login name).
+        #[arg(long)]
+        by: Option<String>,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
+    /// Check the audit chain, the seals on every row, and recompute every
+    /// stored fit from the stored records; exits 5 on any failure.
+    Verify {
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON object instead of the text.
+        #[arg(long)]
+        json: bool,
+    },
     /// Send a short test message with the configured mail settings (or
     /// write it to the outbox folder when no server is configured).
     SendTestEmail {
@@ -121,6 +197,23 @@ enum Command {
         /// Recipient (default: the configured `mail.to`).
         #[arg(long)]
         to: Option<String>,
+    },
+    /// Write a report of how each trend came to be: one self-contained
+    /// HTML file, or CSV exports of fits, findings and verdicts.
+    Report {
+        /// Only series whose key matches this glob (e.g. `MW-*/*`).
+        #[arg(long)]
+        series: Option<String>,
+        /// The output file (HTML); with `--format csv`, `trend.csv` writes
+        /// trend-fits.csv, trend-findings.csv and trend-verdicts.csv beside it.
+        #[arg(long)]
+        out: PathBuf,
+        /// Output format.
+        #[arg(long, value_enum, default_value_t = ReportFormatArg::Html)]
+        format: ReportFormatArg,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
     },
     /// Every fit version of one series, with what triggered it.
     History {
@@ -141,6 +234,24 @@ enum LogFormat {
     Text,
     /// One JSON object per line.
     Json,
+}
+
+#[derive(Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum VerdictArg {
+    /// The record is right as it is.
+    Confirmed,
+    /// The record was wrong: store the value given with --value.
+    Corrected,
+    /// Leave the record out of the fit (it stays stored).
+    Excluded,
+}
+
+#[derive(Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum ReportFormatArg {
+    /// One self-contained HTML file.
+    Html,
+    /// CSV files: fits, findings and verdicts.
+    Csv,
 }
 
 #[derive(Clone, Copy, ValueEnum)]
@@ -209,6 +320,59 @@ fn main() -> ExitCode {
         Command::Findings { open, config, json } => {
             commands::findings(config.as_deref(), open, json)
         }
+        Command::Show {
+            finding,
+            config,
+            json,
+        } => commands::show(config.as_deref(), finding, json),
+        Command::Review {
+            finding,
+            verdict,
+            value,
+            revert,
+            note,
+            by,
+            config,
+        } => {
+            let action = match (revert, verdict, value) {
+                (true, _, _) => Action::Revert,
+                (false, Some(VerdictArg::Corrected), Some(value)) => {
+                    Action::Verdict(Verdict::Corrected { value })
+                }
+                (false, Some(VerdictArg::Confirmed), _) => Action::Verdict(Verdict::Confirmed),
+                (false, Some(VerdictArg::Excluded), _) => Action::Verdict(Verdict::Excluded),
+                _ => {
+                    eprintln!(
+                        "slopewarden: give --verdict confirmed|excluded, --verdict corrected --value V, or --revert"
+                    );
+                    return ExitCode::from(EXIT_BAD_INPUT);
+                }
+            };
+            if value.is_some() && !matches!(action, Action::Verdict(Verdict::Corrected { .. })) {
+                eprintln!("slopewarden: --value goes only with --verdict corrected");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+            commands::review(config.as_deref(), finding, action, &note, by.as_deref())
+        }
+        Command::Verify { config, json } => commands::verify(config.as_deref(), json),
+        Command::Window {
+            series,
+            window,
+            note,
+            by,
+            config,
+        } => commands::window(config.as_deref(), &series, &window, &note, by.as_deref()),
+        Command::Report {
+            series,
+            out,
+            format,
+            config,
+        } => commands::report(
+            config.as_deref(),
+            series.as_deref(),
+            &out,
+            format == ReportFormatArg::Csv,
+        ),
         Command::SendTestEmail { config, to } => {
             commands::send_test_email(config.as_deref(), to.as_deref())
         }
@@ -233,7 +397,7 @@ mod commands {
     use slopewarden::store::Store;
     use slopewarden::table::Columns;
 
-    use super::{EXIT_BAD_INPUT, EXIT_CONFIG, EXIT_IO, EXIT_STORE};
+    use super::{EXIT_BAD_INPUT, EXIT_CONFIG, EXIT_IO, EXIT_STORE, EXIT_VERIFY};
 
     fn load(config: Option<&Path>) -> Result<Config, ExitCode> {
         match config {
@@ -385,13 +549,19 @@ mod commands {
     }
 
     fn print_json(value: &impl serde::Serialize) -> ExitCode {
+        let text = match serde_json::to_string_pretty(value) {
+            Ok(t) => t,
+            Err(e) => {
+                eprintln!("slopewarden: cannot write the output: {e}");
+                return ExitCode::from(EXIT_IO);
+            }
+        };
         let stdout = std::io::stdout();
         let mut out = stdout.lock();
-        match serde_json::to_writer_pretty(&mut out, value)
-            .map_err(std::io::Error::other)
-            .and_then(|()| writeln!(out))
-        {
+        match writeln!(out, "{text}") {
             Ok(()) => ExitCode::SUCCESS,
+            // A closed pipe (`| head`, `| grep -q`) is the reader's choice.
+            Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => ExitCode::SUCCESS,
             Err(e) => {
                 eprintln!("slopewarden: cannot write the output: {e}");
                 ExitCode::from(EXIT_IO)
@@ -572,6 +742,211 @@ mod commands {
         ExitCode::SUCCESS
     }
 
+    pub fn show(config: Option<&Path>, id: i64, json: bool) -> ExitCode {
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let (row, verdicts) = match (store.finding(id), store.verdicts(Some(id))) {
+            (Ok(Some(r)), Ok(v)) => (r, v),
+            (Ok(None), _) => {
+                eprintln!(
+                    "slopewarden: there is no finding {id}; `slopewarden findings` lists them"
+                );
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+            (Err(e), _) | (_, Err(e)) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if json {
+            return print_json(&serde_json::json!({
+                "finding": row,
+                "verdicts": verdicts,
+            }));
+        }
+        print!("{}", slopewarden::show::describe_finding(&row, &verdicts));
+        ExitCode::SUCCESS
+    }
+
+    pub fn review(
+        config: Option<&Path>,
+        finding: i64,
+        action: slopewarden::review::Action,
+        note: &str,
+        by: Option<&str>,
+    ) -> ExitCode {
+        use slopewarden::review::{Review, ReviewError, review};
+        let (config, mut store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let login = login();
+        let at = slopewarden::clock::rfc3339(std::time::SystemTime::now());
+        let request = Review {
+            finding,
+            action,
+            note,
+            by: by.unwrap_or(&login),
+            at: &at,
+        };
+        match review(&mut store, &config, &request) {
+            Ok(done) => {
+                println!(
+                    "finding {finding}: {} (verdict {}); the finding is now {}",
+                    done.verdict, done.verdict_id, done.finding_status
+                );
+                if let (Some(series), Some(v)) = (&done.series, done.fit_version) {
+                    println!("series {series} refitted as version {v}");
+                    println!("  before: {}", fit_summary(&done.before));
+                    println!("  after:  {}", fit_summary(&done.after));
+                }
+                ExitCode::SUCCESS
+            }
+            Err(ReviewError::Refused(msg)) => {
+                eprintln!("slopewarden: {msg}");
+                ExitCode::from(EXIT_BAD_INPUT)
+            }
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+        }
+    }
+
+    fn login() -> String {
+        std::env::var("USER")
+            .or_else(|_| std::env::var("LOGNAME"))
+            .unwrap_or_else(|_| "unknown".into())
+    }
+
+    fn fit_summary(f: &Option<slopewarden::stats::LineFit>) -> String {
+        match f {
+            Some(f) => format!(
+                "slope {} [{}, {}], p = {}, n = {}",
+                num(f.slope),
+                num(f.slope_ci_low),
+                num(f.slope_ci_high),
+                f.slope_p.map_or("undefined".into(), |p| format!("{p:.3e}")),
+                f.n
+            ),
+            None => "no fit".into(),
+        }
+    }
+
+    pub fn window(
+        config: Option<&Path>,
+        series: &str,
+        window: &str,
+        note: &str,
+        by: Option<&str>,
+    ) -> ExitCode {
+        use slopewarden::review::{ReviewError, set_window};
+        let (config, mut store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let at = slopewarden::clock::rfc3339(std::time::SystemTime::now());
+        let by = by.map_or_else(login, str::to_string);
+        match set_window(&mut store, &config, series, window, note, &by, &at) {
+            Ok(c) => {
+                println!(
+                    "series {}: window {}; refitted as version {}",
+                    c.series,
+                    c.window.as_deref().unwrap_or("all points"),
+                    c.fit_version
+                );
+                println!("  before: {}", fit_summary(&c.before));
+                println!("  after:  {}", fit_summary(&c.after));
+                ExitCode::SUCCESS
+            }
+            Err(ReviewError::Refused(msg)) => {
+                eprintln!("slopewarden: {msg}");
+                ExitCode::from(EXIT_BAD_INPUT)
+            }
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+        }
+    }
+
+    pub fn verify(config: Option<&Path>, json: bool) -> ExitCode {
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let report = match slopewarden::verify::verify(&store) {
+            Ok(r) => r,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if json {
+            let code = print_json(&report);
+            return if report.ok() {
+                code
+            } else {
+                ExitCode::from(EXIT_VERIFY)
+            };
+        }
+        println!(
+            "{} audit entries, {} seals, {} fit versions of {} series checked",
+            report.audit_entries, report.seals, report.fits, report.series
+        );
+        if report.ok() {
+            println!(
+                "intact: the chain holds, every row is vouched for, every fit recomputes from the stored records"
+            );
+            return ExitCode::SUCCESS;
+        }
+        for p in &report.problems {
+            println!("FAILED  {}: {}", p.location, p.what);
+        }
+        println!("{} problem(s) found", report.problems.len());
+        ExitCode::from(EXIT_VERIFY)
+    }
+
+    pub fn report(config: Option<&Path>, series: Option<&str>, out: &Path, csv: bool) -> ExitCode {
+        use slopewarden::report::{ReportError, ReportFormat, write_report};
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let format = if csv {
+            ReportFormat::Csv
+        } else {
+            ReportFormat::Html
+        };
+        let now = slopewarden::clock::rfc3339(std::time::SystemTime::now());
+        match write_report(&store, series, format, out, &now) {
+            Ok(summary) => {
+                for f in &summary.files {
+                    println!("wrote {}", f.display());
+                }
+                println!(
+                    "{} series, {} findings. A flag is a prompt to verify a record, not a compliance determination.",
+                    summary.series, summary.findings
+                );
+                ExitCode::SUCCESS
+            }
+            Err(e @ ReportError::Pattern { .. }) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_BAD_INPUT)
+            }
+            Err(e @ ReportError::Store(_)) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_IO)
+            }
+        }
+    }
+
     pub fn send_test_email(config: Option<&Path>, to: Option<&str>) -> ExitCode {
         let config = match load(config) {
             Ok(c) => c,
@@ -638,7 +1013,17 @@ mod commands {
                 interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
                 r.created_at,
-                r.trigger_file.unwrap_or_default()
+                match (&r.trigger_file, &r.trigger_verdict) {
+                    _ if r.trigger_window.is_some() => format!(
+                        "window change ({}): {}",
+                        r.trigger_window.as_ref().map_or("", |w| w.1.as_str()),
+                        r.window.as_deref().unwrap_or("all points")
+                    ),
+                    (Some(f), _) => f.clone(),
+                    (None, Some(v)) =>
+                        format!("verdict {} on finding {}: {}", v.id, v.finding, v.verdict),
+                    (None, None) => String::new(),
+                }
             );
         }
         ExitCode::SUCCESS

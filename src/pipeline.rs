@@ -31,10 +31,12 @@ use crate::raise;
 use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
 use crate::stats::robust::{mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
+use crate::store::seal::SealScope;
 use crate::store::{
     AuditKind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch, RecordPlacement,
     RobustRow, SeriesRow, Store, StoreError,
 };
+use crate::window::Window;
 
 /// The robust slope is recomputed (from all points) when a series has
 /// grown by this factor since the last computation, so its total cost stays
@@ -63,6 +65,11 @@ pub struct SeriesCache {
     /// The ln(y) screen per series (None: not applicable).
     log: HashMap<String, Option<SeriesState>>,
     quantiles: Option<TQuantiles>,
+    /// The store revision the cache was filled at: a verdict moves it on,
+    /// and the cache is then refilled from the store.
+    revision: Option<i64>,
+    /// The analysis window in force per series (None: all points).
+    windows: HashMap<String, Option<Window>>,
 }
 
 impl SeriesCache {
@@ -79,6 +86,8 @@ impl SeriesCache {
         self.awaiting.clear();
         self.robust.clear();
         self.log.clear();
+        self.windows.clear();
+        self.revision = None;
     }
 
     fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
@@ -399,7 +408,13 @@ fn quarantine_whole(
         FileCounts::default(),
         Some(reason),
     )?;
-    tx.append_audit(at, AuditKind::FileQuarantined, name, reason)?;
+    let seal = tx.seal(SealScope::File(id.0))?;
+    tx.append_audit(
+        at,
+        AuditKind::FileQuarantined,
+        name,
+        &format!("{reason} {seal}"),
+    )?;
     raise::plain_finding(
         &tx,
         config,
@@ -452,6 +467,10 @@ struct Touched {
     /// The fit of ln(y) on x, a second screen for multiplicative slips, for
     /// series fitted on the original scale while every y is positive.
     log: Option<SeriesState>,
+    /// The analysis window in force, as configured and on the fitted scale.
+    window: Option<(Window, Window)>,
+    /// With a window: the points inside it, in arrival order.
+    window_points: std::collections::VecDeque<(f64, f64)>,
 }
 
 /// A record the rules flagged, waiting for the file's fits.
@@ -479,6 +498,12 @@ fn store_file(
     now_unix: i64,
 ) -> Result<(FileCounts, usize), PipelineError> {
     let tx = store.begin()?;
+    // Checked inside the write transaction: no verdict can slip in between.
+    let revision = tx.revision()?;
+    if cache.revision != Some(revision) {
+        cache.clear();
+        cache.revision = Some(revision);
+    }
     let file_id = tx.insert_file(&NewFile {
         name,
         sha256: sha,
@@ -524,11 +549,33 @@ fn store_file(
                 },
             };
             let state = SeriesState::from_moments(row.moments);
+            let window = match cache.windows.get(key) {
+                Some(w) => *w,
+                None => {
+                    let w = match tx.window_override(row.id)? {
+                        Some(text) if text == "all" => None,
+                        // Validated when it was stored.
+                        Some(text) => Window::parse(&text).ok(),
+                        None => settings.window,
+                    };
+                    cache.windows.insert(key.to_string(), w);
+                    w
+                }
+            };
+            let transform = settings.transform;
+            let window = window.map(|w| (w, w.on_fit_scale(transform)));
+            let window_points = match window {
+                Some((_, w)) => w.select(&tx.fit_points(&row)?, |p| p.0).into(),
+                None => std::collections::VecDeque::new(),
+            };
             let awaiting = match cache.awaiting.remove(key) {
                 Some(a) => a,
                 None => tx.awaiting_review(row.id)?,
             };
             let log = match cache.log.remove(key) {
+                // The ln(y) screen follows all points; a windowed fit goes
+                // without it.
+                _ if window.is_some() => None,
                 Some(l) => l,
                 None if settings.transform != Transform::None => None,
                 None => {
@@ -553,6 +600,8 @@ fn store_file(
                     in_file: per_series.get(key).copied().unwrap_or(1),
                     last: None,
                     log,
+                    window,
+                    window_points,
                 },
             );
             order.push(key.to_string());
@@ -572,9 +621,28 @@ fn store_file(
             }
         };
         let mut probe = t.state;
-        let arrival: Option<Arrival> = match fit_point {
+        // Outside the window, a record is stored and eligible, but neither
+        // enters this fit nor is judged against it.
+        let admitted = match (t.window, fit_point) {
+            (Some((_, w)), Some(p)) => w.admits_x(p.0),
+            _ => true,
+        };
+        let arrival: Option<Arrival> = match fit_point.filter(|_| admitted) {
             Some((fx, fy)) => match probe.add(fx, fy) {
-                Ok(a) => Some(a),
+                Ok(a) => {
+                    if let Some((_, w)) = t.window {
+                        t.window_points.push_back((fx, fy));
+                        if let Window::Last(n) = w
+                            && t.window_points.len() > n
+                            && let Some((ox, oy)) = t.window_points.pop_front()
+                        {
+                            // The oldest point leaves; the file's fit is
+                            // recomputed from the window's points at the end.
+                            let _ = probe.remove(ox, oy);
+                        }
+                    }
+                    Some(a)
+                }
                 Err(err) => {
                     // Validated records are finite; a transform could still
                     // overflow. Set the row aside rather than guess.
@@ -612,7 +680,12 @@ fn store_file(
                 // At most a tenth of the points are left out (the newest
                 // suspects): leaving out more would judge newcomers against
                 // a fit too thin to trust, and swamp clean records.
-                let cap = (t.state.n() as usize) / MAX_LEFT_OUT_SHARE;
+                // (Not in a windowed fit: a suspect may have left the window.)
+                let cap = if t.window.is_some() {
+                    0
+                } else {
+                    (t.state.n() as usize) / MAX_LEFT_OUT_SHARE
+                };
                 let left_out = &t.awaiting[t.awaiting.len().saturating_sub(cap)..];
                 let judged = if left_out.is_empty() {
                     Some(*a)
@@ -757,11 +830,26 @@ fn store_file(
     // Robust slopes first: gather the series due for one and compute
     // them, then write the fit rows.
     let mut due: Vec<&str> = Vec::new();
+    let mut windowed: Vec<(&str, Vec<(f64, f64)>)> = Vec::new();
     for key in &order {
         let Some(t) = touched.get_mut(key) else {
             continue;
         };
         let n = t.state.n() as i64;
+        if t.window.is_some() {
+            // A window's fit is recomputed from its points; so is its
+            // robust slope, at every refit (a window is short, or fixed).
+            let (x, y): (Vec<f64>, Vec<f64>) = t.window_points.iter().copied().unzip();
+            t.state = SeriesState::from_moments(Moments::from_points(&x, &y));
+            t.row.x_span = x.iter().fold(None, |span, &v| match span {
+                None => Some((v, v)),
+                Some((lo, hi)) => Some((f64::min(lo, v), f64::max(hi, v))),
+            });
+            if t.changed && x.len() >= 3 {
+                windowed.push((key.as_str(), t.window_points.iter().copied().collect()));
+            }
+            continue;
+        }
         if !t.changed || n < 3 || (n as f64) < ROBUST_GROWTH * (t.row.robust_n as f64) {
             continue;
         }
@@ -783,6 +871,7 @@ fn store_file(
         let jobs: Vec<(&str, &[(f64, f64)])> = due
             .iter()
             .filter_map(|k| cache.points.get(*k).map(|p| (*k, p.as_slice())))
+            .chain(windowed.iter().map(|(k, p)| (*k, p.as_slice())))
             .collect();
         for (key, r) in robust_rows(&jobs, config.level) {
             robust_of.insert(key, r);
@@ -806,6 +895,7 @@ fn store_file(
         refits += 1;
         t.row.fit_version += 1;
         t.row.moments = *t.state.moments();
+        t.row.window = t.window.map(|(w, _)| w.text());
         let quantiles = cache.quantiles(config.level);
         let fit =
             LineFit::from_moments_with(t.state.moments(), config.level, |df| quantiles.get(df));
@@ -879,12 +969,13 @@ fn store_file(
         now_unix,
     )?;
     tx.finish_file(file_id, outcome, counts, None)?;
+    let seal = tx.seal(SealScope::File(file_id.0))?;
     tx.append_audit(
         at,
         AuditKind::FileIngested,
         name,
         &format!(
-            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted:\n{refit_list}",
+            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted:\n{refit_list}{seal}",
             counts.new, counts.same, counts.conflict, counts.bad
         ),
     )?;

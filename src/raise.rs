@@ -18,6 +18,7 @@ use crate::messages::{
 };
 use crate::records::Record;
 use crate::stats::{Arrival, LineFit, Transform};
+use crate::store::seal::SealScope;
 use crate::store::{AuditKind, FileId, NewFinding, NewMessage, SeriesRow, StoreError, Tx};
 
 type Result<T> = std::result::Result<T, StoreError>;
@@ -182,7 +183,8 @@ pub fn record_finding(
         record_ids: std::slice::from_ref(&r.record_id),
         kinds: &kinds,
         severity: severity.as_str(),
-        fit_version: Some(case.series.fit_version + 1),
+        // The version this file's refit gave the series (already counted).
+        fit_version: Some(case.series.fit_version),
         // Only a suspect record is kept out of later judging (see pipeline).
         fit_point: case
             .judgement
@@ -199,7 +201,6 @@ pub fn record_finding(
         summary: &summary,
         detail: &detail,
     })?;
-    tx.append_audit(at, AuditKind::Finding, &format!("finding {id}"), &summary)?;
 
     // The message.
     let mut points: Vec<ChartPoint> = case
@@ -302,6 +303,7 @@ pub fn record_finding(
         &render_notice(&notice),
         now_unix,
     )?;
+    audit_finding(tx, at, id, &summary)?;
     Ok(id)
 }
 
@@ -336,7 +338,6 @@ pub fn plain_finding(
         summary,
         detail: &detail,
     })?;
-    tx.append_audit(at, AuditKind::Finding, &format!("finding {id}"), summary)?;
     let notice = Notice {
         finding_id: id,
         instance: message_domain(tx, config)?,
@@ -390,6 +391,7 @@ pub fn plain_finding(
         &render_notice(&notice),
         now_unix,
     )?;
+    audit_finding(tx, at, id, summary)?;
     Ok(id)
 }
 
@@ -451,6 +453,18 @@ pub fn trend_finding(
 pub const CAUTION: &str = "A statistical flag is a prompt to verify the record, not a compliance determination. The applicable regulations, the site's approved sampling plan and licensed professionals decide what the data mean.";
 
 /// The Message-ID domain: this database's token under the instance name.
+/// The finding's audit entry, sealing the finding and its queued messages
+/// (so it is appended after them).
+fn audit_finding(tx: &Tx<'_>, at: &str, id: i64, summary: &str) -> Result<()> {
+    let seal = tx.seal(SealScope::Finding(id))?;
+    tx.append_audit(
+        at,
+        AuditKind::Finding,
+        &format!("finding {id}"),
+        &format!("{summary} {seal}"),
+    )
+}
+
 fn message_domain(tx: &Tx<'_>, config: &Config) -> Result<String> {
     Ok(format!("{}.{}", tx.store_token()?, config.mail.instance))
 }

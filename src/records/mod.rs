@@ -11,7 +11,7 @@
 //! in), no globals. Everything is testable from a byte string, and no input
 //! makes it panic.
 
-mod dates;
+pub(crate) mod dates;
 mod layout;
 mod model;
 mod numbers;

@@ -26,6 +26,10 @@ pub enum AuditKind {
     Finding,
     /// A message was delivered, or given up on.
     Message,
+    /// An analyst's verdict on a finding, or its revert.
+    Verdict,
+    /// A series' analysis window changed.
+    Window,
 }
 
 impl AuditKind {
@@ -40,6 +44,8 @@ impl AuditKind {
             AuditKind::Lifecycle => "lifecycle",
             AuditKind::Finding => "finding",
             AuditKind::Message => "message",
+            AuditKind::Verdict => "verdict",
+            AuditKind::Window => "window",
         }
     }
 }

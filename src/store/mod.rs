@@ -22,7 +22,11 @@
 //! busy timeout rides out checkpoints.
 
 mod audit;
+mod check;
 mod findings;
+mod report;
+pub mod seal;
+mod verdicts;
 
 use std::cell::Cell;
 use std::collections::HashSet;
@@ -37,7 +41,12 @@ use crate::records::{Record, RecordError};
 use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
+pub use check::{SeriesReplay, StoredFit, StoredPoint};
 pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
+pub use report::{
+    ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,
+};
+pub use verdicts::{NewVerdict, RecordState, ReviewTarget, VerdictRow};
 
 /// Columns of a record row, in the order [`bind_record`] binds them.
 const INSERT_RECORD_HEAD: &str =
@@ -141,8 +150,8 @@ const INSERT_FIT_HEAD: &str = "INSERT INTO fits (id, series_id, version, trigger
     transform, non_detects, n, n_censored, level, slope, intercept, slope_se, intercept_se, slope_t,
     slope_p, slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
     theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note, records, robust_n,
-    origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit, x_min, x_max, significant) VALUES ";
-const FIT_COLUMNS: usize = 40;
+    origin, mean_x, mean_y, sxx, sxy, syy, sse, prev_fit, x_min, x_max, significant, window) VALUES ";
+const FIT_COLUMNS: usize = 41;
 const FIT_CHUNK: usize = 16;
 
 /// A fit row waiting in a [`FitBatch`].
@@ -166,6 +175,7 @@ struct PendingFit {
     prev_fit: Option<i64>,
     x_span: Option<(f64, f64)>,
     significant: bool,
+    window: Option<String>,
 }
 
 /// Fit rows queued for multi-row inserts within one transaction; flushed
@@ -235,6 +245,7 @@ fn bind_fit(
     put(&row.x_span.map(|s| s.0))?;
     put(&row.x_span.map(|s| s.1))?;
     put(&row.significant)?;
+    put(&row.window)?;
     debug_assert_eq!(i - base, FIT_COLUMNS);
     Ok(())
 }
@@ -309,6 +320,10 @@ const MIGRATIONS: &[(&str, &str)] = &[
     (
         "0002_findings",
         include_str!("../../migrations/0002_findings.sql"),
+    ),
+    (
+        "0003_verdicts",
+        include_str!("../../migrations/0003_verdicts.sql"),
     ),
 ];
 
@@ -427,6 +442,9 @@ pub struct SeriesRow {
     pub x_span: Option<(f64, f64)>,
     /// The trend's hysteresis state: taken as significant.
     pub significant: bool,
+    /// The analysis window of the current fit, in its stored text form
+    /// (None: all points).
+    pub window: Option<String>,
 }
 
 /// A stored record's current version, for duplicate and conflict checks.
@@ -505,6 +523,13 @@ pub struct FitHistoryRow {
     pub created_at: String,
     /// The file that triggered it.
     pub trigger_file: Option<String>,
+    /// The verdict that triggered it, with its finding and what it said.
+    pub trigger_verdict: Option<VerdictTrigger>,
+    /// The window change that triggered it: its id and where it came from
+    /// (`command` or `config`).
+    pub trigger_window: Option<(i64, String)>,
+    /// The analysis window of this version (None: all points).
+    pub window: Option<String>,
     /// Points in the fit.
     pub n: i64,
     /// Slope.
@@ -521,6 +546,17 @@ pub struct FitHistoryRow {
     pub theil_sen_slope: Option<f64>,
     /// Why something is absent.
     pub note: Option<String>,
+}
+
+/// A verdict that made a fit version.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct VerdictTrigger {
+    /// Verdict id.
+    pub id: i64,
+    /// The finding it closed or reopened.
+    pub finding: i64,
+    /// `confirmed`, `corrected`, `excluded` or `reverted`.
+    pub verdict: String,
 }
 
 /// One series in `status`.
@@ -578,9 +614,6 @@ pub struct FitPoint {
 pub struct Store {
     conn: Connection,
     path: PathBuf,
-    /// Hash of the newest audit entry, kept so that appending does not
-    /// query it each time; updated only when a transaction commits.
-    last_audit: Option<String>,
 }
 
 impl Store {
@@ -634,12 +667,7 @@ impl Store {
         conn.pragma_update(None, "wal_autocheckpoint", 20_000)
             .map_err(wrap)?;
         migrate(&mut conn, &path)?;
-        let last_audit = audit::last_hash(&conn).map_err(wrap)?;
-        Ok(Store {
-            conn,
-            path,
-            last_audit,
-        })
+        Ok(Store { conn, path })
     }
 
     fn wrap(&self) -> impl Fn(rusqlite::Error) -> StoreError + '_ {
@@ -684,27 +712,27 @@ impl Store {
                 path: path.clone(),
                 source,
             })?;
-        let pending = std::cell::RefCell::new(self.last_audit.clone());
-        let max_id = |table: &str| -> Result<i64> {
-            tx.query_row(
-                &format!("SELECT COALESCE(MAX(id), 0) FROM {table}"),
-                [],
-                |r| r.get(0),
-            )
-            .map_err(|source| StoreError::Sqlite {
-                path: path.clone(),
-                source,
-            })
-        };
-        let next_record = Cell::new(max_id("records")? + 1);
-        let next_fit = Cell::new(max_id("fits")? + 1);
+        // The newest audit entry is read inside the write transaction, never
+        // kept between transactions: the sender thread and the `review`
+        // command append entries from their own connections.
+        let last = audit::last_hash(&tx).map_err(|source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        })?;
+        let pending = std::cell::RefCell::new(last);
+        let first = seal::FirstIds::next(&tx).map_err(|source| StoreError::Sqlite {
+            path: path.clone(),
+            source,
+        })?;
+        let next_record = Cell::new(first.records);
+        let next_fit = Cell::new(first.fits);
         Ok(Tx {
             tx,
             path,
-            last_audit: &mut self.last_audit,
             pending_audit: pending,
             next_record,
             next_fit,
+            first,
         })
     }
 
@@ -771,9 +799,12 @@ impl Store {
                      SELECT f.prev_fit FROM chain c CROSS JOIN fits f ON f.id = c.id WHERE f.prev_fit IS NOT NULL
                  )
                  SELECT f.version, f.created_at, sf.name, f.n, f.slope, f.slope_ci_low, f.slope_ci_high,
-                        f.slope_p, f.r_squared, f.theil_sen_slope, f.note
+                        f.slope_p, f.r_squared, f.theil_sen_slope, f.note, v.id, v.finding_id, v.verdict,
+                        w.id, w.source, f.window
                  FROM chain c CROSS JOIN fits f ON f.id = c.id
                  LEFT JOIN source_files sf ON sf.id = f.trigger_file
+                 LEFT JOIN verdicts v ON v.id = f.trigger_verdict
+                 LEFT JOIN series_windows w ON w.id = f.trigger_window
                  ORDER BY f.version",
             )
             .map_err(self.wrap())?;
@@ -791,6 +822,19 @@ impl Store {
                     r_squared: r.get(8)?,
                     theil_sen_slope: r.get(9)?,
                     note: r.get(10)?,
+                    trigger_verdict: match (r.get(11)?, r.get(12)?, r.get(13)?) {
+                        (Some(id), Some(finding), Some(verdict)) => Some(VerdictTrigger {
+                            id,
+                            finding,
+                            verdict,
+                        }),
+                        _ => None,
+                    },
+                    trigger_window: match (r.get(14)?, r.get(15)?) {
+                        (Some(id), Some(source)) => Some((id, source)),
+                        _ => None,
+                    },
+                    window: r.get(16)?,
                 })
             })
             .map_err(self.wrap())?;
@@ -880,7 +924,6 @@ pub struct Totals {
 pub struct Tx<'a> {
     tx: Transaction<'a>,
     path: PathBuf,
-    last_audit: &'a mut Option<String>,
     pending_audit: std::cell::RefCell<Option<String>>,
     /// Row ids handed out for records and fits queued in this transaction.
     /// The writer holds the write lock from `begin`, so nobody else can
@@ -888,6 +931,9 @@ pub struct Tx<'a> {
     /// are written.
     next_record: Cell<i64>,
     next_fit: Cell<i64>,
+    /// The first ids this transaction can have written (bounds the seals'
+    /// queries to its own rows).
+    first: seal::FirstIds,
 }
 
 impl Tx<'_> {
@@ -982,6 +1028,7 @@ impl Tx<'_> {
             latest_record: None,
             x_span: None,
             significant: false,
+            window: None,
         })
     }
 
@@ -1222,6 +1269,7 @@ impl Tx<'_> {
             prev_fit: st.latest_fit,
             x_span: st.x_span,
             significant: st.significant,
+            window: st.window.clone(),
         });
         if batch.rows.len() >= FIT_CHUNK {
             self.flush_fits(batch)?;
@@ -1273,19 +1321,18 @@ impl Tx<'_> {
         Ok(())
     }
 
+    /// The seal of `scope` as it stands in this transaction, as the text
+    /// to append to the audit entry that vouches for it.
+    pub fn seal(&self, scope: seal::SealScope) -> Result<String> {
+        let hash = seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+        Ok(seal::seal_text(scope, &hash))
+    }
+
     /// Commits: everything of the file is durable when this returns.
     pub fn commit(self) -> Result<()> {
-        let Tx {
-            tx,
-            path,
-            last_audit,
-            pending_audit,
-            ..
-        } = self;
+        let Tx { tx, path, .. } = self;
         tx.commit()
-            .map_err(|source| StoreError::Sqlite { path, source })?;
-        *last_audit = pending_audit.into_inner();
-        Ok(())
+            .map_err(|source| StoreError::Sqlite { path, source })
     }
 }
 
@@ -1316,7 +1363,7 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
                 COALESCE(f.mean_x, 0), COALESCE(f.mean_y, 0), COALESCE(f.sxx, 0), COALESCE(f.sxy, 0),
                 COALESCE(f.syy, 0), COALESCE(f.sse, 0), COALESCE(f.version, 0), COALESCE(f.robust_n, 0),
                 f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0), s.latest_fit, s.latest_record,
-                f.x_min, f.x_max, COALESCE(f.significant, 0)
+                f.x_min, f.x_max, COALESCE(f.significant, 0), f.window
          FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
          WHERE s.key = ?1",
     )?
@@ -1349,6 +1396,7 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
                 _ => None,
             },
             significant: r.get(22)?,
+            window: r.get(23)?,
         })
     })
     .optional()
@@ -1356,6 +1404,23 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
 
 /// The in-fit points of a series, oldest first, by walking its record chain
 /// back from the record `head`.
+fn chain_rows(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(i64, f64, f64)>> {
+    let Some(head) = head else {
+        return Ok(Vec::new());
+    };
+    let mut stmt = conn.prepare_cached(
+        "WITH RECURSIVE chain(id) AS (
+             SELECT ?1
+             UNION ALL
+             SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
+         )
+         SELECT r.id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
+         WHERE r.status = 'current' AND r.in_fit = 1 AND r.excluded = 0 ORDER BY r.id",
+    )?;
+    let rows = stmt.query_map([head], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
+    rows.collect()
+}
+
 fn chain_points(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(String, f64, f64)>> {
     let Some(head) = head else {
         return Ok(Vec::new());
@@ -1367,7 +1432,7 @@ fn chain_points(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(S
              SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
          )
          SELECT r.record_id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
-         WHERE r.status = 'current' AND r.in_fit = 1 ORDER BY r.id",
+         WHERE r.status = 'current' AND r.in_fit = 1 AND r.excluded = 0 ORDER BY r.id",
     )?;
     let rows = stmt.query_map([head], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
     rows.collect()

@@ -1,0 +1,293 @@
+//! Gathering what a report shows: the series matching the pattern, each
+//! with its fit versions, records, findings and verdicts (read-only
+//! queries in `store/report.rs`), plus the labels derived from them.
+
+use std::collections::HashMap;
+
+use globset::Glob;
+
+use crate::stats::Transform;
+use crate::store::{
+    ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,
+    SeriesRowId, Store,
+};
+
+use super::ReportError;
+use super::band::LineStats;
+
+/// Everything of one series.
+#[derive(Debug, Clone)]
+pub struct SeriesData {
+    /// The series row.
+    pub row: ReportSeriesRow,
+    /// Fit versions, oldest first.
+    pub fits: Vec<ReportFitRow>,
+    /// Record versions, in storage order.
+    pub records: Vec<ReportRecordRow>,
+    /// Findings, oldest first.
+    pub findings: Vec<ReportFindingRow>,
+    /// Verdicts, oldest first.
+    pub verdicts: Vec<ReportVerdictRow>,
+}
+
+/// Everything a report shows.
+#[derive(Debug, Clone)]
+pub struct ReportData {
+    /// The series, by key.
+    pub series: Vec<SeriesData>,
+    /// Findings not tied to a series (files, feeds); only without a pattern.
+    pub loose_findings: Vec<ReportFindingRow>,
+    /// The pattern, as given.
+    pub pattern: Option<String>,
+}
+
+impl ReportData {
+    /// Findings listed in all.
+    pub fn finding_count(&self) -> usize {
+        self.loose_findings.len() + self.series.iter().map(|s| s.findings.len()).sum::<usize>()
+    }
+}
+
+/// Reads the series whose key matches `pattern` (all without one).
+pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, ReportError> {
+    let matcher = match pattern {
+        Some(p) => Some(
+            Glob::new(p)
+                .map_err(|e| ReportError::Pattern {
+                    pattern: p.to_string(),
+                    reason: e.kind().to_string(),
+                })?
+                .compile_matcher(),
+        ),
+        None => None,
+    };
+    let rows: Vec<ReportSeriesRow> = store
+        .report_series()?
+        .into_iter()
+        .filter(|s| matcher.as_ref().is_none_or(|m| m.is_match(&s.key)))
+        .collect();
+    let ids: Vec<SeriesRowId> = rows.iter().map(|s| s.id).collect();
+
+    let mut records: HashMap<SeriesRowId, Vec<ReportRecordRow>> = HashMap::new();
+    for r in store.report_records(&ids)? {
+        records.entry(r.series).or_default().push(r);
+    }
+    let mut findings: HashMap<SeriesRowId, Vec<ReportFindingRow>> = HashMap::new();
+    let mut loose_findings = Vec::new();
+    let filter = matcher.is_some().then_some(ids.as_slice());
+    for f in store.report_findings(filter)? {
+        match f.series {
+            Some(s) => findings.entry(s).or_default().push(f),
+            None => loose_findings.push(f),
+        }
+    }
+    let mut verdicts: HashMap<SeriesRowId, Vec<ReportVerdictRow>> = HashMap::new();
+    for v in store.report_verdicts(filter)? {
+        if let Some(s) = v.series {
+            verdicts.entry(s).or_default().push(v);
+        }
+    }
+    let mut series = Vec::with_capacity(rows.len());
+    for row in rows {
+        let fits = store.report_fits(row.id)?;
+        series.push(SeriesData {
+            fits,
+            records: records.remove(&row.id).unwrap_or_default(),
+            findings: findings.remove(&row.id).unwrap_or_default(),
+            verdicts: verdicts.remove(&row.id).unwrap_or_default(),
+            row,
+        });
+    }
+    Ok(ReportData {
+        series,
+        loose_findings,
+        pattern: pattern.map(str::to_string),
+    })
+}
+
+impl SeriesData {
+    /// The current fit version.
+    pub fn current_fit(&self) -> Option<&ReportFitRow> {
+        let id = self.row.latest_fit?;
+        self.fits.iter().rev().find(|f| f.id == id)
+    }
+
+    /// The series' transform (that of the current fit, else the series').
+    pub fn transform(&self) -> Transform {
+        self.current_fit()
+            .and_then(|f| Transform::from_name(&f.transform))
+            .or_else(|| Transform::from_name(&self.row.transform))
+            .unwrap_or_default()
+    }
+
+    /// The unit of y: the configured one, else the usual one of its records.
+    pub fn unit(&self) -> Option<&str> {
+        self.row
+            .unit
+            .as_deref()
+            .or(self.row.record_unit.as_deref())
+            .filter(|u| !u.trim().is_empty())
+    }
+
+    /// Whether x reads as decimal years: every recorded x between 1800
+    /// and 2200 (the same reading the findings use for their wording).
+    pub fn x_is_year(&self) -> bool {
+        !self.records.is_empty()
+            && self
+                .records
+                .iter()
+                .all(|r| (1800.0..=2200.0).contains(&r.x))
+    }
+
+    /// Labels for axes and slopes.
+    pub fn labels(&self) -> Labels {
+        labels(self.transform(), self.unit(), self.x_is_year())
+    }
+}
+
+/// What the numbers of a series are in.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Labels {
+    /// The x axis.
+    pub x_axis: String,
+    /// The y axis.
+    pub y_axis: String,
+    /// The unit of the slope.
+    pub slope_unit: String,
+    /// The unit of y on the fitted scale (for intercepts and levels).
+    pub y_unit: String,
+    /// The fitted scale in words.
+    pub scale: String,
+}
+
+/// Axis and slope labels for a transform, a unit of y and the kind of x.
+pub fn labels(transform: Transform, unit: Option<&str>, x_is_year: bool) -> Labels {
+    let unit = unit.unwrap_or("unit not stated");
+    let per_x = if x_is_year {
+        "per year"
+    } else {
+        "per unit of x"
+    };
+    let x_plain = if x_is_year {
+        "Year (decimal)".to_string()
+    } else {
+        "x (as recorded)".to_string()
+    };
+    let x_log = if x_is_year {
+        "ln year".to_string()
+    } else {
+        "ln x (x as recorded)".to_string()
+    };
+    match transform {
+        Transform::None => Labels {
+            x_axis: x_plain,
+            y_axis: format!("Concentration ({unit})"),
+            slope_unit: format!("{unit} {per_x}"),
+            y_unit: unit.to_string(),
+            scale: "y on x (no transform)".into(),
+        },
+        Transform::LogY => Labels {
+            x_axis: x_plain,
+            y_axis: format!("ln concentration (concentration in {unit})"),
+            slope_unit: format!("ln({unit}) {per_x}"),
+            y_unit: format!("ln({unit})"),
+            scale: "ln y on x".into(),
+        },
+        Transform::LogX => Labels {
+            x_axis: x_log,
+            y_axis: format!("Concentration ({unit})"),
+            slope_unit: format!("{unit} per unit of ln x"),
+            y_unit: unit.to_string(),
+            scale: "y on ln x".into(),
+        },
+        Transform::LogLog => Labels {
+            x_axis: x_log,
+            y_axis: format!("ln concentration (concentration in {unit})"),
+            slope_unit: "power-law exponent (ln y per ln x)".into(),
+            y_unit: format!("ln({unit})"),
+            scale: "ln y on ln x".into(),
+        },
+    }
+}
+
+/// The band figures of a fit version, when it has a line.
+pub fn line_stats(f: &ReportFitRow) -> Option<LineStats> {
+    Some(LineStats {
+        n: f.n as f64,
+        df: f.df? as f64,
+        level: f.level,
+        slope: f.slope?,
+        residual_sd: f.residual_sd?,
+        origin: f.origin,
+        mean_x_shifted: f.mean_x_shifted,
+        mean_y: f.mean_y,
+        sxx: f.sxx,
+    })
+}
+
+/// A fit as stored inside a finding's `detail` (`fit_with`, `fit_without`).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct DetailFit {
+    /// Points.
+    pub n: Option<i64>,
+    /// Slope.
+    pub slope: Option<f64>,
+    /// Interval.
+    pub ci_low: Option<f64>,
+    /// Interval.
+    pub ci_high: Option<f64>,
+    /// Two-sided p.
+    pub p: Option<f64>,
+    /// Intercept at x = 0.
+    pub intercept: Option<f64>,
+}
+
+/// The fit under `key` in a finding's detail, when present.
+pub fn detail_fit(detail: &serde_json::Value, key: &str) -> Option<DetailFit> {
+    let f = detail.get(key)?.as_object()?;
+    let num = |k: &str| f.get(k).and_then(serde_json::Value::as_f64);
+    Some(DetailFit {
+        n: f.get("n").and_then(serde_json::Value::as_i64),
+        slope: num("slope"),
+        ci_low: num("slope_ci_low"),
+        ci_high: num("slope_ci_high"),
+        p: num("slope_p"),
+        intercept: num("intercept"),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+
+    #[test]
+    fn labels_name_the_scale_and_the_unit() {
+        let l = labels(Transform::None, Some("mg/L"), true);
+        assert_eq!(l.x_axis, "Year (decimal)");
+        assert_eq!(l.y_axis, "Concentration (mg/L)");
+        assert_eq!(l.slope_unit, "mg/L per year");
+        let l = labels(Transform::LogY, Some("mg/kg"), false);
+        assert_eq!(l.y_axis, "ln concentration (concentration in mg/kg)");
+        assert_eq!(l.slope_unit, "ln(mg/kg) per unit of x");
+        let l = labels(Transform::LogLog, None, false);
+        assert_eq!(l.x_axis, "ln x (x as recorded)");
+        assert_eq!(l.y_unit, "ln(unit not stated)");
+    }
+
+    #[test]
+    fn detail_fits_are_read_and_absent_ones_are_none() {
+        let d = serde_json::json!({
+            "fit_with": {"n": 21, "slope": 3.02, "slope_ci_low": -0.37, "slope_ci_high": 6.41,
+                         "slope_p": 0.0775, "intercept": -6071.2},
+            "fit_without": null
+        });
+        let w = detail_fit(&d, "fit_with").unwrap();
+        assert_eq!(w.n, Some(21));
+        assert_eq!(w.slope, Some(3.02));
+        assert_eq!(w.ci_low, Some(-0.37));
+        assert_eq!(w.p, Some(0.0775));
+        assert!(detail_fit(&d, "fit_without").is_none());
+        assert!(detail_fit(&d, "fit_before").is_none());
+    }
+}

@@ -1,0 +1,151 @@
+//! Reports of how each trend came to be: one self-contained HTML file
+//! (inline SVG, no external assets) or CSV exports of fits, findings and
+//! verdicts. Read-only: a report never writes to the store.
+//!
+//! Layout:
+//! - `data`: gathers the series matching the pattern and everything of
+//!   each (read-only queries in `store/report.rs`), and derives labels.
+//! - `html` and `svg`: the page and its inline charts.
+//! - `csv_export`: the three CSV files.
+//! - `band`, `format`, `escape`: pure helpers (the confidence band for the
+//!   mean, numbers for people, HTML and spreadsheet escaping), unit-tested.
+//!
+//! Data from files (series keys, record ids, notes, units, file names,
+//! verdict notes, finding summaries) is escaped wherever it lands in the
+//! page, SVG text included, and the page's Content-Security-Policy forbids
+//! scripts besides. CSV text cells are neutralised against formula
+//! injection; numbers are written as numbers.
+
+mod band;
+mod csv_export;
+mod data;
+mod escape;
+mod format;
+mod html;
+mod svg;
+
+use std::io::Write as _;
+use std::path::{Path, PathBuf};
+
+use crate::store::Store;
+
+pub use band::{BandPoint, LineStats, mean_band};
+pub use csv_export::paths as csv_paths;
+pub use escape::{html as escape_html, spreadsheet_text};
+
+/// The output format of `slopewarden report`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ReportFormat {
+    /// One self-contained HTML file.
+    Html,
+    /// CSV exports (fits, findings, verdicts), safe against formula injection.
+    Csv,
+}
+
+/// What a written report holds, for the command's summary line.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub struct ReportSummary {
+    /// Series included.
+    pub series: usize,
+    /// Findings listed.
+    pub findings: usize,
+    /// Files written.
+    pub files: Vec<std::path::PathBuf>,
+}
+
+/// Why a report could not be written.
+#[derive(Debug, thiserror::Error)]
+pub enum ReportError {
+    /// Reading the store failed.
+    #[error(transparent)]
+    Store(#[from] crate::store::StoreError),
+    /// Writing the output failed.
+    #[error("cannot write {path}: {source}")]
+    Write {
+        /// The file.
+        path: std::path::PathBuf,
+        /// Why.
+        source: std::io::Error,
+    },
+    /// The series pattern is not a valid glob.
+    #[error("`{pattern}` is not a valid series pattern: {reason}")]
+    Pattern {
+        /// As given.
+        pattern: String,
+        /// Why.
+        reason: String,
+    },
+}
+
+/// Writes the report of the series matching `pattern` (a glob on the
+/// series key; all series without one) to `out`. `generated_at` is the
+/// RFC 3339 time printed on the report (the caller's clock).
+///
+/// HTML: one file at `out`. CSV: three files derived from `out` (see
+/// [`csv_paths`]): `trend.csv` gives `trend-fits.csv`, `trend-findings.csv`
+/// and `trend-verdicts.csv`. Each file is written beside its final name
+/// and renamed into place, so a reader never sees half a report.
+pub fn write_report(
+    store: &Store,
+    pattern: Option<&str>,
+    format: ReportFormat,
+    out: &Path,
+    generated_at: &str,
+) -> Result<ReportSummary, ReportError> {
+    let data = data::gather(store, pattern)?;
+    let mut summary = ReportSummary {
+        series: data.series.len(),
+        findings: data.finding_count(),
+        files: Vec::new(),
+    };
+    match format {
+        ReportFormat::Html => {
+            let page = html::render(&data, generated_at);
+            write_atomically(out, page.as_bytes())?;
+            summary.files.push(out.to_path_buf());
+        }
+        ReportFormat::Csv => {
+            let tables = [
+                csv_export::fits(&data),
+                csv_export::findings(&data),
+                csv_export::verdicts(&data),
+            ];
+            for (path, table) in csv_export::paths(out).into_iter().zip(tables.iter()) {
+                let bytes = csv_export::to_bytes(table).map_err(|e| ReportError::Write {
+                    path: path.clone(),
+                    source: std::io::Error::other(e.to_string()),
+                })?;
+                write_atomically(&path, &bytes)?;
+                summary.files.push(path);
+            }
+        }
+    }
+    Ok(summary)
+}
+
+/// Writes `bytes` to a temporary file beside `path`, syncs it and renames
+/// it over `path`.
+fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), ReportError> {
+    let err = |source| ReportError::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    let name = path
+        .file_name()
+        .ok_or_else(|| err(std::io::Error::other("the output path names no file")))?;
+    let mut tmp_name = std::ffi::OsString::from(".");
+    tmp_name.push(name);
+    tmp_name.push(format!(".{}.tmp", std::process::id()));
+    let tmp: PathBuf = path.with_file_name(tmp_name);
+    let result = std::fs::File::create(&tmp)
+        .and_then(|mut f| {
+            f.write_all(bytes)?;
+            f.sync_all()
+        })
+        .and_then(|()| std::fs::rename(&tmp, path));
+    if let Err(e) = result {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(err(e));
+    }
+    Ok(())
+}

@@ -1,0 +1,297 @@
+//! `slopewarden show`: one finding for a person at a terminal, from what
+//! the finding stored when it was raised (its numbers, cutoffs, fits with
+//! and without the record, ranked causes) and its verdict log.
+
+use std::fmt::Write;
+
+use serde_json::Value;
+
+use crate::raise::CAUTION;
+use crate::store::{FindingRow, VerdictRow};
+
+fn num(v: &Value) -> String {
+    match v.as_f64() {
+        Some(x) if x != 0.0 && (x.abs() < 1e-3 || x.abs() >= 1e6) => format!("{x:.4e}"),
+        Some(x) => format!("{}", (x * 1e4).round() / 1e4),
+        None => "-".into(),
+    }
+}
+
+fn p_text(v: &Value) -> String {
+    v.as_f64()
+        .map_or("undefined".into(), |p| format!("{p:.3e}"))
+}
+
+fn fit_line(label: &str, f: &Value) -> String {
+    if f.is_null() {
+        return format!("  {label:<8} no fit\n");
+    }
+    format!(
+        "  {label:<8} slope {} [{}, {}]  p = {}  n = {}  intercept {}\n",
+        num(&f["slope"]),
+        num(&f["slope_ci_low"]),
+        num(&f["slope_ci_high"]),
+        p_text(&f["slope_p"]),
+        f["n"],
+        num(&f["intercept"])
+    )
+}
+
+/// The finding as text, with its verdicts.
+pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
+    let d = &f.detail;
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "finding {}  [{}]  {}  status: {}",
+        f.id,
+        f.kinds.join(", "),
+        f.severity,
+        f.status
+    );
+    let _ = writeln!(o, "{}", f.summary);
+    let _ = writeln!(
+        o,
+        "series {}  raised {}{}{}",
+        f.series.as_deref().unwrap_or("-"),
+        f.created_at,
+        f.file
+            .as_ref()
+            .map_or(String::new(), |n| format!("  from file {n}")),
+        f.fit_version
+            .map_or(String::new(), |v| format!("  on fit version {v}"))
+    );
+    let r = &d["record"];
+    if r.is_object() {
+        let _ = writeln!(
+            o,
+            "\nrecord {}  ({} line {})\n  x = {}  y = {} {}{}",
+            r["id"].as_str().unwrap_or("?"),
+            r["file"].as_str().unwrap_or("?"),
+            r["line"],
+            num(&r["x"]),
+            num(&r["y"]),
+            r["unit"].as_str().unwrap_or(""),
+            if r["censored"].as_bool() == Some(true) {
+                "  (non-detect: the value is the reporting limit)"
+            } else {
+                ""
+            }
+        );
+    }
+    if let Some(ms) = d["measures"].as_array().filter(|m| !m.is_empty()) {
+        let _ = writeln!(
+            o,
+            "\nmeasures (judged against {})",
+            d["judged_against"]
+                .as_str()
+                .unwrap_or("the fit before the record")
+        );
+        for m in ms {
+            let _ = writeln!(
+                o,
+                "  {} {:<52} {:>12}  cutoff {:>10}  {}",
+                if m["crossed"].as_bool() == Some(true) {
+                    "!"
+                } else {
+                    " "
+                },
+                m["measure"].as_str().unwrap_or(""),
+                num(&m["value"]),
+                num(&m["cutoff"]),
+                m["source"].as_str().unwrap_or("")
+            );
+        }
+        let _ = writeln!(o, "  (! marks a cutoff crossed)");
+    }
+    if d.get("fit_with").is_some() || d.get("fit_without").is_some() {
+        let scale = d["transform"].as_str().filter(|t| *t != "none");
+        let _ = writeln!(
+            o,
+            "\nthe fit with and without the record{}",
+            scale.map_or(String::new(), |t| format!(" ({t} scale)"))
+        );
+        o.push_str(&fit_line("with", &d["fit_with"]));
+        o.push_str(&fit_line("without", &d["fit_without"]));
+    }
+    if d.get("fit_before").is_some() || d.get("fit_after").is_some() {
+        if let Some(c) = d["change"].as_str() {
+            let _ = writeln!(o, "\n{c}");
+        }
+        if let Some(r) = d["rule"].as_str() {
+            let _ = writeln!(o, "rule: {r}");
+        }
+        let _ = writeln!(o, "\nthe fit before and after");
+        o.push_str(&fit_line("before", &d["fit_before"]));
+        o.push_str(&fit_line("after", &d["fit_after"]));
+        if let Some(r) = d["newest_record"].as_str() {
+            let _ = writeln!(
+                o,
+                "  newest record {r}{}",
+                match d["caused_by_newest_record"].as_bool() {
+                    Some(true) => ": without it, the change would not happen",
+                    Some(false) => ": the change does not hinge on it alone",
+                    None => "",
+                }
+            );
+        }
+    }
+    if let Some(rows) = d["rows"].as_array().filter(|r| !r.is_empty()) {
+        let _ = writeln!(o, "\nrows set aside");
+        for r in rows {
+            let _ = writeln!(
+                o,
+                "  line {} column {} ({}), record {}: {}",
+                r["line"],
+                r["column"],
+                r["field"].as_str().unwrap_or("-"),
+                r["record_id"].as_str().unwrap_or("-"),
+                r["reason"].as_str().unwrap_or("")
+            );
+        }
+    }
+    let rb = &d["robust"];
+    if rb.is_object() {
+        let _ = writeln!(
+            o,
+            "  robust   Theil-Sen slope {} [{}, {}]",
+            num(&rb["theil_sen_slope"]),
+            num(&rb["ci_low"]),
+            num(&rb["ci_high"])
+        );
+    }
+    if let Some(nd) = d["non_detects"].as_str() {
+        let _ = writeln!(o, "  non-detects: {nd}");
+    }
+    if let Some(cs) = d["causes"].as_array().filter(|c| !c.is_empty()) {
+        let _ = writeln!(
+            o,
+            "\nlikely entry errors to check, most plausible first (scored against the fit without the record; nothing is corrected automatically)"
+        );
+        for (i, c) in cs.iter().enumerate() {
+            let _ = writeln!(
+                o,
+                "  {}. {}  (prediction t {}, p {})",
+                i + 1,
+                c["label"].as_str().unwrap_or(""),
+                num(&c["prediction_t"]),
+                p_text(&c["p"])
+            );
+        }
+    }
+    if let Some(a) = d["sampling_advice"].as_object() {
+        let _ = writeln!(o, "\nsampling advice");
+        for (k, v) in a {
+            let _ = writeln!(o, "  {k}: {v}");
+        }
+    }
+    let _ = writeln!(o, "\nverdicts");
+    if verdicts.is_empty() {
+        let _ = writeln!(o, "  none yet");
+    }
+    for v in verdicts {
+        let _ = writeln!(
+            o,
+            "  {}  verdict {}: {}{}{} by {}: {}",
+            v.at,
+            v.id,
+            v.verdict,
+            v.value.map_or(String::new(), |x| format!(" to {x}")),
+            v.reverts.map_or(String::new(), |w| format!(" verdict {w}")),
+            v.by,
+            v.note
+        );
+    }
+    if f.status == "open" && !r.is_object() {
+        let _ = writeln!(
+            o,
+            "\nthis finding concerns no single record; once it has been looked into:\n  slopewarden review {} --verdict confirmed --note \"...\"",
+            f.id
+        );
+    } else if f.status == "open" {
+        let _ = writeln!(
+            o,
+            "\nafter checking the record (field sheet, chain of custody, lab report):\n  slopewarden review {id} --verdict confirmed --note \"...\"\n  slopewarden review {id} --verdict corrected --value V --note \"...\"\n  slopewarden review {id} --verdict excluded --note \"...\"",
+            id = f.id
+        );
+    } else {
+        let _ = writeln!(
+            o,
+            "\nto undo the verdict: slopewarden review {} --revert --note \"...\"",
+            f.id
+        );
+    }
+    let _ = writeln!(o, "\n{CAUTION}");
+    o
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    fn row(status: &str, detail: Value) -> FindingRow {
+        FindingRow {
+            id: 7,
+            series: Some("MW-2/boron".into()),
+            record_ids: vec!["Q-17".into()],
+            kinds: vec!["outlier".into()],
+            severity: "warning".into(),
+            status: status.into(),
+            created_at: "2026-03-01T00:00:00Z".into(),
+            file: Some("march.csv".into()),
+            fit_version: Some(4),
+            summary: "record Q-17 in MW-2/boron: outlier".into(),
+            detail,
+        }
+    }
+
+    #[test]
+    fn a_record_finding_shows_its_numbers_fits_causes_and_how_to_answer() {
+        let d = json!({
+            "record": {"id": "Q-17", "file": "march.csv", "line": 12, "x": 2025.5, "y": 41.0, "unit": "mg/L", "censored": false},
+            "measures": [{"kind": "outlier", "measure": "prediction t", "value": 9.5, "cutoff": 4.2, "crossed": true, "source": "t(1 - 0.001/2, 20)"}],
+            "fit_with": {"slope": 0.5, "slope_ci_low": 0.1, "slope_ci_high": 0.9, "slope_p": 0.02, "n": 23, "intercept": 1.0},
+            "fit_without": {"slope": 0.1, "slope_ci_low": -0.1, "slope_ci_high": 0.3, "slope_p": 0.3, "n": 22, "intercept": 1.0},
+            "causes": [{"label": "decimal point slipped 1 place: 4.1 mg/L instead of 41 mg/L", "prediction_t": 0.3, "p": 0.76, "y": 4.1}],
+        });
+        let open = describe_finding(&row("open", d.clone()), &[]);
+        for want in [
+            "record Q-17  (march.csv line 12)",
+            "! prediction t",
+            "with     slope 0.5 [0.1, 0.9]",
+            "without  slope 0.1",
+            "1. decimal point slipped",
+            "--verdict corrected --value V",
+            "not a compliance determination",
+        ] {
+            assert!(open.contains(want), "missing `{want}` in:\n{open}");
+        }
+        let v = VerdictRow {
+            id: 3,
+            finding: 7,
+            verdict: "corrected".into(),
+            record_row: Some(17),
+            new_record_row: Some(90),
+            value: Some(4.1),
+            reverts: None,
+            note: "lab report".into(),
+            by: "A. Ruiz".into(),
+            at: "2026-03-02T00:00:00Z".into(),
+        };
+        let closed = describe_finding(&row("corrected", d), &[v]);
+        assert!(
+            closed.contains("verdict 3: corrected to 4.1 by A. Ruiz: lab report"),
+            "{closed}"
+        );
+        assert!(closed.contains("--revert"), "{closed}");
+        assert!(!closed.contains("--verdict excluded"), "{closed}");
+    }
+
+    #[test]
+    fn a_finding_without_a_record_offers_only_confirmed() {
+        let text = describe_finding(&row("open", json!({"change": "the trend reversed"})), &[]);
+        assert!(text.contains("--verdict confirmed"), "{text}");
+        assert!(!text.contains("--verdict excluded"), "{text}");
+    }
+}

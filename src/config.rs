@@ -177,6 +177,15 @@ pub struct Config {
     pub mail: MailSettings,
     /// Thresholds of the finding rules.
     pub findings: Thresholds,
+    /// Where the settings came from (None: built-in defaults) and the
+    /// SHA-256 of the text, so that a change is recorded in the audit
+    /// trail when `run` or `ingest` starts.
+    pub origin: (Option<PathBuf>, String),
+}
+
+fn text_sha256(text: &str) -> String {
+    use sha2::Digest;
+    hex::encode(sha2::Sha256::digest(text.as_bytes()))
 }
 
 /// How findings reach people.
@@ -319,7 +328,9 @@ impl Config {
             .parent()
             .filter(|p| !p.as_os_str().is_empty())
             .unwrap_or(Path::new("."));
-        Config::from_toml(&text, base)
+        let mut config = Config::from_toml(&text, base)?;
+        config.origin.0 = Some(path.to_path_buf());
+        Ok(config)
     }
 
     /// Validates TOML text; relative paths are taken from `base`.
@@ -337,7 +348,9 @@ impl Config {
                 message: format!("not valid TOML: {}", e.message()),
             }]
         })?;
-        Config::from_table(&table, base)
+        let mut config = Config::from_table(&table, base)?;
+        config.origin.1 = text_sha256(text);
+        Ok(config)
     }
 
     fn from_table(t: &Table, base: &Path) -> Result<Config, Vec<ConfigProblem>> {
@@ -519,6 +532,7 @@ impl Config {
             canonical: Layout::default(),
             mail,
             findings,
+            origin: (None, text_sha256("")),
         })
     }
 

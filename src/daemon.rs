@@ -109,6 +109,36 @@ pub fn run(
     })
 }
 
+/// Records the settings in force in the audit trail when they differ from
+/// the last recorded (a first start, or an edited configuration file).
+fn record_config(config: &Config, store: &mut Store) -> Result<(), DaemonError> {
+    let (file, hash) = &config.origin;
+    let last = store.last_audit_detail(AuditKind::Config)?;
+    if last
+        .as_deref()
+        .and_then(|d| d.strip_prefix("sha256 "))
+        .and_then(|d| d.get(..64))
+        == Some(hash.as_str())
+    {
+        return Ok(());
+    }
+    let from = file.as_ref().map_or_else(
+        || "the built-in defaults".to_string(),
+        |p| p.display().to_string(),
+    );
+    store.audit(
+        &crate::clock::rfc3339(SystemTime::now()),
+        AuditKind::Config,
+        &from,
+        &format!(
+            "sha256 {hash}; settings in force from now on: {from}{}",
+            if last.is_some() { " (changed)" } else { "" }
+        ),
+    )?;
+    info!(config = %from, "settings recorded in the audit trail");
+    Ok(())
+}
+
 /// Records and refits the series whose configured analysis window changed
 /// since their last fit (a changed configuration takes effect at start-up).
 fn apply_config_windows(config: &Config, store: &mut Store) -> Result<(), DaemonError> {
@@ -189,6 +219,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
         "daemon",
         &format!("started; watching {}", config.inbox.display()),
     )?;
+    record_config(config, store)?;
     apply_config_windows(config, store)?;
     info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
     let mut settler = Settler::new(config.settle);
@@ -335,6 +366,7 @@ pub fn ingest_paths(
     stop: &AtomicBool,
     mut progress: impl FnMut(usize, usize, &Path, &Result<Outcome, PipelineError>),
 ) -> Result<RunTotals, DaemonError> {
+    record_config(config, store)?;
     apply_config_windows(config, store)?;
     let mut files: Vec<(Candidate, bool)> = Vec::new();
     for p in paths {

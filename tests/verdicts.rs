@@ -694,3 +694,33 @@ fn an_analysis_window_set_by_command_or_in_the_configuration_is_audited_and_refi
     );
     assert_eq!(code, Some(5), "{out}");
 }
+
+#[test]
+fn the_settings_in_force_are_recorded_in_the_audit_trail_when_they_change() {
+    let site = Site::new();
+    site.deliver("2026-03-bench.csv", &norris_file());
+    site.deliver("2026-04-bench.csv", &typo_file());
+    let config_entries = || -> Vec<String> {
+        site.db()
+            .prepare("SELECT detail FROM audit_log WHERE kind = 'config' ORDER BY id")
+            .unwrap()
+            .query_map([], |r| r.get(0))
+            .unwrap()
+            .collect::<Result<_, _>>()
+            .unwrap()
+    };
+    // Two runs with the same file: recorded once.
+    assert_eq!(config_entries().len(), 1);
+    let config = site.path("slopewarden.toml");
+    let mut text = std::fs::read_to_string(&config).unwrap();
+    text.push_str("\n[findings]\noutlier_alpha = 0.0005\n");
+    std::fs::write(&config, &text).unwrap();
+    site.deliver(
+        "2026-05-bench.csv",
+        &format!("record_id,series,x,y,unit\nLB-050,{SERIES},300,300.2,ppb\n"),
+    );
+    let entries = config_entries();
+    assert_eq!(entries.len(), 2, "{entries:?}");
+    assert!(entries[1].contains("(changed)"), "{entries:?}");
+    assert!(site.ok(&["verify"]).contains("intact"));
+}

@@ -30,6 +30,8 @@ pub enum AuditKind {
     Verdict,
     /// A series' analysis window changed.
     Window,
+    /// The settings in force changed (recorded at start-up).
+    Config,
 }
 
 impl AuditKind {
@@ -46,6 +48,7 @@ impl AuditKind {
             AuditKind::Message => "message",
             AuditKind::Verdict => "verdict",
             AuditKind::Window => "window",
+            AuditKind::Config => "config",
         }
     }
 }
@@ -112,6 +115,16 @@ pub(super) fn append(
     )?
     .execute(params![at, kind.as_str(), subject, detail, prev, hash])?;
     Ok(hash)
+}
+
+/// The detail of the newest entry of a kind.
+pub(super) fn last_detail_of(
+    conn: &Connection,
+    kind: AuditKind,
+) -> rusqlite::Result<Option<String>> {
+    conn.prepare_cached("SELECT detail FROM audit_log WHERE kind = ?1 ORDER BY id DESC LIMIT 1")?
+        .query_row([kind.as_str()], |r| r.get(0))
+        .optional()
 }
 
 pub(super) fn entries(conn: &Connection) -> rusqlite::Result<Vec<AuditEntry>> {

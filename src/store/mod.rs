@@ -897,6 +897,11 @@ impl Store {
             .map_err(self.wrap())
     }
 
+    /// The detail of the newest audit entry of a kind.
+    pub fn last_audit_detail(&self, kind: AuditKind) -> Result<Option<String>> {
+        audit::last_detail_of(&self.conn, kind).map_err(self.wrap())
+    }
+
     /// Every audit entry, oldest first.
     pub fn audit_entries(&self) -> Result<Vec<AuditEntry>> {
         audit::entries(&self.conn).map_err(self.wrap())

@@ -471,6 +471,8 @@ struct Touched {
     window: Option<(Window, Window)>,
     /// With a window: the points inside it, in arrival order.
     window_points: std::collections::VecDeque<(f64, f64)>,
+    /// The series' newest record before this file.
+    head_before: Option<i64>,
 }
 
 /// A record the rules flagged, waiting for the file's fits.
@@ -587,6 +589,7 @@ fn store_file(
                     log_state(&points)
                 }
             };
+            let head_before = row.latest_record;
             touched.insert(
                 key.to_string(),
                 Touched {
@@ -602,6 +605,7 @@ fn store_file(
                     log,
                     window,
                     window_points,
+                    head_before,
                 },
             );
             order.push(key.to_string());
@@ -826,9 +830,9 @@ fn store_file(
             counts.same += 1;
         }
     }
-    tx.flush_records(&mut batch)?;
-    // Robust slopes first: gather the series due for one and compute
-    // them, then write the fit rows.
+    // Robust slopes first: gather the series due for one, compute them on
+    // a second thread while the file's last records are written, then
+    // write the fit rows.
     let mut due: Vec<&str> = Vec::new();
     let mut windowed: Vec<(&str, Vec<(f64, f64)>)> = Vec::new();
     for key in &order {
@@ -858,10 +862,14 @@ fn store_file(
                 e.into_mut().append(&mut t.new_points);
             }
             std::collections::hash_map::Entry::Vacant(e) => {
-                // Read back inside the transaction: this file's points are
-                // already there.
-                t.new_points.clear();
-                e.insert(tx.fit_points(&t.row)?);
+                // The points stored before this file, then this file's.
+                let mut points: Vec<(f64, f64)> = tx
+                    .fit_points_with_rows(t.head_before)?
+                    .into_iter()
+                    .map(|(_, x, y)| (x, y))
+                    .collect();
+                points.append(&mut t.new_points);
+                e.insert(points);
             }
         }
         due.push(key);
@@ -873,7 +881,16 @@ fn store_file(
             .filter_map(|k| cache.points.get(*k).map(|p| (*k, p.as_slice())))
             .chain(windowed.iter().map(|(k, p)| (*k, p.as_slice())))
             .collect();
-        for (key, r) in robust_rows(&jobs, config.level) {
+        let level = config.level;
+        let rows = std::thread::scope(|scope| -> Result<_, PipelineError> {
+            let worker = (!jobs.is_empty()).then(|| scope.spawn(|| robust_rows(&jobs, level)));
+            tx.flush_records(&mut batch)?;
+            Ok(match worker {
+                Some(w) => w.join().unwrap_or_else(|e| std::panic::resume_unwind(e)),
+                None => Vec::new(),
+            })
+        })?;
+        for (key, r) in rows {
             robust_of.insert(key, r);
             cache
                 .robust

@@ -307,30 +307,34 @@ fn feed_row(
     from: usize,
     columns: usize,
 ) -> rusqlite::Result<()> {
-    h.update(b"R");
+    // One update per row: the hash's per-call overhead dominated when
+    // each column was fed on its own.
+    let mut buf: Vec<u8> = Vec::with_capacity(512);
+    buf.push(b'R');
     for i in from..columns {
         match row.get_ref(i)? {
-            ValueRef::Null => h.update(b"N"),
+            ValueRef::Null => buf.push(b'N'),
             ValueRef::Integer(v) => {
-                h.update(b"I");
-                h.update(v.to_le_bytes());
+                buf.push(b'I');
+                buf.extend_from_slice(&v.to_le_bytes());
             }
             ValueRef::Real(v) => {
-                h.update(b"F");
-                h.update(v.to_bits().to_le_bytes());
+                buf.push(b'F');
+                buf.extend_from_slice(&v.to_bits().to_le_bytes());
             }
             ValueRef::Text(t) => {
-                h.update(b"T");
-                h.update((t.len() as u64).to_le_bytes());
-                h.update(t);
+                buf.push(b'T');
+                buf.extend_from_slice(&(t.len() as u64).to_le_bytes());
+                buf.extend_from_slice(t);
             }
             ValueRef::Blob(b) => {
-                h.update(b"B");
-                h.update((b.len() as u64).to_le_bytes());
-                h.update(b);
+                buf.push(b'B');
+                buf.extend_from_slice(&(b.len() as u64).to_le_bytes());
+                buf.extend_from_slice(b);
             }
         }
     }
+    h.update(&buf);
     Ok(())
 }
 

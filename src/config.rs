@@ -181,6 +181,15 @@ pub struct Config {
     /// SHA-256 of the text, so that a change is recorded in the audit
     /// trail when `run` or `ingest` starts.
     pub origin: (Option<PathBuf>, String),
+    /// The local read-only HTTP surface, when `[http] listen` is set.
+    pub http: Option<HttpSettings>,
+}
+
+/// The read-only HTTP surface (`[http]`).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct HttpSettings {
+    /// Address and port to listen on; loopback unless `allow_remote`.
+    pub listen: std::net::SocketAddr,
 }
 
 fn text_sha256(text: &str) -> String {
@@ -491,6 +500,28 @@ impl Config {
         }
         let mail = w.mail(t, &resolve);
         let findings = w.findings(t);
+        let http = w.table(t, "http").and_then(|h| {
+            w.known(h, "http", &["listen", "allow_remote"]);
+            let allow_remote = w.boolean(h, "http", "allow_remote").unwrap_or(false);
+            let listen = w.string(h, "http", "listen")?;
+            match listen.parse::<std::net::SocketAddr>() {
+                Ok(a) if a.ip().is_loopback() || allow_remote => Some(HttpSettings { listen: a }),
+                Ok(a) => {
+                    w.problem(
+                        "http.listen",
+                        format!("{a} is not a loopback address; the page shows monitoring data, so write 127.0.0.1:PORT, or set allow_remote = true if it must be reachable from other machines"),
+                    );
+                    None
+                }
+                Err(_) => {
+                    w.problem(
+                        "http.listen",
+                        format!("`{listen}` is not an address and port; write for example \"127.0.0.1:8787\""),
+                    );
+                    None
+                }
+            }
+        });
         let mut defaults = defaults;
         defaults.findings = findings;
 
@@ -533,6 +564,7 @@ impl Config {
             mail,
             findings,
             origin: (None, text_sha256("")),
+            http,
         })
     }
 

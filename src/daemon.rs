@@ -102,6 +102,14 @@ pub fn run(
     let mut sender_store = Store::open(store.path())?;
     std::thread::scope(|scope| {
         scope.spawn(|| send_until_stopped(config, &mut sender_store, mailer.as_ref(), stop));
+        if let Some(http) = &config.http {
+            let database = store.path().to_path_buf();
+            scope.spawn(move || {
+                if let Err(e) = crate::http::serve(http, &database, stop) {
+                    error!(error = %e, "the HTTP surface is not available");
+                }
+            });
+        }
         let result = watch(config, store, stop);
         // Make sure the sender stops even when watching failed.
         stop.store(true, Ordering::SeqCst);

@@ -16,6 +16,7 @@ pub mod clock;
 pub mod config;
 pub mod daemon;
 pub mod findings;
+pub mod http;
 pub mod fitreport;
 pub mod inbox;
 pub mod messages;

@@ -15,6 +15,7 @@
 pub mod clock;
 pub mod config;
 pub mod daemon;
+pub mod demo;
 pub mod findings;
 pub mod http;
 pub mod fitreport;

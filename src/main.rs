@@ -56,6 +56,13 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Replay an invented site's deliveries through the real daemon into a
+    /// fresh folder: findings, .eml messages and an HTML report.
+    Demo {
+        /// Folder for the demo (default: a new one under the temporary folder).
+        #[arg(long)]
+        dir: Option<PathBuf>,
+    },
     /// Watch the inbox and keep every series' trend current (foreground;
     /// SIGTERM or Ctrl-C finishes the current file and exits 0).
     Run {
@@ -297,6 +304,7 @@ fn main() -> ExitCode {
             level,
             json,
         } => fit(&file, &x, &y, transform.into(), level, json),
+        Command::Demo { dir } => commands::demo(dir),
         Command::Run { config, log_format } => {
             commands::run(config.as_deref(), log_format == LogFormat::Json)
         }
@@ -738,6 +746,65 @@ mod commands {
         }
         println!(
             "\nA flag is a prompt to verify a record, not a compliance determination. Check the record, then record a verdict with `slopewarden review ID --verdict confirmed|corrected|excluded --note TEXT`."
+        );
+        ExitCode::SUCCESS
+    }
+
+    pub fn demo(dir: Option<PathBuf>) -> ExitCode {
+        let dir = dir.unwrap_or_else(slopewarden::demo::fresh_dir);
+        if dir.join("data").exists() {
+            eprintln!(
+                "slopewarden: {} already holds a demo; give another --dir or remove it",
+                dir.display()
+            );
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+        println!(
+            "slopewarden demo: Alder Brook, an invented former pottery works with three soil\ntransects around its kiln stack and four monitoring wells. Six deliveries go,\none by one, into {} where the real daemon takes them.",
+            dir.join("inbox").display()
+        );
+        let start = std::time::Instant::now();
+        let mut stdout = std::io::stdout();
+        let done = match slopewarden::demo::run(&dir, &mut stdout) {
+            Ok(d) => d,
+            Err(e) => {
+                eprintln!("slopewarden demo: {e}");
+                return ExitCode::from(EXIT_IO);
+            }
+        };
+        println!(
+            "\n{} finding(s) in {:.1} s:",
+            done.findings.len(),
+            start.elapsed().as_secs_f64()
+        );
+        let mut shown = done.findings.clone();
+        shown.sort_by_key(|f| f.id);
+        for f in &shown {
+            let cause = f.detail["causes"][0]["label"]
+                .as_str()
+                .map(|c| format!("\n         first cause to check: {c}"))
+                .unwrap_or_default();
+            println!("  {:>3}  {:<7} {}{cause}", f.id, f.severity, f.summary);
+        }
+        let config = dir.join("slopewarden.toml");
+        println!(
+            "\nmessages: {} .eml file(s) in {}",
+            done.messages.len(),
+            dir.join("data/outbox").display()
+        );
+        println!("report:   {}", done.report.display());
+        if let Some(f) = shown
+            .iter()
+            .find(|f| f.detail["causes"].as_array().is_some_and(|c| !c.is_empty()))
+        {
+            println!(
+                "\nnext, as the analyst:\n  slopewarden show {id} --config {c}\n  slopewarden review {id} --verdict corrected --value V --note \"lab report says ...\" --config {c}\n  slopewarden verify --config {c}",
+                id = f.id,
+                c = config.display()
+            );
+        }
+        println!(
+            "\nAll names, places and numbers in the demo are invented. A flag is a prompt to\nverify a record, not a compliance determination."
         );
         ExitCode::SUCCESS
     }

@@ -1087,24 +1087,32 @@ fn raise_findings(
             } else {
                 Vec::new()
             };
-            // "Belongs to another series": the series of this file that
-            // share its site or its parameter (the key's part before or
-            // after the first '/').
+            // "Belongs to another series": the series that share its site or
+            // its parameter (the key's part before or after the first '/')
+            // and its scale: those of this file, and those met earlier.
             let (site, parameter) = key.split_once('/').unwrap_or((key, ""));
-            let mine: Vec<(&str, LineFit)> = touched
+            let related = |k: &str| {
+                let (s2, p2) = k.split_once('/').unwrap_or((k, ""));
+                k != key && (s2 == site || (!parameter.is_empty() && p2 == parameter))
+            };
+            let scale = t.settings.transform.name();
+            let candidates = touched
                 .iter()
-                .filter(|(k, _)| k.as_str() != key)
-                .filter(|(k, _)| {
-                    let (s2, p2) = k.split_once('/').unwrap_or((k.as_str(), ""));
-                    s2 == site || (!parameter.is_empty() && p2 == parameter)
-                })
                 .filter(|(_, o)| o.settings.transform == t.settings.transform)
-                .filter_map(|(k, o)| {
-                    LineFit::from_moments_with(o.state.moments(), config.level, |df| {
-                        quantiles.get(df)
-                    })
-                    .ok()
-                    .map(|fit| (k.as_str(), fit))
+                .map(|(k, o)| (k.as_str(), *o.state.moments()))
+                .chain(
+                    cache
+                        .rows
+                        .iter()
+                        .filter(|(k, r)| !touched.contains_key(*k) && r.transform == scale)
+                        .map(|(k, r)| (k.as_str(), r.moments)),
+                );
+            let mine: Vec<(&str, LineFit)> = candidates
+                .filter(|(k, _)| related(k))
+                .filter_map(|(k, m)| {
+                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df))
+                        .ok()
+                        .map(|fit| (k, fit))
                 })
                 .collect();
             let robust = cache.robust.get(key).copied();

@@ -471,6 +471,10 @@ fn column_titles(n: &Notice) -> (&'static str, &'static str) {
 fn slope_unit_sentence(n: &Notice) -> String {
     match &n.scale_note {
         Some(note) => inline(note, SENTENCE_CHARS),
+        None if n.x_label == "year" => format!(
+            "Slopes are in {} per year.",
+            inline(&n.unit, FIELD_CHARS)
+        ),
         None => format!(
             "Slopes are in {} per unit of {}.",
             inline(&n.unit, FIELD_CHARS),
@@ -1143,7 +1147,7 @@ pub(crate) mod tests {
             "chain-of-custody",
             "calibration log",
             "not a compliance determination",
-            "Slopes are in mg/L per unit of year.",
+            "Slopes are in mg/L per year.",
             "half their reporting limit",
         ] {
             assert!(flat.contains(needle), "missing {needle:?} in:\n{t}");

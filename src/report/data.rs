@@ -66,6 +66,20 @@ pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, Report
         .into_iter()
         .filter(|s| matcher.as_ref().is_none_or(|m| m.is_match(&s.key)))
         .collect();
+    let mut data = gather_rows(store, rows, matcher.is_some())?;
+    data.pattern = pattern.map(str::to_string);
+    Ok(data)
+}
+
+/// Reads everything of the given series. With `only_these`, findings and
+/// verdicts are read for these series alone (no findings about files and
+/// feeds); without, every finding is read and those without a series are
+/// kept as loose findings.
+pub fn gather_rows(
+    store: &Store,
+    rows: Vec<ReportSeriesRow>,
+    only_these: bool,
+) -> Result<ReportData, ReportError> {
     let ids: Vec<SeriesRowId> = rows.iter().map(|s| s.id).collect();
 
     let mut records: HashMap<SeriesRowId, Vec<ReportRecordRow>> = HashMap::new();
@@ -74,7 +88,7 @@ pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, Report
     }
     let mut findings: HashMap<SeriesRowId, Vec<ReportFindingRow>> = HashMap::new();
     let mut loose_findings = Vec::new();
-    let filter = matcher.is_some().then_some(ids.as_slice());
+    let filter = only_these.then_some(ids.as_slice());
     for f in store.report_findings(filter)? {
         match f.series {
             Some(s) => findings.entry(s).or_default().push(f),
@@ -101,7 +115,7 @@ pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, Report
     Ok(ReportData {
         series,
         loose_findings,
-        pattern: pattern.map(str::to_string),
+        pattern: None,
     })
 }
 

@@ -22,7 +22,8 @@ use super::svg::{Flag, HistoryPoint, Marker, PlotPoint, Scatter, history, scatte
 /// Significant digits of the numbers people read.
 const DIGITS: usize = 4;
 
-const STYLE: &str = r#"
+/// The report's stylesheet (also used by the HTTP overview page).
+pub const STYLE: &str = r#"
 :root { color-scheme: light; }
 html { background: #ffffff; }
 body { margin: 0 auto; max-width: 62rem; padding: 1.5rem 1.5rem 3rem; background: #ffffff; color: #1a1a1a;
@@ -418,6 +419,48 @@ fn series_section(out: &mut String, s: &SeriesData) {
 
     // The scatter.
     let flags = flagged(s);
+    out.push_str(&scatter_figure(s, &flags, window));
+
+    with_without(out, s, &labels.slope_unit, &labels.y_unit);
+    diagnostics_table(out, s, &flags, window);
+    slope_history(out, s, &labels.slope_unit);
+
+    out.push_str("<h3>Findings</h3>\n");
+    if s.findings.is_empty() {
+        out.push_str("<p class=\"empty\">No findings for this series.</p>\n");
+    } else {
+        findings_table(out, &s.findings, false);
+    }
+    out.push_str("<h3>Verdict log</h3>\n");
+    if s.verdicts.is_empty() {
+        out.push_str("<p class=\"empty\">No verdicts recorded for this series.</p>\n");
+    } else {
+        verdict_table(out, &s.verdicts);
+    }
+    out.push_str("</section>\n");
+}
+
+/// The scatter of a series for the HTTP overview page: the same figure
+/// as in the series' section of the report.
+pub fn series_scatter(s: &SeriesData) -> String {
+    let window = window_rows(s);
+    scatter_figure(s, &flagged(s), window.as_ref())
+}
+
+/// A series' records on the fitted scale with the current line and its
+/// confidence band, as a `<figure>` with its caption (a note when there
+/// is nothing to draw).
+fn scatter_figure(
+    s: &SeriesData,
+    flags: &HashMap<i64, Flag>,
+    window: Option<&HashSet<i64>>,
+) -> String {
+    let mut out = String::new();
+    let id = s.row.id.0;
+    let labels = s.labels();
+    let transform = s.transform();
+    let fit = s.current_fit();
+    let unit = s.unit().unwrap_or("unit not stated");
     let mut unplottable = 0usize;
     let points: Vec<PlotPoint> = s
         .records
@@ -518,23 +561,7 @@ fn series_section(out: &mut String, s: &SeriesData) {
         );
     }
 
-    with_without(out, s, &labels.slope_unit, &labels.y_unit);
-    diagnostics_table(out, s, &flags, window);
-    slope_history(out, s, &labels.slope_unit);
-
-    out.push_str("<h3>Findings</h3>\n");
-    if s.findings.is_empty() {
-        out.push_str("<p class=\"empty\">No findings for this series.</p>\n");
-    } else {
-        findings_table(out, &s.findings, false);
-    }
-    out.push_str("<h3>Verdict log</h3>\n");
-    if s.verdicts.is_empty() {
-        out.push_str("<p class=\"empty\">No verdicts recorded for this series.</p>\n");
-    } else {
-        verdict_table(out, &s.verdicts);
-    }
-    out.push_str("</section>\n");
+    out
 }
 
 fn trigger_text(f: &ReportFitRow) -> String {

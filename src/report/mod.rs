@@ -33,6 +33,12 @@ pub use band::{BandPoint, LineStats, mean_band};
 pub use csv_export::paths as csv_paths;
 pub use escape::{html as escape_html, spreadsheet_text};
 
+// For the HTTP overview page (`crate::http`), which shows the same
+// figures and charts as the report.
+pub(crate) use data::labels as series_labels;
+pub(crate) use format::{html_number, level as level_text, opt_p, sig};
+pub(crate) use html::STYLE;
+
 /// The output format of `slopewarden report`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ReportFormat {
@@ -121,6 +127,22 @@ pub fn write_report(
         }
     }
     Ok(summary)
+}
+
+/// The scatter of each series in `rows` (in that order), drawn exactly as
+/// in the report's section of the series: records on the fitted scale,
+/// the current line and its confidence band, flagged records labelled.
+/// Reads every record version of these series (one pass over the
+/// records), their fit versions, findings and verdicts.
+pub(crate) fn scatter_figures(
+    store: &Store,
+    rows: Vec<crate::store::ReportSeriesRow>,
+) -> Result<Vec<String>, ReportError> {
+    if rows.is_empty() {
+        return Ok(Vec::new());
+    }
+    let data = data::gather_rows(store, rows, true)?;
+    Ok(data.series.iter().map(html::series_scatter).collect())
 }
 
 /// Writes `bytes` to a temporary file beside `path`, syncs it and renames

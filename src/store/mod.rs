@@ -24,6 +24,7 @@
 mod audit;
 mod check;
 mod findings;
+mod metrics;
 mod report;
 pub mod seal;
 mod verdicts;
@@ -43,6 +44,7 @@ use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
 pub use check::{SeriesReplay, StoredFit, StoredPoint};
 pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
+pub use metrics::{GlanceFit, MetricsSnapshot, OpenFinding, SeriesGlance};
 pub use report::{
     ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,
 };

@@ -1,0 +1,152 @@
+//! `slopewarden demo`, as a newcomer runs it: the real binary replays the
+//! invented Alder Brook deliveries (demo-data/, see its README) through the
+//! real daemon. The planted problems must each raise their finding, with
+//! the right first cause to check; the correct extremes and the non-detect
+//! must not; the messages, the report and a verifiable store are left
+//! behind. (The data is invented for the demo; these checks are about the
+//! demo itself, not about the statistics, which other tests check against
+//! published references.)
+
+#![allow(clippy::unwrap_used, clippy::expect_used)]
+
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use serde_json::Value;
+
+#[test]
+fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_store() {
+    let dir = tempfile::tempdir().unwrap();
+    let demo = dir.path().join("demo");
+    let started = Instant::now();
+    let out = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+        .args(["demo", "--dir"])
+        .arg(&demo)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        started.elapsed() < Duration::from_secs(60),
+        "the demo took {:?}",
+        started.elapsed()
+    );
+    assert!(stdout.contains("report:"), "{stdout}");
+    assert!(
+        stdout.contains("not a compliance determination"),
+        "{stdout}"
+    );
+
+    let config = demo.join("slopewarden.toml");
+    let run = |args: &[&str]| -> String {
+        let o = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+            .args(args)
+            .arg("--config")
+            .arg(&config)
+            .output()
+            .unwrap();
+        assert!(
+            o.status.success(),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        String::from_utf8(o.stdout).unwrap()
+    };
+    let findings: Vec<Value> = serde_json::from_str(&run(&["findings", "--json"])).unwrap();
+    let about = |record: &str| -> Option<&Value> {
+        // Record findings only (a trend finding names its newest record too).
+        findings
+            .iter()
+            .filter(|f| f["detail"]["record"].is_object())
+            .find(|f| {
+                f["record_ids"]
+                    .as_array()
+                    .unwrap()
+                    .iter()
+                    .any(|r| r == record)
+            })
+    };
+    let first_cause = |f: &Value| -> String {
+        f["detail"]["causes"][0]["label"]
+            .as_str()
+            .unwrap_or("")
+            .to_string()
+    };
+    let kinds = |f: &Value| -> Vec<String> {
+        f["kinds"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|k| k.as_str().unwrap().to_string())
+            .collect()
+    };
+
+    // The decimal slip.
+    let slip = about("AB-MW2-NIT-2024Q1").expect("the decimal slip is found");
+    assert!(kinds(slip).contains(&"outlier".to_string()));
+    assert!(
+        first_cause(slip).contains("decimal point slipped 1 place"),
+        "{}",
+        first_cause(slip)
+    );
+    // The unit mix-up.
+    let unit = about("AB-MW3-TRI-2024Q2").expect("the unit mix-up is found");
+    assert!(
+        first_cause(unit).contains("mg/L instead of µg/L"),
+        "{}",
+        first_cause(unit)
+    );
+    // The sample far beyond the surveyed range.
+    let far = about("ABN-transect-PB99").expect("the far sample is found");
+    assert!(
+        kinds(far).contains(&"high_leverage".to_string()),
+        "{:?}",
+        kinds(far)
+    );
+    // The zinc value filed under lead.
+    let filed = about("ABE-transect-PB30").expect("the misfiled value is found");
+    assert!(
+        first_cause(filed).contains("ABE-transect/zinc"),
+        "{}",
+        first_cause(filed)
+    );
+    // The correct extreme beside the kiln wall and the non-detect raise nothing.
+    assert!(about("ABN-transect-LE01").is_none());
+    assert!(about("ABS-transect-PB40").is_none());
+    let db = rusqlite::Connection::open_with_flags(
+        demo.join("data/slopewarden.sqlite3"),
+        rusqlite::OpenFlags::SQLITE_OPEN_READ_ONLY,
+    )
+    .unwrap();
+    let (censored, in_fit): (bool, bool) = db
+        .query_row(
+            "SELECT censored, in_fit FROM records WHERE record_id = 'ABS-transect-PB40'",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    assert!(
+        censored && !in_fit,
+        "the non-detect is stored as censored, out of the fit"
+    );
+
+    // One .eml per finding, the report, and a store that verifies.
+    let emls = std::fs::read_dir(demo.join("data/outbox"))
+        .unwrap()
+        .filter(|e| {
+            e.as_ref()
+                .unwrap()
+                .path()
+                .extension()
+                .is_some_and(|x| x == "eml")
+        })
+        .count();
+    assert_eq!(emls, findings.len());
+    let report = std::fs::read_to_string(demo.join("report.html")).unwrap();
+    assert!(report.contains("<svg") && report.contains("AB-MW2/nitrate"));
+    assert!(run(&["verify"]).contains("intact"));
+}

@@ -165,6 +165,9 @@ pub struct Config {
     pub keep_files: bool,
     /// Files larger than this are quarantined unread.
     pub max_file_bytes: u64,
+    /// No file is taken while the disk of the store (or of the archive)
+    /// has less free space than this; files wait in the inbox.
+    pub min_free_bytes: u64,
     /// Per-file policy for refused rows.
     pub bad_rows: BadRows,
     /// Confidence level of intervals and significance.
@@ -420,6 +423,7 @@ impl Config {
                 "subfolders",
                 "keep_files",
                 "max_file_mb",
+                "min_free_mb",
             ],
         );
         let watch_mode = match w.string(watch, "watch", "mode").as_deref() {
@@ -438,6 +442,9 @@ impl Config {
         let max_file_mb = w
             .number(watch, "watch", "max_file_mb", Some((1.0, 1_000_000.0)))
             .unwrap_or(512.0);
+        let min_free_mb = w
+            .number(watch, "watch", "min_free_mb", Some((0.0, 1_000_000_000.0)))
+            .unwrap_or(256.0);
 
         let ingest = w.table(t, "ingest").unwrap_or(&empty);
         w.known(ingest, "ingest", &["bad_rows", "confidence_level"]);
@@ -555,6 +562,7 @@ impl Config {
             subfolders,
             keep_files,
             max_file_bytes: (max_file_mb * 1024.0 * 1024.0) as u64,
+            min_free_bytes: (min_free_mb * 1024.0 * 1024.0) as u64,
             bad_rows,
             level,
             defaults,
@@ -866,6 +874,7 @@ impl Walker {
             ("conflict", "warning"),
             ("quarantined", "warning"),
             ("silent_feed", "notice"),
+            ("disk_space", "alert"),
         ]
         .iter()
         .map(|(k, v)| (k.to_string(), v.to_string()))
@@ -879,7 +888,7 @@ impl Walker {
                     }
                     (None, _) => self.problem(
                         &at,
-                        "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined or silent_feed".into(),
+                        "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined, silent_feed or disk_space".into(),
                     ),
                     (Some(_), _) => {
                         self.problem(&at, "write \"notice\", \"warning\" or \"alert\"".into())

@@ -10,6 +10,7 @@
 //! when to call [`pipeline::process_file`].
 
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{RecvTimeoutError, sync_channel};
 use std::time::{Duration, Instant, SystemTime};
@@ -115,6 +116,118 @@ pub fn run(
         stop.store(true, Ordering::SeqCst);
         result
     })
+}
+
+/// A flag set by SIGHUP: reload the configuration.
+fn reload_flag() -> Arc<AtomicBool> {
+    let flag = Arc::new(AtomicBool::new(false));
+    if let Err(e) = signal_hook::flag::register(signal_hook::consts::SIGHUP, Arc::clone(&flag)) {
+        warn!(error = %e, "cannot catch SIGHUP; configuration changes need a restart");
+    }
+    flag
+}
+
+/// The configuration read again from its file, with the keys that only a
+/// restart can change kept at their running values (each named in a
+/// warning); None (and an error naming every problem) when the file is
+/// invalid or there is no file.
+fn reloaded(running: &Config) -> Option<Config> {
+    let Some(path) = running.origin.0.clone() else {
+        warn!("SIGHUP: running on built-in defaults, there is no configuration file to reload");
+        return None;
+    };
+    let mut new = match Config::load(&path) {
+        Ok(c) => c,
+        Err(problems) => {
+            for p in &problems {
+                error!(problem = %p, "SIGHUP: the configuration is invalid; keeping the running one");
+            }
+            return None;
+        }
+    };
+    let keep = |key: &str, changed: bool| {
+        if changed {
+            warn!(
+                key,
+                "SIGHUP: this setting takes effect only after a restart; the running value stays"
+            );
+        }
+    };
+    keep("paths.inbox", new.inbox != running.inbox);
+    keep("paths.database", new.database != running.database);
+    keep(
+        "watch.mode",
+        new.watch_mode != running.watch_mode || new.poll != running.poll,
+    );
+    keep("watch.subfolders", new.subfolders != running.subfolders);
+    keep("http", new.http != running.http);
+    keep(
+        "mail / smtp",
+        format!("{:?}", new.mail) != format!("{:?}", running.mail),
+    );
+    new.inbox = running.inbox.clone();
+    new.database = running.database.clone();
+    new.watch_mode = running.watch_mode;
+    new.poll = running.poll;
+    new.subfolders = running.subfolders;
+    new.http = running.http.clone();
+    new.mail = running.mail.clone();
+    Some(new)
+}
+
+/// The folder and its free bytes when the disk of the store or of the
+/// archive has less room than `watch.min_free_mb`; None when both have room.
+fn short_of_space(config: &Config, store_dir: &Path) -> Option<(PathBuf, u64)> {
+    for f in [store_dir, config.archive.as_path()] {
+        // The archive folder may not exist yet: its parent's disk counts.
+        let probe = f.ancestors().find(|a| a.exists()).unwrap_or(Path::new("."));
+        match crate::inbox::space::free_bytes(probe) {
+            Ok(free) if free < config.min_free_bytes => return Some((probe.to_path_buf(), free)),
+            Ok(_) => {}
+            Err(e) => warn!(folder = %probe.display(), error = %e, "cannot read the free space"),
+        }
+    }
+    None
+}
+
+/// Logs a disk running low and raises a `disk_space` finding (once per
+/// episode: the caller remembers that it did).
+fn report_short_of_space(config: &Config, store: &mut Store, folder: &Path, free: u64) {
+    let mb = |b: u64| b as f64 / (1024.0 * 1024.0);
+    let summary = format!(
+        "only {:.0} MB free on the disk of {} (at least {:.0} MB wanted, watch.min_free_mb); files wait in the inbox, nothing is lost; free some space",
+        mb(free),
+        folder.display(),
+        mb(config.min_free_bytes)
+    );
+    error!(folder = %folder.display(), free_mb = mb(free), "disk nearly full; files wait in the inbox");
+    let now = SystemTime::now();
+    let at = crate::clock::rfc3339(now);
+    let raised = store.begin().and_then(|tx| {
+        crate::raise::plain_finding(
+            &tx,
+            config,
+            "disk_space",
+            None,
+            None,
+            &[],
+            &summary,
+            serde_json::json!({
+                "folder": folder.display().to_string(),
+                "free_bytes": free,
+                "min_free_bytes": config.min_free_bytes,
+                "rule": "free space below watch.min_free_mb (configuration)",
+                "judged_against": "the free space wanted before a file is taken",
+            }),
+            (None, None),
+            &at,
+            crate::clock::unix_seconds(now),
+        )?;
+        tx.commit()
+    });
+    if let Err(e) = raised {
+        error!(error = %e, "the disk_space finding could not be stored");
+    }
 }
 
 /// Records the settings in force in the audit trail when they differ from
@@ -230,12 +343,33 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
     record_config(config, store)?;
     apply_config_windows(config, store)?;
     info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
-    let mut settler = Settler::new(config.settle);
+    let mut current = config.clone();
+    let mut settler = Settler::new(current.settle);
     let mut cache = SeriesCache::new();
     let mut totals = RunTotals::default();
     let mut next_scan = Instant::now();
     let mut dirty = true;
+    let mut disk_low = false;
+    let store_dir = store
+        .path()
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."))
+        .to_path_buf();
+    let reload = reload_flag();
     while !stop.load(Ordering::SeqCst) {
+        if reload.swap(false, Ordering::SeqCst)
+            && let Some(new) = reloaded(&current)
+        {
+            current = new;
+            settler = Settler::new(current.settle);
+            cache.clear();
+            record_config(&current, store)?;
+            apply_config_windows(&current, store)?;
+            dirty = true;
+            info!("configuration reloaded");
+        }
+        let config = &current;
         let now = Instant::now();
         if dirty || now >= next_scan || settler.pending() > 0 {
             dirty = false;
@@ -255,21 +389,52 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
                 .into_iter()
                 .map(|f| (config, f))
                 .collect();
-            pipeline::process_in_order(store, &mut cache, &ready, stop, |_, file, result| {
-                match result {
-                    Ok(outcome) => totals.count(&outcome),
-                    Err(e) => {
-                        totals.failed += 1;
-                        // The file stays; forget it so it is tried again.
-                        settler.forget(&file.path);
-                        error!(file = %file.relative.display(), error = %e, "file left in the inbox; will retry");
-                        if matches!(e, PipelineError::Store(_)) {
-                            sleep_unless_stopped(STORE_BACKOFF, stop);
+            if !ready.is_empty() {
+                let short = short_of_space(config, &store_dir);
+                match (&short, disk_low) {
+                    (Some((folder, free)), false) => {
+                        report_short_of_space(config, store, folder, *free)
+                    }
+                    (None, true) => info!("disk space is back; taking files again"),
+                    _ => {}
+                }
+                disk_low = short.is_some();
+            }
+            if !disk_low {
+                let mut ran_low = None;
+                pipeline::process_in_order(store, &mut cache, &ready, stop, |_, file, result| {
+                    match result {
+                        Ok(outcome) => totals.count(&outcome),
+                        Err(e) => {
+                            totals.failed += 1;
+                            // The file stays; forget it so it is tried again.
+                            settler.forget(&file.path);
+                            error!(file = %file.relative.display(), error = %e, "file left in the inbox; will retry");
+                            if matches!(e, PipelineError::Store(_)) {
+                                sleep_unless_stopped(STORE_BACKOFF, stop);
+                            }
                         }
                     }
+                    // The free-space check before each next file.
+                    ran_low = short_of_space(config, &store_dir);
+                    if ran_low.is_some() {
+                        Flow::Stop
+                    } else {
+                        Flow::Continue
+                    }
+                });
+                if let Some((folder, free)) = ran_low {
+                    report_short_of_space(config, store, &folder, free);
+                    disk_low = true;
                 }
-                Flow::Continue
-            });
+            }
+            // Files not taken (the disk ran low, or a stop) are looked at
+            // again at the next scan.
+            for (_, f) in &ready {
+                if f.path.exists() {
+                    settler.forget(&f.path);
+                }
+            }
         }
         let wait = if settler.pending() > 0 {
             TICK.min(config.settle)

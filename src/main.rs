@@ -21,6 +21,10 @@ const EXIT_CONFIG: u8 = 3;
 const EXIT_STORE: u8 = 4;
 /// Exit code when `verify` finds the audit chain, a seal or a fit broken.
 const EXIT_VERIFY: u8 = 5;
+/// Exit code when `ingest` was interrupted (SIGINT or SIGTERM) before it
+/// had taken every file (128 + SIGINT, as shells report it). `run` exits 0
+/// on SIGTERM: stopping is how a service ends.
+const EXIT_INTERRUPTED: u8 = 130;
 
 #[derive(Parser)]
 #[command(
@@ -181,6 +185,15 @@ enum Command {
         /// Who changes it (default: the login name).
         #[arg(long)]
         by: Option<String>,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+    },
+    /// Copy the database while the daemon runs (SQLite's online backup),
+    /// checked and written in full before it takes FILE's name.
+    Backup {
+        /// The copy to write (must not exist).
+        file: PathBuf,
         /// Configuration file (TOML).
         #[arg(long)]
         config: Option<PathBuf>,
@@ -363,6 +376,7 @@ fn main() -> ExitCode {
             commands::review(config.as_deref(), finding, action, &note, by.as_deref())
         }
         Command::Verify { config, json } => commands::verify(config.as_deref(), json),
+        Command::Backup { file, config } => commands::backup(config.as_deref(), &file),
         Command::Window {
             series,
             window,
@@ -405,7 +419,7 @@ mod commands {
     use slopewarden::store::Store;
     use slopewarden::table::Columns;
 
-    use super::{EXIT_BAD_INPUT, EXIT_CONFIG, EXIT_IO, EXIT_STORE, EXIT_VERIFY};
+    use super::{EXIT_BAD_INPUT, EXIT_CONFIG, EXIT_INTERRUPTED, EXIT_IO, EXIT_STORE, EXIT_VERIFY};
 
     fn load(config: Option<&Path>) -> Result<Config, ExitCode> {
         match config {
@@ -425,7 +439,24 @@ mod commands {
     }
 
     /// The configuration and its store, or the exit code that says why not.
+    /// The configuration and its store, which must exist already (every
+    /// command but `run`, `ingest` and `demo`): a mistyped path must not
+    /// quietly create an empty database that then "verifies".
     fn setup(config: Option<&Path>) -> Result<(Config, Store), ExitCode> {
+        let config = load(config)?;
+        if !config.database.exists() {
+            eprintln!(
+                "slopewarden: there is no database at {}; check [paths] database in the configuration, or start with `slopewarden run` or `ingest`",
+                config.database.display()
+            );
+            return Err(ExitCode::from(EXIT_STORE));
+        }
+        let store = open(&config)?;
+        Ok((config, store))
+    }
+
+    /// The configuration and its store, created when missing.
+    fn setup_creating(config: Option<&Path>) -> Result<(Config, Store), ExitCode> {
         let config = load(config)?;
         let store = open(&config)?;
         Ok((config, store))
@@ -474,7 +505,7 @@ mod commands {
 
     pub fn run(config: Option<&Path>, json_logs: bool) -> ExitCode {
         init_logs(json_logs, false);
-        let (config, mut store) = match setup(config) {
+        let (config, mut store) = match setup_creating(config) {
             Ok(v) => v,
             Err(code) => return code,
         };
@@ -494,7 +525,7 @@ mod commands {
 
     pub fn ingest(config: Option<&Path>, json_logs: bool, paths: &[PathBuf]) -> ExitCode {
         init_logs(json_logs, true);
-        let (config, mut store) = match setup(config) {
+        let (config, mut store) = match setup_creating(config) {
             Ok(v) => v,
             Err(code) => return code,
         };
@@ -526,7 +557,12 @@ mod commands {
                     "{} file(s) ingested, {} already ingested, {} quarantined, {} failed; {} new record(s)",
                     t.ingested, t.duplicates, t.quarantined, t.failed, t.records
                 );
-                if t.failed > 0 {
+                if stop.load(std::sync::atomic::Ordering::SeqCst) {
+                    eprintln!(
+                        "slopewarden ingest: interrupted; the files not yet taken stay where they are, run the same command again to go on"
+                    );
+                    ExitCode::from(EXIT_INTERRUPTED)
+                } else if t.failed > 0 {
                     ExitCode::from(EXIT_IO)
                 } else {
                     ExitCode::SUCCESS
@@ -934,6 +970,41 @@ mod commands {
             }
             Err(e) => {
                 eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+        }
+    }
+
+    pub fn backup(config: Option<&Path>, file: &Path) -> ExitCode {
+        if file.exists() {
+            eprintln!(
+                "slopewarden: {} already exists; give a new file name (a backup never overwrites)",
+                file.display()
+            );
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        match store.backup_to(file) {
+            Ok(bytes) => {
+                println!(
+                    "backed up {} to {} ({:.1} MB; integrity_check ok)",
+                    store.path().display(),
+                    file.display(),
+                    bytes as f64 / (1024.0 * 1024.0)
+                );
+                println!(
+                    "to prove it, point a configuration's [paths] database at the copy and run slopewarden verify"
+                );
+                ExitCode::SUCCESS
+            }
+            Err(e) => {
+                eprintln!(
+                    "slopewarden: the backup failed, nothing was written to {}: {e}",
+                    file.display()
+                );
                 ExitCode::from(EXIT_STORE)
             }
         }

@@ -46,6 +46,7 @@ mod hash;
 mod moves;
 mod scan;
 mod settle;
+pub mod space;
 mod watch;
 
 use std::path::PathBuf;

@@ -88,11 +88,13 @@ pub enum FindingKind {
     Quarantined,
     /// A feed stopped delivering records.
     SilentFeed,
+    /// The disk holding the store is nearly full; files wait in the inbox.
+    DiskSpace,
 }
 
 impl FindingKind {
     /// Every kind, in the order messages list them.
-    pub const ALL: [FindingKind; 8] = [
+    pub const ALL: [FindingKind; 9] = [
         FindingKind::HighLeverage,
         FindingKind::Influential,
         FindingKind::Outlier,
@@ -101,6 +103,7 @@ impl FindingKind {
         FindingKind::Conflict,
         FindingKind::Quarantined,
         FindingKind::SilentFeed,
+        FindingKind::DiskSpace,
     ];
 
     /// The stable machine name, e.g. `high_leverage`.
@@ -114,6 +117,7 @@ impl FindingKind {
             FindingKind::Conflict => "conflict",
             FindingKind::Quarantined => "quarantined",
             FindingKind::SilentFeed => "silent_feed",
+            FindingKind::DiskSpace => "disk_space",
         }
     }
 
@@ -133,6 +137,7 @@ impl FindingKind {
             FindingKind::Conflict => "conflicting versions",
             FindingKind::Quarantined => "held for review",
             FindingKind::SilentFeed => "feed gone quiet",
+            FindingKind::DiskSpace => "disk nearly full",
         }
     }
 }
@@ -471,10 +476,9 @@ fn column_titles(n: &Notice) -> (&'static str, &'static str) {
 fn slope_unit_sentence(n: &Notice) -> String {
     match &n.scale_note {
         Some(note) => inline(note, SENTENCE_CHARS),
-        None if n.x_label == "year" => format!(
-            "Slopes are in {} per year.",
-            inline(&n.unit, FIELD_CHARS)
-        ),
+        None if n.x_label == "year" => {
+            format!("Slopes are in {} per year.", inline(&n.unit, FIELD_CHARS))
+        }
         None => format!(
             "Slopes are in {} per unit of {}.",
             inline(&n.unit, FIELD_CHARS),

@@ -899,6 +899,59 @@ impl Store {
             .map_err(self.wrap())
     }
 
+    /// Copies the whole database to `dest` with SQLite's online backup, in
+    /// one step under a read transaction (a consistent snapshot; a running
+    /// daemon keeps writing meanwhile). The copy is written beside `dest`,
+    /// checked with `PRAGMA integrity_check`, synced, then renamed into
+    /// place, so `dest` is never a partial file. Returns its size in bytes.
+    pub fn backup_to(&self, dest: &Path) -> Result<u64> {
+        let partial = dest.with_file_name(format!(
+            ".{}.partial",
+            dest.file_name()
+                .map_or_else(|| "backup".into(), |n| n.to_string_lossy())
+        ));
+        let wrap_dest = |source| StoreError::Sqlite {
+            path: dest.to_path_buf(),
+            source,
+        };
+        let folder_err = |source| StoreError::Folder {
+            path: dest.to_path_buf(),
+            source,
+        };
+        let _ = std::fs::remove_file(&partial);
+        {
+            let mut copy = Connection::open(&partial).map_err(wrap_dest)?;
+            {
+                let backup =
+                    rusqlite::backup::Backup::new(&self.conn, &mut copy).map_err(wrap_dest)?;
+                backup
+                    .run_to_completion(i32::MAX, Duration::ZERO, None)
+                    .map_err(wrap_dest)?;
+            }
+            let check: String = copy
+                .query_row("PRAGMA integrity_check", [], |r| r.get(0))
+                .map_err(wrap_dest)?;
+            if check != "ok" {
+                let _ = std::fs::remove_file(&partial);
+                return Err(StoreError::Sqlite {
+                    path: dest.to_path_buf(),
+                    source: rusqlite::Error::SqliteFailure(
+                        rusqlite::ffi::Error::new(rusqlite::ffi::SQLITE_CORRUPT),
+                        Some(format!("the copy does not pass integrity_check: {check}")),
+                    ),
+                });
+            }
+        }
+        std::fs::File::open(&partial)
+            .and_then(|f| f.sync_all())
+            .map_err(folder_err)?;
+        std::fs::rename(&partial, dest).map_err(folder_err)?;
+        if let Some(dir) = dest.parent().filter(|d| !d.as_os_str().is_empty()) {
+            let _ = std::fs::File::open(dir).and_then(|d| d.sync_all());
+        }
+        std::fs::metadata(dest).map(|m| m.len()).map_err(folder_err)
+    }
+
     /// The detail of the newest audit entry of a kind.
     pub fn last_audit_detail(&self, kind: AuditKind) -> Result<Option<String>> {
         audit::last_detail_of(&self.conn, kind).map_err(self.wrap())

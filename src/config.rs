@@ -523,7 +523,7 @@ impl Config {
                 Err(_) => {
                     w.problem(
                         "http.listen",
-                        format!("`{listen}` is not an address and port; write for example \"127.0.0.1:8787\""),
+                        format!("`{listen}` is not an IP address and port (a host name such as localhost is not accepted); write for example \"127.0.0.1:8787\""),
                     );
                     None
                 }

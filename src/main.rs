@@ -308,6 +308,24 @@ fn parse_level(s: &str) -> Result<f64, String> {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    if matches!(
+        cli.command,
+        Command::Status { .. }
+            | Command::Diagnostics { .. }
+            | Command::History { .. }
+            | Command::Findings { .. }
+            | Command::Show { .. }
+            | Command::Verify { .. }
+    ) {
+        // Commands that only print: a closed pipe (`| head`) ends them
+        // quietly, as it does any Unix filter. (Not for the daemon, whose
+        // sockets must never kill it.)
+        // SAFETY: setting a signal's disposition to the default before any
+        // thread is started.
+        unsafe {
+            libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+        }
+    }
     match cli.command {
         Command::Fit {
             file,
@@ -583,6 +601,9 @@ mod commands {
                 println!("  database   {}", c.database.display());
                 println!("  archive    {}", c.archive.display());
                 println!("  quarantine {}", c.quarantine.display());
+                if let Some(h) = &c.http {
+                    println!("  http       {} (read-only pages)", h.listen);
+                }
                 for f in c.feeds() {
                     println!("  feed {:<12} files {}", f.name, f.pattern);
                 }

@@ -19,8 +19,6 @@ pub struct MetricsSnapshot {
     pub files_quarantined: i64,
     /// Current record versions.
     pub records_current: i64,
-    /// Resubmitted versions awaiting review (conflicts).
-    pub records_proposed: i64,
     /// Rows refused by validation.
     pub rows_quarantined: i64,
     /// Series known.
@@ -150,13 +148,16 @@ impl Store {
         let tx = self.conn.unchecked_transaction().map_err(self.wrap())?;
         let mut s = tx
             .query_row(
+                // Records and fit versions are counted from each series'
+                // current fit row (its running record count, and its
+                // version number, which counts the series' versions), not
+                // by scanning the two largest tables at every scrape.
                 "SELECT (SELECT COUNT(*) FROM source_files WHERE outcome IN ('ingested', 'partial')),
                         (SELECT COUNT(*) FROM source_files WHERE outcome = 'quarantined'),
-                        (SELECT COUNT(*) FROM records WHERE status = 'current'),
-                        (SELECT COUNT(*) FROM records WHERE status = 'proposed'),
+                        (SELECT COALESCE(SUM(f.records), 0) FROM series s JOIN fits f ON f.id = s.latest_fit),
                         (SELECT COUNT(*) FROM quarantined_rows),
                         (SELECT COUNT(*) FROM series),
-                        (SELECT COUNT(*) FROM fits),
+                        (SELECT COALESCE(SUM(f.version), 0) FROM series s JOIN fits f ON f.id = s.latest_fit),
                         (SELECT MAX(arrived_at) FROM source_files)",
                 [],
                 |r| {
@@ -164,11 +165,10 @@ impl Store {
                         files_ingested: r.get(0)?,
                         files_quarantined: r.get(1)?,
                         records_current: r.get(2)?,
-                        records_proposed: r.get(3)?,
-                        rows_quarantined: r.get(4)?,
-                        series: r.get(5)?,
-                        fit_versions: r.get(6)?,
-                        last_arrival: r.get(7)?,
+                        rows_quarantined: r.get(3)?,
+                        series: r.get(4)?,
+                        fit_versions: r.get(5)?,
+                        last_arrival: r.get(6)?,
                         ..MetricsSnapshot::default()
                     })
                 },

@@ -141,6 +141,10 @@ pub fn send_due(
                     e,
                     SendError::Unreachable { .. } | SendError::TimedOut { .. }
                 ) {
+                    // The server, not this message, is the problem: every
+                    // waiting message waits as long, so that after the
+                    // outage they go out in the order they were written.
+                    store.defer_pending(next)?;
                     break;
                 }
             }

@@ -485,6 +485,83 @@ struct Touched {
     window_points: std::collections::VecDeque<(f64, f64)>,
     /// The series' newest record before this file.
     head_before: Option<i64>,
+    /// The fits without the records left out of judging.
+    judging: Option<JudgingBase>,
+}
+
+/// A series' fits (both scales) without the suspects awaiting review from
+/// index `from` to `len` of its awaiting list.
+#[derive(Debug, Clone, Copy)]
+struct JudgingBase {
+    from: usize,
+    len: usize,
+    state: Option<SeriesState>,
+    log: Option<SeriesState>,
+}
+
+impl JudgingBase {
+    fn take(&mut self, p: (f64, f64)) {
+        if let Some(s) = self.state.as_mut()
+            && s.add(p.0, p.1).is_err()
+        {
+            self.state = None;
+        }
+        if let Some(l) = self.log.as_mut()
+            && (p.1 <= 0.0 || l.add(p.0, p.1.ln()).is_err())
+        {
+            self.log = None;
+        }
+    }
+}
+
+/// The judging base for `awaiting[start..]` left out of `state` and `log`:
+/// the kept one when it still fits, extended when the share left out grew,
+/// rebuilt when the suspects changed.
+fn judging_base(
+    slot: &mut Option<JudgingBase>,
+    state: SeriesState,
+    log: Option<SeriesState>,
+    awaiting: &[(f64, f64)],
+    start: usize,
+) -> JudgingBase {
+    let remove = |b: &mut JudgingBase, points: &[(f64, f64)]| {
+        for &(x, y) in points {
+            if let Some(s) = b.state.as_mut()
+                && s.remove(x, y).is_err()
+            {
+                b.state = None;
+            }
+            if let Some(l) = b.log.as_mut()
+                && (y <= 0.0 || l.remove(x, y.ln()).is_err())
+            {
+                b.log = None;
+            }
+        }
+    };
+    match slot {
+        Some(b) if b.len == awaiting.len() && b.from == start => {}
+        Some(b) if b.len == awaiting.len() && b.from > start => {
+            let extra = &awaiting[start..b.from];
+            remove(b, extra);
+            b.from = start;
+        }
+        _ => {
+            let mut b = JudgingBase {
+                from: start,
+                len: awaiting.len(),
+                state: Some(state),
+                log,
+            };
+            remove(&mut b, &awaiting[start..]);
+            *slot = Some(b);
+        }
+    }
+    slot.unwrap_or(JudgingBase {
+        from: start,
+        len: awaiting.len(),
+        state: None,
+        log: None,
+    })
 }
 
 /// A record the rules flagged, waiting for the file's fits.
@@ -618,6 +695,7 @@ fn store_file(
                     window,
                     window_points,
                     head_before,
+                    judging: None,
                 },
             );
             order.push(key.to_string());
@@ -702,18 +780,41 @@ fn store_file(
                 } else {
                     (t.state.n() as usize) / MAX_LEFT_OUT_SHARE
                 };
-                let left_out = &t.awaiting[t.awaiting.len().saturating_sub(cap)..];
-                let judged = if left_out.is_empty() {
-                    Some(*a)
+                let start = t.awaiting.len().saturating_sub(cap);
+                let left_out = &t.awaiting[start..];
+                // The fits without the left-out points, kept from record to
+                // record and rebuilt only when the suspects change: removing
+                // them afresh for every record cost O(suspects) each.
+                let base = if left_out.is_empty() {
+                    None
                 } else {
-                    judging_arrival(t.state, left_out, p, Some).or(Some(*a))
+                    Some(judging_base(
+                        &mut t.judging,
+                        t.state,
+                        t.log,
+                        &t.awaiting,
+                        start,
+                    ))
+                };
+                let judged = match &base {
+                    None => Some(*a),
+                    Some(b) => b
+                        .state
+                        .and_then(|mut st| st.add(p.0, p.1).ok())
+                        .or(Some(*a)),
                 };
                 // The same on the ln(y) scale, where a decimal slip or a unit
                 // mix-up stands out even in a series whose scatter grows
                 // with its level.
                 let log_judged = match t.log.as_mut() {
                     Some(ls) if p.1 > 0.0 => {
-                        let judged = judging_arrival(*ls, left_out, p, positive_ln);
+                        let judged = match &base {
+                            None => {
+                                let mut copy = *ls;
+                                copy.add(p.0, p.1.ln()).ok()
+                            }
+                            Some(b) => b.log.and_then(|mut l| l.add(p.0, p.1.ln()).ok()),
+                        };
                         if ls.add(p.0, p.1.ln()).is_err() {
                             t.log = None;
                         }
@@ -784,6 +885,12 @@ fn store_file(
                     None => (p.0, p.0),
                 });
                 t.state = probe;
+                // The judging base takes the point too, unless it became a
+                // suspect (then the base is rebuilt for the next record).
+                match t.judging.as_mut() {
+                    Some(j) if j.len == t.awaiting.len() => j.take(p),
+                    _ => t.judging = None,
+                }
                 t.new_points.push(p);
                 t.last = Some((*a, record.record_id.clone()));
             }
@@ -1023,25 +1130,6 @@ fn store_file(
     Ok((counts, refits))
 }
 
-/// The newcomer `p` arriving in `state` without the `left_out` points, all
-/// with y mapped by `scale` (identity, or ln); `None` when a point cannot
-/// be mapped or removed.
-fn judging_arrival(
-    mut state: SeriesState,
-    left_out: &[(f64, f64)],
-    p: (f64, f64),
-    scale: impl Fn(f64) -> Option<f64>,
-) -> Option<Arrival> {
-    for &(x, y) in left_out {
-        state.remove(x, scale(y)?).ok()?;
-    }
-    state.add(p.0, scale(p.1)?).ok()
-}
-
-fn positive_ln(y: f64) -> Option<f64> {
-    (y > 0.0).then(|| y.ln())
-}
-
 /// The ln(y)-on-x state of a series' points, when every y is positive.
 fn log_state(points: &[(f64, f64)]) -> Option<SeriesState> {
     let mut s = SeriesState::new();
@@ -1079,6 +1167,7 @@ fn raise_findings(
     now_unix: i64,
 ) -> Result<usize, PipelineError> {
     let mut raised = 0;
+    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::new();
     if !flagged.is_empty() {
         let quantiles = cache.quantiles(config.level);
         let mut quantiles = std::mem::replace(quantiles, TQuantiles::new(config.level));
@@ -1094,10 +1183,15 @@ fn raise_findings(
             // for a digest has no chart.
             let high_leverage = f.judgement.kinds.contains(&RecordKind::HighLeverage);
             let draw_chart = !raise::all_held(tx, config, Some(key), now_unix)?;
-            let points = if high_leverage || draw_chart {
-                tx.fit_points(&t.row)?
+            // Read once per series and file: a backlog file can flag dozens
+            // of records of one long series.
+            let points: &[(f64, f64)] = if high_leverage || draw_chart {
+                if !series_points.contains_key(key) {
+                    series_points.insert(key, tx.fit_points(&t.row)?);
+                }
+                series_points.get(key).map_or(&[], Vec::as_slice)
             } else {
-                Vec::new()
+                &[]
             };
             // "Belongs to another series": the series that share its site or
             // its parameter (the key's part before or after the first '/')
@@ -1140,7 +1234,7 @@ fn raise_findings(
                     judgement: &f.judgement,
                     left_out: f.left_out,
                     fit_point: f.fit_point,
-                    points: &points,
+                    points,
                     awaiting: &t.awaiting,
                     others: &mine,
                     robust,

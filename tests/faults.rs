@@ -281,3 +281,112 @@ fn a_full_filesystem_leaves_files_in_the_inbox_and_ingest_resumes_when_space_ret
     );
     verify_ok(&site, None);
 }
+
+/// At least 20 kill -9 at scattered moments over a 200-file backlog that
+/// raises findings: afterwards every record is stored once, `verify`
+/// passes, and each finding's message was written exactly once (the
+/// outbox folder holds one `.eml` per finding, each Message-ID once).
+#[test]
+fn twenty_kills_over_a_200_file_backlog_lose_nothing_and_send_each_message_once() {
+    let site = Site::new("[mail]\nmax_per_hour = 10000\n");
+    let files = 200;
+    let per = 60;
+    for f in 0..files {
+        let mut s = String::from("record_id,series,x,y,unit\n");
+        for i in 0..per {
+            let k = f * per + i;
+            let x = 2000.0 + k as f64 / 1000.0;
+            let mut y = 10.0 + 0.5 * (x - 2000.0) + [0.2, -0.1, 0.15, -0.2, 0.05][k % 5];
+            // Every 10th file carries one value typed ten times too large.
+            if f % 10 == 9 && i == 7 {
+                y *= 10.0;
+            }
+            s.push_str(&format!(
+                "K{f:03}-{i:02},KW-{:02}/nitrate,{x:.4},{y:.3},mg/L\n",
+                i % 6
+            ));
+        }
+        std::fs::write(site.path(&format!("inbox/k-{f:03}.csv")), s).unwrap();
+    }
+    // Kill moments spread over 50-700 ms (a fixed, varied sequence).
+    let mut kills = 0;
+    let mut state: u64 = 0x9E37_79B9_7F4A_7C15;
+    for _ in 0..22 {
+        if site.inbox_files() == 0 {
+            break;
+        }
+        state = state
+            .wrapping_mul(6_364_136_223_846_793_005)
+            .wrapping_add(1_442_695_040_888_963_407);
+        let delay = 50 + (state >> 33) % 650;
+        let mut child = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+            .args(["run", "--config"])
+            .arg(site.config())
+            .current_dir(site.dir.path())
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(Duration::from_millis(delay));
+        child.kill().unwrap(); // SIGKILL
+        child.wait().unwrap();
+        kills += 1;
+    }
+    // A last, undisturbed run takes the rest and sends what is due.
+    let mut child = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+        .args(["run", "--config"])
+        .arg(site.config())
+        .current_dir(site.dir.path())
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    let db = site.path("data/slopewarden.sqlite3");
+    wait_for(
+        "the backlog and its messages",
+        Duration::from_secs(120),
+        || {
+            site.inbox_files() == 0
+                && site.count(&db, "SELECT COUNT(*) FROM outbox WHERE status <> 'sent'") == 0
+        },
+    );
+    assert!(
+        Command::new("kill")
+            .args(["-TERM", &child.id().to_string()])
+            .status()
+            .unwrap()
+            .success()
+    );
+    assert_eq!(child.wait().unwrap().code(), Some(0));
+    assert!(kills >= 20 || site.count(&db, "SELECT COUNT(*) FROM source_files") == files as i64);
+    assert!(
+        kills >= 20,
+        "only {kills} kills landed before the backlog was done"
+    );
+
+    let total = (files * per) as i64;
+    assert_eq!(site.count(&db, "SELECT COUNT(*) FROM records"), total);
+    assert_eq!(
+        site.count(&db, "SELECT COUNT(DISTINCT record_id) FROM records"),
+        total
+    );
+    assert_eq!(
+        site.count(&db, "SELECT COUNT(*) FROM source_files"),
+        files as i64
+    );
+    verify_ok(&site, None);
+    let findings = site.count(&db, "SELECT COUNT(*) FROM findings");
+    assert!(
+        findings >= 15,
+        "the planted values raised findings ({findings})"
+    );
+    let mut ids: Vec<String> = std::fs::read_dir(site.path("data/outbox"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.ends_with(".eml"))
+        .collect();
+    assert_eq!(ids.len() as i64, findings, "one message file per finding");
+    ids.sort();
+    ids.dedup();
+    assert_eq!(ids.len() as i64, findings, "no Message-ID twice");
+}

@@ -190,8 +190,13 @@ fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
     })
 }
 
+/// A row of nothing but white space, or stray byte-order marks (U+FEFF,
+/// which some tools write once per exported chunk), is skipped.
 fn is_blank(row: &Row<'_>) -> bool {
-    row.fields.iter().all(|f| f.trim().is_empty())
+    row.fields.iter().all(|f| {
+        f.trim_matches(|c: char| c.is_whitespace() || c == '\u{feff}')
+            .is_empty()
+    })
 }
 
 /// Where each field is, resolved once from the header (0-based indices).

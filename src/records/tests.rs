@@ -820,7 +820,7 @@ fn expected_rows(text: &str, delimiter: char) -> (Vec<ExpectedRow>, bool) {
                 }
             } else if is_break {
                 line += 1;
-            } else if !ch.is_whitespace() {
+            } else if !ch.is_whitespace() && ch != '\u{feff}' {
                 blank = false;
             }
             continue;
@@ -847,7 +847,9 @@ fn expected_rows(text: &str, delimiter: char) -> (Vec<ExpectedRow>, bool) {
             field_start = false;
         } else {
             field_start = false;
-            blank &= ch.is_whitespace();
+            // A stray byte-order mark (U+FEFF) inside the text counts as blank,
+            // as the parser treats it.
+            blank &= ch.is_whitespace() || ch == '\u{feff}';
         }
     }
     if in_row {
@@ -899,6 +901,9 @@ fn check_rows_with(bytes: &[u8], layout: &Layout) {
         );
         return;
     }
+    // The csv crate under the parser drops one more byte-order mark when
+    // the text it reads starts with one (a file saved with two).
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let (rows, open_at_end) = expected_rows(text, char::from(layout.delimiter));
     let mut rows = rows.into_iter().filter(|r| !r.blank);
     let Some(header) = rows.next() else {

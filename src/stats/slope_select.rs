@@ -972,14 +972,38 @@ mod tests {
         let ks: Vec<u64> = (0..want.len() as u64).rev().collect();
         let got = sel.select_tuned(&ks, tuning).unwrap();
         for (&k, g) in ks.iter().zip(&got) {
-            prop_assert_eq!(*g, want[k as usize], "rank {} of {}", k, want.len());
+            prop_assert!(
+                same_slope(*g, want[k as usize]),
+                "rank {} of {}: {} vs {}",
+                k,
+                want.len(),
+                g,
+                want[k as usize]
+            );
         }
         let m = want.len() as u64;
         for k in [0, m / 3, m / 2, m - 1] {
             let got = sel.select_tuned(&[k], tuning).unwrap();
-            prop_assert_eq!(got[0], want[k as usize], "rank {} alone", k);
+            prop_assert!(
+                same_slope(got[0], want[k as usize]),
+                "rank {} alone: {} vs {}",
+                k,
+                got[0],
+                want[k as usize]
+            );
         }
         Ok(())
+    }
+
+    /// Equal, or a few ulps apart: the selector ranks pairs by comparisons
+    /// on centred coordinates, and when two different pairs' slopes lie
+    /// within a few ulps of each other (found by proptest: x = 2026.0 and
+    /// 2025.738, slopes 0.98445595854930{63,65}), their rounded quotients
+    /// can order differently from those comparisons. A difference of 1e-15
+    /// relative has no statistical meaning; any real mis-ranking would be
+    /// off by a whole gap between slopes.
+    fn same_slope(a: f64, b: f64) -> bool {
+        a == b || (a - b).abs() <= 1e-15 * a.abs().max(b.abs())
     }
 
     fn tiny_tuning() -> impl Strategy<Value = Tuning> {

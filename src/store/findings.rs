@@ -376,6 +376,19 @@ impl Store {
         tx.commit()
     }
 
+    /// Holds every pending message until at least `next_unix` (the mail
+    /// server is unreachable: nothing should overtake what waits longest).
+    pub fn defer_pending(&mut self, next_unix: i64) -> Result<()> {
+        let tx = self.begin()?;
+        tx.tx
+            .execute(
+                "UPDATE outbox SET next_attempt_unix = MAX(next_attempt_unix, ?1) WHERE status = 'pending'",
+                [next_unix],
+            )
+            .map_err(tx.wrap())?;
+        tx.commit()
+    }
+
     /// Records a failed attempt: retried at `next_unix`, or given up on
     /// (`next_unix` None) with an audit entry.
     pub fn mark_attempt_failed(

@@ -151,9 +151,19 @@ pub struct Prepared {
     now: SystemTime,
 }
 
+/// The folder a file was listed in: its path without its listed relative
+/// part (the inbox, or a folder given to `ingest`).
+fn listing_root(file: &ReadyFile) -> PathBuf {
+    let depth = file.relative.components().count();
+    file.path
+        .ancestors()
+        .nth(depth)
+        .map_or_else(|| PathBuf::from("."), Path::to_path_buf)
+}
+
 /// Reads, hashes and parses one file (no store, no series state).
 pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
-    let read = inbox::sha256_file(&file.path, config.max_file_bytes);
+    let read = inbox::read_below(&file.path, &listing_root(file), config.max_file_bytes);
     let parsed = read.as_ref().ok().map(|(_, _, bytes)| {
         let (_, layout) = config.feed_for(&file.relative);
         let (year, month, day, _) = clock::civil(now);
@@ -303,7 +313,12 @@ fn process_file_inner(
                 first.name, first.arrived_at
             ),
         )?;
-        let moved_to = move_done(config, file, now)?;
+        let moved_to = move_done(
+            config,
+            file,
+            now,
+            prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
+        )?;
         return Ok(Outcome::Duplicate {
             first: first.name,
             moved_to,
@@ -352,7 +367,12 @@ fn process_file_inner(
         "file committed"
     );
     crash_point("after-commit");
-    let moved_to = move_done(config, file, now)?;
+    let moved_to = move_done(
+        config,
+        file,
+        now,
+        prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
+    )?;
     Ok(Outcome::Ingested {
         counts,
         refits,
@@ -375,11 +395,12 @@ fn move_done(
     config: &Config,
     file: &ReadyFile,
     now: SystemTime,
+    read: Option<&[u8]>,
 ) -> Result<Option<PathBuf>, PipelineError> {
     if config.keep_files {
         return Ok(None);
     }
-    match inbox::move_to_archive(&file.path, &config.archive, now) {
+    match inbox::archive_from_inbox(&file.path, &config.inbox, &config.archive, now, read) {
         Ok(p) => Ok(Some(p)),
         Err(InboxError::Vanished { .. }) => Ok(None),
         Err(e) => Err(e.into()),

@@ -20,6 +20,52 @@ use super::InboxError;
 /// A file that no longer exists is [`InboxError::Vanished`].
 pub fn sha256_file(path: &Path, max_bytes: u64) -> Result<(String, u64, Vec<u8>), InboxError> {
     let file = File::open(path).map_err(|err| InboxError::read(path, err))?;
+    hash_open(path, file, max_bytes)
+}
+
+/// As [`sha256_file`] for a file listed below `root` (the inbox, or a
+/// folder given to `ingest`): the path is opened without following a
+/// symlink (O_NOFOLLOW), and a path that is a symlink is opened at its
+/// resolved target only when that lies below `root`. A file swapped for a
+/// link to somewhere else after it was listed is never read.
+pub fn read_below(
+    path: &Path,
+    root: &Path,
+    max_bytes: u64,
+) -> Result<(String, u64, Vec<u8>), InboxError> {
+    use std::os::unix::fs::OpenOptionsExt;
+    let open_nofollow = |p: &Path| {
+        std::fs::OpenOptions::new()
+            .read(true)
+            .custom_flags(libc::O_NOFOLLOW)
+            .open(p)
+    };
+    let link = std::fs::symlink_metadata(path)
+        .map(|m| m.file_type().is_symlink())
+        .map_err(|err| InboxError::read(path, err))?;
+    let file = if link {
+        let target = std::fs::canonicalize(path).map_err(|err| InboxError::read(path, err))?;
+        let inside = std::fs::canonicalize(root).is_ok_and(|r| target.starts_with(r));
+        if !inside {
+            let err = std::io::Error::new(
+                std::io::ErrorKind::PermissionDenied,
+                "it is a link that leads outside the inbox; only links to files inside are followed",
+            );
+            return Err(InboxError::read(path, err));
+        }
+        open_nofollow(&target)
+    } else {
+        open_nofollow(path)
+    }
+    .map_err(|err| InboxError::read(path, err))?;
+    hash_open(path, file, max_bytes)
+}
+
+fn hash_open(
+    path: &Path,
+    file: File,
+    max_bytes: u64,
+) -> Result<(String, u64, Vec<u8>), InboxError> {
     let meta = file.metadata().map_err(|err| InboxError::read(path, err))?;
     if !meta.is_file() {
         let err = std::io::Error::new(std::io::ErrorKind::InvalidInput, "not a regular file");

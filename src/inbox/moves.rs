@@ -53,6 +53,89 @@ pub fn move_to_archive(
     Ok(dest)
 }
 
+/// As [`move_to_archive`], for a file listed below `inbox` whose content,
+/// as read and stored, is `content`: a path that has become a link to
+/// somewhere outside `inbox` since it was read is archived from `content`
+/// (the link's target is never read or copied) and the link removed.
+pub fn archive_from_inbox(
+    path: &Path,
+    inbox: &Path,
+    archive_root: &Path,
+    arrival: SystemTime,
+    content: Option<&[u8]>,
+) -> Result<PathBuf, InboxError> {
+    let (name, dir) = prepare(path, archive_root, arrival)?;
+    let dest = reserve(path, &dir, name)?;
+    if leads_outside(path, inbox) {
+        warn!(path = %path.display(), "the file became a link leading outside the inbox after it was read; the content as read is archived, the link's target is not read");
+        let moved = match content {
+            Some(bytes) => write_then_remove(bytes, path, &dest),
+            None => fs::rename(path, &dest),
+        };
+        return match moved {
+            Ok(()) => {
+                if let Some(folder) = dest.parent() {
+                    sync_dir_after_move(folder);
+                }
+                Ok(dest)
+            }
+            Err(source) => {
+                remove_ours(&dest);
+                Err(InboxError::Move {
+                    path: path.to_owned(),
+                    dest,
+                    source,
+                })
+            }
+        };
+    }
+    transfer(path, &dest)?;
+    Ok(dest)
+}
+
+/// Writes `bytes` to `dest` durably, then removes `path` (a link).
+fn write_then_remove(bytes: &[u8], path: &Path, dest: &Path) -> io::Result<()> {
+    let mut to = OpenOptions::new().write(true).truncate(true).open(dest)?;
+    io::Write::write_all(&mut to, bytes)?;
+    to.sync_all()?;
+    drop(to);
+    if let Some(folder) = dest.parent() {
+        sync_dir(folder)?;
+    }
+    match fs::remove_file(path) {
+        Err(err) if err.kind() == io::ErrorKind::NotFound => Ok(()),
+        other => other,
+    }
+}
+
+/// Whether `path` is a symlink whose target is not below `inbox`.
+fn leads_outside(path: &Path, inbox: &Path) -> bool {
+    let is_link = fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink());
+    if !is_link {
+        return false;
+    }
+    match (fs::canonicalize(path), fs::canonicalize(inbox)) {
+        (Ok(target), Ok(root)) => !target.starts_with(root),
+        _ => true,
+    }
+}
+
+fn rename_link(path: &Path, dest: &Path) -> Result<(), InboxError> {
+    // `reserve` left an empty placeholder at `dest`; rename replaces it.
+    fs::rename(path, dest).map_err(|source| {
+        remove_ours(dest);
+        InboxError::Move {
+            path: path.to_owned(),
+            dest: dest.to_owned(),
+            source,
+        }
+    })?;
+    if let Some(folder) = dest.parent() {
+        sync_dir_after_move(folder);
+    }
+    Ok(())
+}
+
 /// Moves an unreadable `path` to `quarantine_root/YYYY/MM/<name>` (same
 /// naming and no-overwrite rule as [`move_to_archive`]) and writes `reason`
 /// to `<final name>.reason.txt` beside it. The reason file is written and
@@ -75,7 +158,13 @@ pub fn move_to_quarantine(
             source,
         });
     }
-    if let Err(err) = transfer(path, &dest) {
+    let moved = if fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink()) {
+        // A link is quarantined as a link: its target is never read.
+        rename_link(path, &dest)
+    } else {
+        transfer(path, &dest)
+    };
+    if let Err(err) = moved {
         remove_ours(&reason_path);
         return Err(err);
     }

@@ -54,7 +54,9 @@ pub fn inline(s: &str, max_chars: usize) -> String {
 /// passed through this can neither start a new header line (no CR or LF
 /// survives) nor grow without bound.
 pub fn header_safe(s: &str, max_chars: usize) -> String {
-    inline(s, max_chars.min(HEADER_MAX_CHARS))
+    // `=?` opens an RFC 2047 encoded word, which a mail reader would decode
+    // (to a line break, say): a space keeps data from being read as one.
+    inline(&s.replace("=?", "= ?"), max_chars.min(HEADER_MAX_CHARS))
 }
 
 /// Cuts `s` to at most `max_chars` characters, marking a cut with `…`.
@@ -244,6 +246,12 @@ mod tests {
         let cut = inline(&long, 10);
         assert_eq!(cut.chars().count(), 10);
         assert!(cut.ends_with('…'));
+    }
+
+    #[test]
+    fn header_safe_leaves_no_encoded_word_for_a_reader_to_decode() {
+        let s = header_safe("INJ =?utf-8?q?=0D=0ABcc:_x@example.net?= MW-8", 200);
+        assert!(!s.contains("=?"), "{s}");
     }
 
     #[test]

@@ -90,7 +90,7 @@ pub enum FileError {
     #[error(
         "required column(s) {} not in the header (it has: {}); rename the columns, or set the feed's layout in the config",
         .missing.join(", "),
-        .found.join(", ")
+        header_names_for_people(.found)
     )]
     MissingColumns {
         /// The required columns not found.
@@ -188,6 +188,30 @@ fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
             ),
         }
     })
+}
+
+/// A header's names for a message: at most 12, each cut at 40 characters,
+/// with the count of the rest (a 10 MB header must not become a 10 MB
+/// reason, log line and finding).
+fn header_names_for_people(found: &[String]) -> String {
+    const NAMES: usize = 12;
+    const CHARS: usize = 40;
+    let mut shown: Vec<String> = found
+        .iter()
+        .take(NAMES)
+        .map(|n| {
+            if n.chars().count() > CHARS {
+                let cut: String = n.chars().take(CHARS - 1).collect();
+                format!("{cut}…")
+            } else {
+                n.clone()
+            }
+        })
+        .collect();
+    if found.len() > NAMES {
+        shown.push(format!("and {} more", found.len() - NAMES));
+    }
+    shown.join(", ")
 }
 
 /// A row of nothing but white space, or stray byte-order marks (U+FEFF,
@@ -598,8 +622,19 @@ impl Checker<'_> {
         let (y, unit) = match (&rules.unit, unit_as_written, c.unit) {
             (Some(target), Some(written), Some(unit_column)) => {
                 let to_target = |v: f64| {
-                    units::convert(v, written, target, rules.matrix)
-                        .map_err(|e| Fault::at(unit_column, e.to_string()))
+                    let converted = units::convert(v, written, target, rules.matrix)
+                        .map_err(|e| Fault::at(unit_column, e.to_string()))?;
+                    // A value (or limit) too small to survive the conversion
+                    // must not quietly become 0.
+                    if v != 0.0 && converted == 0.0 {
+                        return Err(Fault::at(
+                            unit_column,
+                            format!(
+                                "{v} {written} is too small to express in {target} (it would become 0); check the value and its unit"
+                            ),
+                        ));
+                    }
+                    Ok(converted)
                 };
                 let y = match y {
                     Measure::Detected(v) => Measure::Detected(to_target(v)?),

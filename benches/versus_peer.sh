@@ -55,9 +55,11 @@ run_one() {
 import sys
 name, series, points, files, records = sys.argv[1], int(sys.argv[2]), int(sys.argv[3]), int(sys.argv[4]), int(sys.argv[5])
 sw, peer, bare = float(sys.argv[6]), float(sys.argv[7]), float(sys.argv[8])
+ratio = peer / sw
+ratio_text = f"{ratio:,.0f}" if ratio >= 10 else f"{ratio:.2g}"
 print(f"| {name} | {series} x {points} | {files} | {records} | "
       f"{1000*sw/files:.2f} | {1000*peer/files:.1f} | {1000*bare/files:.2f} | "
-      f"{peer/sw:,.0f} x | {sw/bare:.1f} x |")
+      f"{ratio_text} x | {sw/bare:.1f} x |")
 PY
 }
 

@@ -985,10 +985,7 @@ fn store_file(
             // robust slope, at every refit (a window is short, or fixed).
             let (x, y): (Vec<f64>, Vec<f64>) = t.window_points.iter().copied().unzip();
             t.state = SeriesState::from_moments(Moments::from_points(&x, &y));
-            t.row.x_span = x.iter().fold(None, |span, &v| match span {
-                None => Some((v, v)),
-                Some((lo, hi)) => Some((f64::min(lo, v), f64::max(hi, v))),
-            });
+            t.row.x_span = x_span(&x);
             if t.changed && x.len() >= 3 {
                 windowed.push((key.as_str(), t.window_points.iter().copied().collect()));
             }
@@ -1416,7 +1413,16 @@ fn robust_rows<'k>(jobs: &[(&'k str, &[(f64, f64)])], level: f64) -> Vec<(&'k st
         .collect()
 }
 
-fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {
+/// The smallest and largest x, when there are any.
+pub(crate) fn x_span(x: &[f64]) -> Option<(f64, f64)> {
+    x.iter().fold(None, |span, &v| match span {
+        None => Some((v, v)),
+        Some((lo, hi)) => Some((f64::min(lo, v), f64::max(hi, v))),
+    })
+}
+
+/// Theil-Sen and Mann-Kendall of a series' points; None when undefined.
+pub(crate) fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {
     let (x, y): (Vec<f64>, Vec<f64>) = points.iter().copied().unzip();
     let ts = theil_sen(&x, &y, level).ok()?;
     let mk = mann_kendall(&x, &y).ok()?;

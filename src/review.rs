@@ -15,10 +15,9 @@
 use crate::config::{Config, NonDetectPolicy};
 use crate::findings::rules::next_significance;
 use crate::records::SeriesId;
-use crate::stats::robust::{mann_kendall, theil_sen};
 use crate::stats::{LineFit, Transform, fit_line};
 use crate::store::seal::SealScope;
-use crate::store::{AuditKind, NewFit, NewVerdict, RobustRow, SeriesRow, Store, StoreError, Tx};
+use crate::store::{AuditKind, NewFit, NewVerdict, SeriesRow, Store, StoreError, Tx};
 use crate::window::Window;
 
 /// What the analyst says about a finding's record.
@@ -387,21 +386,9 @@ fn refit(
     s.moments = crate::stats::Moments::from_points(&x, &y);
     s.fit_version += 1;
     s.window = window.map(|w| w.text());
-    s.x_span = x.iter().fold(None, |span, &v| match span {
-        None => Some((v, v)),
-        Some((lo, hi)) => Some((f64::min(lo, v), f64::max(hi, v))),
-    });
-    let robust = if x.len() >= 3 {
-        match (theil_sen(&x, &y, config.level), mann_kendall(&x, &y)) {
-            (Ok(ts), Ok(mk)) => Some(RobustRow {
-                slope: ts.slope,
-                ci_low: ts.ci_low,
-                ci_high: ts.ci_high,
-                mk_s: mk.s,
-                mk_p: mk.p,
-            }),
-            _ => None,
-        }
+    s.x_span = crate::pipeline::x_span(&x);
+    let robust = if points.len() >= 3 {
+        crate::pipeline::robust_row(&points, config.level)
     } else {
         None
     };

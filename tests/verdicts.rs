@@ -133,28 +133,8 @@ impl Site {
     /// The series' current fit row: (n, slope, intercept, slope_se,
     /// intercept_se, residual_sd, r_squared, trigger_verdict).
     fn current_fit(&self) -> (i64, [f64; 6], Option<i64>) {
-        self.db()
-            .query_row(
-                "SELECT f.n, f.slope, f.intercept, f.slope_se, f.intercept_se, f.residual_sd,
-                        f.r_squared, f.trigger_verdict
-                 FROM series s JOIN fits f ON f.id = s.latest_fit WHERE s.key = ?1",
-                [SERIES],
-                |r| {
-                    Ok((
-                        r.get(0)?,
-                        [
-                            r.get(1)?,
-                            r.get(2)?,
-                            r.get(3)?,
-                            r.get(4)?,
-                            r.get(5)?,
-                            r.get(6)?,
-                        ],
-                        r.get(7)?,
-                    ))
-                },
-            )
-            .unwrap()
+        self.current_fit_or_none()
+            .expect("the series has a current fit")
     }
 
     fn start(&self) -> Child {

@@ -4,7 +4,7 @@
 use rusqlite::params;
 
 use super::seal::{self, SealKind};
-use super::{Result, Store};
+use super::{FIT_CHAIN, RECORD_CHAIN, Result, Store};
 
 /// A fit row as verify replays it.
 #[derive(Debug, Clone, PartialEq)]
@@ -228,16 +228,13 @@ impl Store {
                 // Walked from the series' newest version by row id (the
                 // tables are not indexed by series); a removed or unlinked
                 // row breaks the walk, and the seals catch it.
-                "WITH RECURSIVE chain(id) AS (
-                     SELECT ?1 WHERE ?1 IS NOT NULL
-                     UNION ALL
-                     SELECT f.prev_fit FROM chain c CROSS JOIN fits f ON f.id = c.id WHERE f.prev_fit IS NOT NULL
-                 )
-                 SELECT f.id, f.version, f.trigger_file, f.trigger_verdict, f.transform, f.non_detects, f.level, f.n,
+                &format!(
+                    "{FIT_CHAIN}SELECT f.id, f.version, f.trigger_file, f.trigger_verdict, f.transform, f.non_detects, f.level, f.n,
                         f.slope, f.intercept, f.slope_se, f.slope_p, f.slope_ci_low, f.slope_ci_high, f.r_squared,
                         f.theil_sen_slope, f.theil_sen_ci_low, f.theil_sen_ci_high,
                         f.origin, f.mean_x, f.mean_y, f.sxx, f.sxy, f.syy, f.sse, f.prev_fit, f.trigger_window, f.window
-                 FROM chain c CROSS JOIN fits f ON f.id = c.id ORDER BY f.version, f.id",
+                 FROM chain c CROSS JOIN fits f ON f.id = c.id ORDER BY f.version, f.id"
+                ),
             )
             .map_err(&wrap)?;
         let fits = stmt
@@ -284,13 +281,10 @@ impl Store {
         let mut stmt = self
             .conn
             .prepare_cached(
-                "WITH RECURSIVE chain(id) AS (
-                     SELECT ?1 WHERE ?1 IS NOT NULL
-                     UNION ALL
-                     SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
-                 )
-                 SELECT r.id, r.file_id, r.version, r.status, r.x, r.y, r.censored, r.in_fit, r.fit_x, r.fit_y, r.excluded
-                 FROM chain c CROSS JOIN records r ON r.id = c.id ORDER BY r.id",
+                &format!(
+                    "{RECORD_CHAIN}SELECT r.id, r.file_id, r.version, r.status, r.x, r.y, r.censored, r.in_fit, r.fit_x, r.fit_y, r.excluded
+                 FROM chain c CROSS JOIN records r ON r.id = c.id ORDER BY r.id"
+                ),
             )
             .map_err(&wrap)?;
         let records = stmt

@@ -1465,35 +1465,43 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
 /// The in-fit points of a series, oldest first, by walking its record chain
 /// back from the record `head`.
 fn chain_rows(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(i64, f64, f64)>> {
-    let Some(head) = head else {
-        return Ok(Vec::new());
-    };
-    let mut stmt = conn.prepare_cached(
-        "WITH RECURSIVE chain(id) AS (
-             SELECT ?1
-             UNION ALL
-             SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
-         )
-         SELECT r.id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
-         WHERE r.status = 'current' AND r.in_fit = 1 AND r.excluded = 0 ORDER BY r.id",
-    )?;
-    let rows = stmt.query_map([head], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
-    rows.collect()
+    chain_in_fit(conn, head, "id")
 }
 
 fn chain_points(conn: &Connection, head: Option<i64>) -> rusqlite::Result<Vec<(String, f64, f64)>> {
+    chain_in_fit(conn, head, "record_id")
+}
+
+/// The ids of a series' records from the record `?1` back to its first,
+/// through `prev_in_series`, as the table `chain(id)` (the records table
+/// is not indexed by series: the walk looks rows up by id).
+pub(super) const RECORD_CHAIN: &str = "WITH RECURSIVE chain(id) AS (
+     SELECT ?1 WHERE ?1 IS NOT NULL
+     UNION ALL
+     SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
+ ) ";
+
+/// The same for a series' fit versions from the fit `?1`, through `prev_fit`.
+pub(super) const FIT_CHAIN: &str = "WITH RECURSIVE chain(id) AS (
+     SELECT ?1 WHERE ?1 IS NOT NULL
+     UNION ALL
+     SELECT f.prev_fit FROM chain c CROSS JOIN fits f ON f.id = c.id WHERE f.prev_fit IS NOT NULL
+ ) ";
+
+/// The in-fit points of a series (fitted scale) with the records' `key`
+/// column, oldest row first, walking its chain back from `head`.
+fn chain_in_fit<K: rusqlite::types::FromSql>(
+    conn: &Connection,
+    head: Option<i64>,
+    key: &str,
+) -> rusqlite::Result<Vec<(K, f64, f64)>> {
     let Some(head) = head else {
         return Ok(Vec::new());
     };
-    let mut stmt = conn.prepare_cached(
-        "WITH RECURSIVE chain(id) AS (
-             SELECT ?1
-             UNION ALL
-             SELECT r.prev_in_series FROM chain c CROSS JOIN records r ON r.id = c.id WHERE r.prev_in_series IS NOT NULL
-         )
-         SELECT r.record_id, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
-         WHERE r.status = 'current' AND r.in_fit = 1 AND r.excluded = 0 ORDER BY r.id",
-    )?;
+    let mut stmt = conn.prepare_cached(&format!(
+        "{RECORD_CHAIN}SELECT r.{key}, r.fit_x, r.fit_y FROM chain c CROSS JOIN records r ON r.id = c.id
+         WHERE r.status = 'current' AND r.in_fit = 1 AND r.excluded = 0 ORDER BY r.id"
+    ))?;
     let rows = stmt.query_map([head], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))?;
     rows.collect()
 }

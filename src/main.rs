@@ -1065,6 +1065,9 @@ mod commands {
             println!("FAILED  {}: {}", p.location, p.what);
         }
         println!("{} problem(s) found", report.problems.len());
+        println!(
+            "The store was changed outside slopewarden, or damaged. Do not rely on its trends until this is explained: keep a copy of this database as it is, compare it with your latest backup (slopewarden backup), and find out who or what wrote to it."
+        );
         ExitCode::from(EXIT_VERIFY)
     }
 

@@ -855,7 +855,7 @@ mod commands {
             .find(|f| f.detail["causes"].as_array().is_some_and(|c| !c.is_empty()))
         {
             println!(
-                "\nnext, as the analyst:\n  slopewarden show {id} --config {c}\n  slopewarden review {id} --verdict corrected --value V --note \"lab report says ...\" --config {c}\n  slopewarden verify --config {c}",
+                "\nnext, as the analyst (with the binary installed by `cargo install --path .`,\nor put `cargo run --release --` in front of each):\n  slopewarden show {id} --config {c}\n  slopewarden review {id} --verdict corrected --value V --note \"lab report says ...\" --config {c}\n  slopewarden verify --config {c}",
                 id = f.id,
                 c = config.display()
             );

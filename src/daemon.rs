@@ -101,6 +101,7 @@ pub fn run(
     // slow or absent mail server never holds up ingestion.
     let mailer = crate::outbox::mailer(config)?;
     let mut sender_store = Store::open(store.path())?;
+    let _checkpoints = store.checkpoint_in_background()?;
     std::thread::scope(|scope| {
         scope.spawn(|| send_until_stopped(config, &mut sender_store, mailer.as_ref(), stop));
         if let Some(http) = &config.http {
@@ -541,6 +542,7 @@ pub fn ingest_paths(
 ) -> Result<RunTotals, DaemonError> {
     record_config(config, store)?;
     apply_config_windows(config, store)?;
+    let _checkpoints = store.checkpoint_in_background()?;
     let mut files: Vec<(Candidate, bool)> = Vec::new();
     for p in paths {
         let meta = std::fs::metadata(p).map_err(|source| DaemonError::Path {

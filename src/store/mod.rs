@@ -23,6 +23,7 @@
 
 mod audit;
 mod check;
+mod checkpoint;
 mod findings;
 mod metrics;
 mod report;
@@ -43,6 +44,7 @@ use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
 pub use check::{SeriesReplay, StoredFit, StoredPoint};
+pub use checkpoint::Checkpointer;
 pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
 pub use metrics::{GlanceFit, MetricsSnapshot, OpenFinding, SeriesGlance};
 pub use report::{
@@ -119,6 +121,21 @@ struct PendingRecord<'r> {
     fit_point: Option<(f64, f64)>,
     diagnostics: Option<DiagnosticsRow>,
     prev_in_series: Option<i64>,
+    /// The record's attributes as the JSON text stored (None: none).
+    attributes: Option<String>,
+}
+
+/// A record's attributes as the JSON object stored in `attributes`.
+fn attributes_json(r: &Record) -> Option<String> {
+    if r.attributes.is_empty() {
+        return None;
+    }
+    let map: serde_json::Map<String, serde_json::Value> = r
+        .attributes
+        .iter()
+        .map(|(k, v)| (k.clone(), serde_json::Value::String(v.clone())))
+        .collect();
+    Some(serde_json::Value::Object(map).to_string())
 }
 
 /// Records queued for multi-row inserts within one transaction. Dropping
@@ -259,16 +276,6 @@ fn bind_record(
     row: &PendingRecord<'_>,
 ) -> rusqlite::Result<()> {
     let r = row.record;
-    let attributes = if r.attributes.is_empty() {
-        None
-    } else {
-        let map: serde_json::Map<String, serde_json::Value> = r
-            .attributes
-            .iter()
-            .map(|(k, v)| (k.clone(), serde_json::Value::String(v.clone())))
-            .collect();
-        Some(serde_json::Value::Object(map).to_string())
-    };
     let (fx, fy) = row.fit_point.unzip();
     let d = row.diagnostics.as_ref();
     let mut i = base;
@@ -291,7 +298,7 @@ fn bind_record(
     put(&r.unit_as_written)?;
     put(&r.sampled_at)?;
     put(&r.note)?;
-    put(&attributes)?;
+    put(&row.attributes)?;
     put(&row.file)?;
     put(&(r.line as i64))?;
     put(&r.raw)?;
@@ -311,6 +318,143 @@ fn bind_record(
     put(&row.prev_in_series)?;
     debug_assert_eq!(i - base, RECORD_COLUMNS);
     Ok(())
+}
+
+/// A record row as its file's seal reads it back: the values
+/// [`bind_record`] binds, in [`seal::RECORD_COLUMNS`] order.
+fn seal_record(out: &mut seal::SealRows, row: &PendingRecord<'_>) {
+    let r = row.record;
+    let (fx, fy) = row.fit_point.unzip();
+    let d = row.diagnostics.as_ref();
+    out.row(row.id)
+        .put(&row.id)
+        .put(&r.record_id)
+        .put(&row.version)
+        .put(&row.series)
+        .put(&r.x)
+        .put(&r.y.number())
+        .put(&r.y.is_censored())
+        .put(&row.fit_point.is_some())
+        .put(&fx)
+        .put(&fy)
+        .put(&r.unit)
+        .put(&r.unit_as_written)
+        .put(&r.sampled_at)
+        .put(&r.note)
+        .put(&row.attributes)
+        .put(&row.file)
+        .put(&(r.line as i64))
+        .put(&r.raw)
+        .put(&row.prev_in_series)
+        .put(&d.map(|d| d.joined_fit))
+        .put(&d.and_then(|d| d.leverage))
+        .put(&d.and_then(|d| d.standardized))
+        .put(&d.and_then(|d| d.studentized))
+        .put(&d.and_then(|d| d.cooks))
+        .put(&d.and_then(|d| d.dffits))
+        .put(&d.and_then(|d| d.dfbetas_intercept))
+        .put(&d.and_then(|d| d.dfbetas_slope))
+        .put(&d.and_then(|d| d.covariance_ratio))
+        .put(&d.and_then(|d| d.prediction_t))
+        .put(&d.and_then(|d| d.slope_without))
+        .put(&d.and_then(|d| d.slope_p_without))
+        .put(&d.and_then(|d| d.undefined));
+}
+
+/// A fit row as a seal reads it back (`SELECT *`): the values [`bind_fit`]
+/// binds, in the table's column order, with the columns the later
+/// migrations appended at the end (`x_min`, `x_max`, `significant`, then
+/// `trigger_verdict`, then `window`, `trigger_window`). `trigger_verdict`
+/// and `trigger_window` are not bound at insert, so NULL; only a verdict's
+/// or a window change's fit (which has no trigger file) gets them set.
+fn seal_fit(out: &mut seal::SealRows, row: &PendingFit) {
+    let fit = row.fit.as_ref();
+    let robust = row.robust;
+    let m = &row.moments;
+    let null: Option<i64> = None;
+    out.row(row.id)
+        .put(&row.id)
+        .put(&row.series)
+        .put(&row.version)
+        .put(&row.trigger_file)
+        .put(&row.created_at)
+        .put(&row.transform)
+        .put(&row.non_detects)
+        .put(&(m.n as i64))
+        .put(&row.censored)
+        .put(&row.level)
+        .put(&fit.map(|v| v.slope))
+        .put(&fit.map(|v| v.intercept))
+        .put(&fit.map(|v| v.slope_se))
+        .put(&fit.map(|v| v.intercept_se))
+        .put(&fit.and_then(|v| v.slope_t))
+        .put(&fit.and_then(|v| v.slope_p))
+        .put(&fit.map(|v| v.slope_ci_low))
+        .put(&fit.map(|v| v.slope_ci_high))
+        .put(&fit.and_then(|v| v.r_squared))
+        .put(&fit.map(|v| v.residual_sd))
+        .put(&fit.map(|v| v.df as i64))
+        .put(&robust.map(|r| r.slope))
+        .put(&robust.map(|r| r.ci_low))
+        .put(&robust.map(|r| r.ci_high))
+        .put(&robust.map(|r| r.mk_s))
+        .put(&robust.map(|r| r.mk_p))
+        .put(&row.note)
+        .put(&row.records)
+        .put(&row.robust_n)
+        .put(&m.origin)
+        .put(&m.mean_x)
+        .put(&m.mean_y)
+        .put(&m.sxx)
+        .put(&m.sxy)
+        .put(&m.syy)
+        .put(&m.sse)
+        .put(&row.prev_fit)
+        .put(&row.x_span.map(|s| s.0))
+        .put(&row.x_span.map(|s| s.1))
+        .put(&row.significant)
+        .put(&null)
+        .put(&row.window)
+        .put(&null);
+}
+
+/// A `source_files` row written by this transaction, as its columns stand
+/// (`insert_file`, then `finish_file`), with the rows written for the file:
+/// what its seal is computed from without reading the rows back.
+#[derive(Debug)]
+struct WrittenFile {
+    id: i64,
+    name: String,
+    sha256: String,
+    size: i64,
+    arrived_at: String,
+    feed: String,
+    outcome: &'static str,
+    counts: [i64; 4],
+    detail: Option<String>,
+    rows: seal::FileRows,
+}
+
+impl WrittenFile {
+    /// Its `source_files` row as a seal reads it back (`SELECT *`).
+    fn own_row(&self) -> seal::SealRows {
+        let mut out = seal::SealRows::default();
+        let [new, same, conflict, bad] = &self.counts;
+        out.row(self.id)
+            .put(&self.id)
+            .put(&self.name)
+            .put(&self.sha256)
+            .put(&self.size)
+            .put(&self.arrived_at)
+            .put(&self.feed)
+            .put(&self.outcome)
+            .put(new)
+            .put(same)
+            .put(conflict)
+            .put(bad)
+            .put(&self.detail);
+        out
+    }
 }
 
 /// The embedded migrations, in order.
@@ -651,6 +795,11 @@ impl Store {
             source,
         };
         conn.busy_timeout(Duration::from_secs(30)).map_err(wrap)?;
+        // A file's transaction uses some forty distinct statements (records
+        // and fits in chunks and singly, findings, messages, audit, seals);
+        // with rusqlite's default of 16 they evicted each other and were
+        // parsed again for every file (6 % of a large ingest, measured).
+        conn.set_prepared_statement_cache_capacity(128);
         // Takes effect only when the database is created. Record and fit
         // rows are wide (30-odd columns); 16 KiB pages hold more of them,
         // so appends split and log fewer pages (measured: about 20 % off
@@ -663,8 +812,11 @@ impl Store {
             .map_err(wrap)?;
         conn.pragma_update(None, "foreign_keys", "ON")
             .map_err(wrap)?;
-        // A larger page cache keeps the indexes of a long history in memory.
-        conn.pragma_update(None, "cache_size", -65_536)
+        // A page cache of 16 MiB (SQLite's default is 2): the indexes a
+        // file's transaction looks up stay in memory. 64 MiB measured no
+        // faster on a million-record backlog, and a large delivery's
+        // transaction fills whatever is allowed (peak RSS counts it).
+        conn.pragma_update(None, "cache_size", -16_384)
             .map_err(wrap)?;
         conn.pragma_update(None, "wal_autocheckpoint", 20_000)
             .map_err(wrap)?;
@@ -735,6 +887,7 @@ impl Store {
             next_record,
             next_fit,
             first,
+            written: std::cell::RefCell::new(Vec::new()),
         })
     }
 
@@ -994,6 +1147,9 @@ pub struct Tx<'a> {
     /// The first ids this transaction can have written (bounds the seals'
     /// queries to its own rows).
     first: seal::FirstIds,
+    /// The files inserted by this transaction and not sealed yet, with
+    /// their rows encoded as they were written (usually one file).
+    written: std::cell::RefCell<Vec<WrittenFile>>,
 }
 
 impl Tx<'_> {
@@ -1022,7 +1178,20 @@ impl Tx<'_> {
                 ])
             })
             .map_err(self.wrap())?;
-        Ok(FileId(self.tx.last_insert_rowid()))
+        let id = self.tx.last_insert_rowid();
+        self.written.borrow_mut().push(WrittenFile {
+            id,
+            name: f.name.to_string(),
+            sha256: f.sha256.to_string(),
+            size: f.size as i64,
+            arrived_at: f.arrived_at.to_string(),
+            feed: f.feed.to_string(),
+            outcome: FileOutcome::Ingested.as_str(),
+            counts: [0; 4],
+            detail: None,
+            rows: seal::FileRows::default(),
+        });
+        Ok(FileId(id))
     }
 
     /// Sets a file's outcome and counts once its rows are processed.
@@ -1033,6 +1202,12 @@ impl Tx<'_> {
         counts: FileCounts,
         detail: Option<&str>,
     ) -> Result<()> {
+        let counts = [
+            counts.new as i64,
+            counts.same as i64,
+            counts.conflict as i64,
+            counts.bad as i64,
+        ];
         self.tx
             .prepare_cached(
                 "UPDATE source_files SET outcome = ?2, records_new = ?3, records_same = ?4,
@@ -1042,14 +1217,19 @@ impl Tx<'_> {
                 s.execute(params![
                     id.0,
                     outcome.as_str(),
-                    counts.new as i64,
-                    counts.same as i64,
-                    counts.conflict as i64,
-                    counts.bad as i64,
+                    counts[0],
+                    counts[1],
+                    counts[2],
+                    counts[3],
                     detail
                 ])
             })
             .map_err(self.wrap())?;
+        if let Some(w) = self.written.borrow_mut().iter_mut().find(|w| w.id == id.0) {
+            w.outcome = outcome.as_str();
+            w.counts = counts;
+            w.detail = detail.map(str::to_string);
+        }
         Ok(())
     }
 
@@ -1152,6 +1332,7 @@ impl Tx<'_> {
                 .arrival
                 .map(|(a, joins, _)| DiagnosticsRow::of(a, joins)),
             prev_in_series,
+            attributes: attributes_json(record),
         });
         if batch.rows.len() >= RECORD_CHUNK {
             self.flush_records(batch)?;
@@ -1161,6 +1342,13 @@ impl Tx<'_> {
 
     /// Writes every queued record.
     pub fn flush_records(&self, batch: &mut RecordBatch<'_>) -> Result<()> {
+        self.note_written(
+            &batch.rows,
+            |r| Some(r.file),
+            |w, r| {
+                seal_record(&mut w.records, r);
+            },
+        );
         static SQL: OnceLock<(String, String)> = OnceLock::new();
         let sql = SQL.get_or_init(|| {
             (
@@ -1175,6 +1363,31 @@ impl Tx<'_> {
             RECORD_COLUMNS,
             bind_record,
         )
+    }
+
+    /// Encodes, for the seal of their file, those of `rows` that belong to
+    /// a file this transaction inserted (`file_of`).
+    fn note_written<R>(
+        &self,
+        rows: &[R],
+        file_of: impl Fn(&R) -> Option<i64>,
+        encode: impl Fn(&mut seal::FileRows, &R),
+    ) {
+        let mut written = self.written.borrow_mut();
+        if written.is_empty() {
+            return;
+        }
+        for r in rows {
+            let Some(file) = file_of(r) else {
+                continue;
+            };
+            if let Some(w) = written.iter_mut().find(|w| w.id == file)
+                && w.rows.keeping()
+            {
+                encode(&mut w.rows, r);
+                w.rows.check_budget();
+            }
+        }
     }
 
     /// Writes `rows` with the `chunk`-row statement while full chunks last,
@@ -1231,6 +1444,7 @@ impl Tx<'_> {
             fit_point: None,
             diagnostics: None,
             prev_in_series: None,
+            attributes: attributes_json(record),
         });
         self.flush_records(&mut batch)?;
         Ok(id)
@@ -1300,6 +1514,27 @@ impl Tx<'_> {
                 ])
             })
             .map_err(self.wrap())?;
+        if let Some(w) = self
+            .written
+            .borrow_mut()
+            .iter_mut()
+            .find(|w| w.id == file.0)
+            && w.rows.keeping()
+        {
+            let id = self.tx.last_insert_rowid();
+            w.rows
+                .quarantined
+                .row(id)
+                .put(&id)
+                .put(&file.0)
+                .put(&(e.line as i64))
+                .put(&e.column.map(|c| c as i64))
+                .put(&e.field)
+                .put(&e.record_id)
+                .put(&e.reason)
+                .put(&e.raw);
+            w.rows.check_budget();
+        }
         Ok(())
     }
 
@@ -1339,6 +1574,13 @@ impl Tx<'_> {
 
     /// Writes every queued fit row.
     pub fn flush_fits(&self, batch: &mut FitBatch) -> Result<()> {
+        self.note_written(
+            &batch.rows,
+            |f| f.trigger_file,
+            |w, f| {
+                seal_fit(&mut w.fits, f);
+            },
+        );
         static SQL: OnceLock<(String, String)> = OnceLock::new();
         let sql = SQL.get_or_init(|| {
             (
@@ -1383,8 +1625,39 @@ impl Tx<'_> {
 
     /// The seal of `scope` as it stands in this transaction, as the text
     /// to append to the audit entry that vouches for it.
+    ///
+    /// A file inserted by this transaction is sealed from the values its
+    /// rows were written with, kept as they were bound (no read-back: the
+    /// read-back was about an eighth of a large ingest); debug builds also
+    /// read the rows back and check that both agree. Other scopes, and a
+    /// file sealed a second time in one transaction, are read back.
     pub fn seal(&self, scope: seal::SealScope) -> Result<String> {
-        let hash = seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+        let hash = match scope {
+            seal::SealScope::File(id) => {
+                let taken = {
+                    let mut written = self.written.borrow_mut();
+                    let at = written.iter().position(|w| w.id == id);
+                    at.map(|i| written.swap_remove(i))
+                };
+                match taken {
+                    Some(mut w) if w.rows.keeping() => {
+                        let hash = w.rows.seal(&mut w.own_row());
+                        if cfg!(debug_assertions) {
+                            let read_back =
+                                seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+                            debug_assert_eq!(
+                                hash, read_back,
+                                "BUG: the seal of file {id} from the values written differs from the rows read back"
+                            );
+                        }
+                        hash
+                    }
+                    // Not written here, or too large to keep: read back.
+                    _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+                }
+            }
+            _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+        };
         Ok(seal::seal_text(scope, &hash))
     }
 
@@ -1566,6 +1839,340 @@ mod tests {
         let err = Store::open(&path).err().unwrap();
         assert!(matches!(err, StoreError::TooNew { found: 99, .. }), "{err}");
         assert!(err.to_string().contains("schema version 99"));
+    }
+
+    use crate::records::{Measure, SeriesId};
+    use crate::stats::SeriesState;
+    use seal::{SealKind, SealScope};
+
+    // Values below are invented to be awkward for the seals: NaN, -0.0,
+    // None, empty and non-ASCII text, rows written out of id order.
+
+    fn record(id: &str, x: f64, y: Measure, line: u64) -> Record {
+        Record {
+            record_id: id.to_string(),
+            series: SeriesId("MW-Ü/nitrate".to_string()),
+            x,
+            y,
+            unit: Some("µg/L".to_string()),
+            unit_as_written: None,
+            sampled_at: Some(String::new()),
+            note: None,
+            attributes: Vec::new(),
+            line,
+            raw: format!("{id},{x},…"),
+        }
+    }
+
+    fn bad_row(line: u64, field: Option<&str>, reason: &str) -> RecordError {
+        RecordError {
+            line,
+            column: field.map(|_| 3),
+            field: field.map(str::to_string),
+            record_id: Some(String::new()),
+            reason: reason.to_string(),
+            raw: String::new(),
+        }
+    }
+
+    fn new_file<'a>(name: &'a str, sha: &'a str) -> NewFile<'a> {
+        NewFile {
+            name,
+            sha256: sha,
+            size: 1 << 40,
+            arrived_at: "2026-12-02T00:00:00Z",
+            feed: "lab—ü",
+        }
+    }
+
+    /// Seals `File(id)` in `tx`, checking the text against the seal of the
+    /// rows read back in the transaction; returns the hash.
+    fn seal_checked(tx: &Tx<'_>, id: FileId) -> String {
+        let scope = SealScope::File(id.0);
+        let read_back = seal::compute(&tx.tx, scope, tx.first).unwrap();
+        let text = tx.seal(scope).unwrap();
+        assert_eq!(text, seal::seal_text(scope, &read_back));
+        read_back
+    }
+
+    /// A fit row for `state` triggered by `file`.
+    fn new_fit<'a>(
+        state: &'a SeriesRow,
+        file: Option<FileId>,
+        fit: Option<&'a LineFit>,
+    ) -> NewFit<'a> {
+        NewFit {
+            state,
+            trigger_file: file,
+            created_at: "2026-12-02T00:00:00Z",
+            transform: "log",
+            non_detects: "substitute:0.5",
+            level: 0.95,
+            fit,
+            robust: None,
+            note: None,
+        }
+    }
+
+    #[test]
+    fn a_file_sealed_from_its_written_values_matches_its_rows_read_back() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let file = tx
+            .insert_file(&new_file("Brunnen Ü 7 (März).csv", "ab12"))
+            .unwrap();
+        tx.insert_bad_row(file, &bad_row(2, None, "kein Wert — leer"))
+            .unwrap();
+        let mut row = tx
+            .create_series("MW-Ü/nitrate", Some("µg/L"), "log", "exclude")
+            .unwrap();
+        let mut state = SeriesState::new();
+        let mut arrivals = Vec::new();
+        for (x, y) in [(2020.0, 1.0), (2021.0, -0.0), (2022.0, 3.5), (2023.0, 3.0)] {
+            arrivals.push(state.add(x, y).unwrap());
+        }
+        let mut owned = Vec::new();
+        for i in 0..80u32 {
+            let x = if i == 0 {
+                -0.0
+            } else {
+                2020.0 + f64::from(i) / 4.0
+            };
+            let y = match i % 3 {
+                0 => Measure::Detected(-0.0),
+                1 => Measure::NonDetect { limit: 0.5 },
+                _ => Measure::Detected(f64::from(i) * 1e-300),
+            };
+            let mut r = record(&format!("R-{i}"), x, y, u64::from(i) + 2);
+            if i % 4 == 0 {
+                r.attributes = vec![
+                    ("Tiefe".to_string(), "3 m".to_string()),
+                    ("leer".to_string(), String::new()),
+                ];
+                r.note = Some("Probe trüb ☁".to_string());
+                r.unit = None;
+            }
+            owned.push(r);
+        }
+        let mut batch = RecordBatch::new();
+        let mut prev = None;
+        for (i, r) in owned.iter().enumerate() {
+            if i % 9 == 4 {
+                // A conflict in the middle of a batch: written at once,
+                // with an id after the queued rows written later.
+                tx.insert_proposed(r, row.id, file, 2).unwrap();
+                continue;
+            }
+            if i % 17 == 5 {
+                tx.insert_bad_row(file, &bad_row(90 + i as u64, Some("wert"), "ungültig"))
+                    .unwrap();
+            }
+            let arrival = &arrivals[i % arrivals.len()];
+            let placement = match i % 5 {
+                0 => RecordPlacement {
+                    fit_point: Some((-0.0, f64::NAN)),
+                    arrival: None,
+                },
+                1 => RecordPlacement {
+                    fit_point: None,
+                    arrival: None,
+                },
+                _ => RecordPlacement {
+                    fit_point: Some((r.x, 0.25)),
+                    arrival: Some((arrival, 7, 0.95)),
+                },
+            };
+            if i % 11 == 3 {
+                // Diagnostics no measure yields today, written as bound.
+                let id = tx.next_record.get();
+                tx.next_record.set(id + 1);
+                batch.rows.push(PendingRecord {
+                    id,
+                    record: r,
+                    version: 1,
+                    status: "current",
+                    series: row.id.0,
+                    file: file.0,
+                    fit_point: Some((0.0, -0.0)),
+                    diagnostics: Some(DiagnosticsRow {
+                        joined_fit: 0,
+                        leverage: Some(f64::NAN),
+                        standardized: Some(-0.0),
+                        studentized: Some(f64::INFINITY),
+                        cooks: Some(f64::NEG_INFINITY),
+                        dffits: None,
+                        dfbetas_intercept: Some(1e300),
+                        dfbetas_slope: Some(-5e-324),
+                        covariance_ratio: Some(2.0),
+                        prediction_t: Some(-f64::NAN),
+                        slope_without: Some(0.0),
+                        slope_p_without: None,
+                        undefined: Some(""),
+                    }),
+                    prev_in_series: prev,
+                    attributes: attributes_json(r),
+                });
+                prev = Some(id);
+                continue;
+            }
+            prev = Some(
+                tx.queue_current(&mut batch, r, row.id, file, placement, prev)
+                    .unwrap(),
+            );
+        }
+        tx.flush_records(&mut batch).unwrap();
+        row.moments = *state.moments();
+        row.latest_record = prev;
+        let mut line = LineFit::from_moments(state.moments(), 0.95).unwrap();
+        line.slope_t = Some(f64::NAN);
+        line.r_squared = Some(-0.0);
+        line.intercept = -0.0;
+        let mut fits = FitBatch::new();
+        for v in 0..20 {
+            row.fit_version = v + 1;
+            row.x_span = (v % 2 == 0).then_some((-0.0, 3.0));
+            row.significant = v % 3 == 0;
+            row.window = (v % 4 == 1).then(|| "last:40 — ü".to_string());
+            let mut f = new_fit(&row, Some(file), (v % 2 == 1).then_some(&line));
+            f.robust = (v % 5 == 0).then_some(RobustRow {
+                slope: -0.0,
+                ci_low: f64::NAN,
+                ci_high: 4.0,
+                mk_s: -12,
+                mk_p: 1.0,
+            });
+            f.note = (v % 3 == 1).then(|| "kein Trend — zu wenig".to_string());
+            row.latest_fit = Some(tx.queue_fit(&mut fits, &f).unwrap());
+        }
+        // A fit triggered by no file is no part of the file's seal.
+        tx.queue_fit(&mut fits, &new_fit(&row, None, None)).unwrap();
+        tx.flush_fits(&mut fits).unwrap();
+        tx.insert_bad_row(file, &bad_row(200, Some("ö"), ""))
+            .unwrap();
+        tx.finish_file(
+            file,
+            FileOutcome::Partial,
+            FileCounts {
+                new: 60,
+                same: 0,
+                conflict: 9,
+                bad: 7,
+            },
+            Some("teilweise — ü"),
+        )
+        .unwrap();
+        // The seal below is computed from these, not read back.
+        let kept = tx.written.borrow()[0].rows.records.len();
+        assert_eq!(kept, owned.len());
+        let hash = seal_checked(&tx, file);
+        tx.commit().unwrap();
+        // `verify` recomputes the same seal from the whole store.
+        let again = store.recompute_seals(SealKind::File, &[file.0]).unwrap();
+        assert_eq!(again[&file.0], hash);
+        let totals = store.totals().unwrap();
+        assert_eq!(totals.proposed, 9);
+        assert!(totals.quarantined_rows >= 5);
+    }
+
+    #[test]
+    fn two_files_and_a_second_seal_in_one_transaction_are_each_sealed_right() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let a = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
+        let b = tx.insert_file(&new_file("b.csv", "bb")).unwrap();
+        let row = tx.create_series("S", None, "none", "exclude").unwrap();
+        let records: Vec<Record> = (0..5)
+            .map(|i| record(&format!("X{i}"), f64::from(i), Measure::Detected(1.0), 1))
+            .collect();
+        let mut batch = RecordBatch::new();
+        for (i, r) in records.iter().enumerate() {
+            let file = if i % 2 == 0 { a } else { b };
+            tx.insert_bad_row(file, &bad_row(i as u64, None, "x"))
+                .unwrap();
+            let placement = RecordPlacement {
+                fit_point: None,
+                arrival: None,
+            };
+            tx.queue_current(&mut batch, r, row.id, file, placement, None)
+                .unwrap();
+        }
+        tx.flush_records(&mut batch).unwrap();
+        let mut fits = FitBatch::new();
+        tx.queue_fit(&mut fits, &new_fit(&row, Some(b), None))
+            .unwrap();
+        tx.queue_fit(&mut fits, &new_fit(&row, Some(a), None))
+            .unwrap();
+        tx.flush_fits(&mut fits).unwrap();
+        tx.finish_file(
+            b,
+            FileOutcome::Quarantined,
+            FileCounts::default(),
+            Some("whole"),
+        )
+        .unwrap();
+        let hash_b = seal_checked(&tx, b);
+        let hash_a = seal_checked(&tx, a);
+        // A row added after the file was sealed, and the file sealed
+        // again: read back this time, so still right.
+        tx.insert_bad_row(a, &bad_row(99, None, "late")).unwrap();
+        let hash_a2 = seal_checked(&tx, a);
+        assert_ne!(hash_a, hash_a2);
+        assert!(tx.written.borrow().is_empty());
+        tx.commit().unwrap();
+        let again = store.recompute_seals(SealKind::File, &[a.0, b.0]).unwrap();
+        assert_eq!(again[&a.0], hash_a2);
+        assert_eq!(again[&b.0], hash_b);
+    }
+
+    #[test]
+    fn a_file_too_large_to_keep_its_encoded_rows_is_sealed_from_the_rows_read_back() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let file = tx.insert_file(&new_file("big.csv", "bb")).unwrap();
+        let row = tx.create_series("S", None, "none", "exclude").unwrap();
+        // Several times the test budget of encoded rows.
+        let records: Vec<Record> = (0..2_000)
+            .map(|i| record(&format!("B{i:05}"), f64::from(i), Measure::Detected(2.5), 1))
+            .collect();
+        let mut batch = RecordBatch::new();
+        for r in &records {
+            let placement = RecordPlacement {
+                fit_point: None,
+                arrival: None,
+            };
+            tx.queue_current(&mut batch, r, row.id, file, placement, None)
+                .unwrap();
+        }
+        tx.flush_records(&mut batch).unwrap();
+        tx.insert_bad_row(file, &bad_row(7, None, "late")).unwrap();
+        assert!(
+            tx.written
+                .borrow()
+                .iter()
+                .all(|w| !w.rows.keeping() && w.rows.records.len() == 0),
+            "the buffers were dropped at the budget"
+        );
+        tx.finish_file(file, FileOutcome::Partial, FileCounts::default(), None)
+            .unwrap();
+        let hash = seal_checked(&tx, file);
+        tx.commit().unwrap();
+        let again = store.recompute_seals(SealKind::File, &[file.0]).unwrap();
+        assert_eq!(again[&file.0], hash);
+    }
+
+    #[cfg(debug_assertions)]
+    #[test]
+    #[should_panic(expected = "differs from the rows read back")]
+    fn debug_builds_catch_a_seal_from_values_that_the_rows_do_not_match() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
+        tx.insert_bad_row(file, &bad_row(2, None, "x")).unwrap();
+        // A change the value-based seal cannot see.
+        tx.tx
+            .execute("UPDATE quarantined_rows SET reason = 'y'", [])
+            .unwrap();
+        let _ = tx.seal(SealScope::File(file.0));
     }
 
     #[test]

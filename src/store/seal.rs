@@ -310,37 +310,442 @@ fn feed_row(
     // One update per row: the hash's per-call overhead dominated when
     // each column was fed on its own.
     let mut buf: Vec<u8> = Vec::with_capacity(512);
-    buf.push(b'R');
+    buf.push(ROW_TAG);
     for i in from..columns {
-        match row.get_ref(i)? {
-            ValueRef::Null => buf.push(b'N'),
-            ValueRef::Integer(v) => {
-                buf.push(b'I');
-                buf.extend_from_slice(&v.to_le_bytes());
-            }
-            ValueRef::Real(v) => {
-                buf.push(b'F');
-                buf.extend_from_slice(&v.to_bits().to_le_bytes());
-            }
-            ValueRef::Text(t) => {
-                buf.push(b'T');
-                buf.extend_from_slice(&(t.len() as u64).to_le_bytes());
-                buf.extend_from_slice(t);
-            }
-            ValueRef::Blob(b) => {
-                buf.push(b'B');
-                buf.extend_from_slice(&(b.len() as u64).to_le_bytes());
-                buf.extend_from_slice(b);
-            }
-        }
+        encode_stored(&mut buf, row.get_ref(i)?);
     }
     h.update(&buf);
     Ok(())
 }
 
+/// What starts each row's bytes.
+const ROW_TAG: u8 = b'R';
+/// What starts each section (one table's rows) of a seal.
+const SECTION_TAG: &[u8] = b"Q";
+
+/// A value as SQLite gives it back, as a seal encodes it: a type tag, then
+/// the integer or the double's bits (little-endian), or the length and the
+/// bytes of a text or blob.
+fn encode_stored(buf: &mut Vec<u8>, v: ValueRef<'_>) {
+    match v {
+        ValueRef::Null => buf.push(b'N'),
+        ValueRef::Integer(v) => {
+            buf.push(b'I');
+            buf.extend_from_slice(&v.to_le_bytes());
+        }
+        ValueRef::Real(v) => {
+            buf.push(b'F');
+            buf.extend_from_slice(&v.to_bits().to_le_bytes());
+        }
+        ValueRef::Text(t) => {
+            buf.push(b'T');
+            buf.extend_from_slice(&(t.len() as u64).to_le_bytes());
+            buf.extend_from_slice(t);
+        }
+        ValueRef::Blob(b) => {
+            buf.push(b'B');
+            buf.extend_from_slice(&(b.len() as u64).to_le_bytes());
+            buf.extend_from_slice(b);
+        }
+    }
+}
+
+/// A value about to be bound, encoded as [`feed_row`] will see it once
+/// SQLite has stored it, so that a seal can be computed from the values a
+/// transaction writes instead of reading its rows back.
+///
+/// Each implementation holds for the column affinity its Rust type is
+/// bound into here: integers and booleans into INTEGER columns, `f64` into
+/// REAL columns, strings into TEXT columns. SQLite's storage rules that
+/// matter (pinned by the tests below):
+/// - a NaN binds as NULL;
+/// - a REAL column keeps an integral double as a compact integer and gives
+///   it back as REAL, so -0.0 comes back as +0.0 (every other double comes
+///   back bit for bit);
+/// - a boolean binds as the integer 0 or 1;
+/// - `None` is NULL, and an empty text stays an empty text.
+pub(crate) trait SealValue {
+    /// Appends the encoding of the value as it will be read back.
+    fn encode(&self, buf: &mut Vec<u8>);
+}
+
+impl SealValue for i64 {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        encode_stored(buf, ValueRef::Integer(*self));
+    }
+}
+
+impl SealValue for bool {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        encode_stored(buf, ValueRef::Integer(i64::from(*self)));
+    }
+}
+
+impl SealValue for f64 {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        if self.is_nan() {
+            encode_stored(buf, ValueRef::Null);
+        } else if *self == 0.0 {
+            // Both zeros are stored as the integer 0 and read back as +0.0.
+            encode_stored(buf, ValueRef::Real(0.0));
+        } else {
+            encode_stored(buf, ValueRef::Real(*self));
+        }
+    }
+}
+
+impl SealValue for str {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        encode_stored(buf, ValueRef::Text(self.as_bytes()));
+    }
+}
+
+impl SealValue for String {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        self.as_str().encode(buf);
+    }
+}
+
+impl<T: SealValue + ?Sized> SealValue for &T {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        (**self).encode(buf);
+    }
+}
+
+impl<T: SealValue> SealValue for Option<T> {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        match self {
+            Some(v) => v.encode(buf),
+            None => encode_stored(buf, ValueRef::Null),
+        }
+    }
+}
+
+/// The rows of one section of a seal, encoded from their values as they
+/// were written (in any order), each with its row id.
+#[derive(Debug, Default)]
+pub(crate) struct SealRows {
+    bytes: Vec<u8>,
+    /// Row id and where its bytes start in `bytes`, in the order written
+    /// (a row's bytes end where the next row's start).
+    rows: Vec<(i64, usize)>,
+}
+
+/// One row being added to a [`SealRows`]: its columns are put in the
+/// table's order, as the section's SELECT gives them.
+pub(crate) struct SealRow<'a> {
+    bytes: &'a mut Vec<u8>,
+}
+
+impl SealRow<'_> {
+    /// Appends the next column's value.
+    pub(crate) fn put<V: SealValue + ?Sized>(&mut self, v: &V) -> &mut Self {
+        v.encode(self.bytes);
+        self
+    }
+}
+
+impl SealRows {
+    /// Starts the row with id `id`; put its columns in the returned row.
+    pub(crate) fn row(&mut self, id: i64) -> SealRow<'_> {
+        self.rows.push((id, self.bytes.len()));
+        self.bytes.push(ROW_TAG);
+        SealRow {
+            bytes: &mut self.bytes,
+        }
+    }
+
+    /// Rows added.
+    pub(crate) fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    /// Feeds the section to the hash, rows in id order (as the section's
+    /// `ORDER BY id`), and empties it.
+    fn feed(&mut self, h: &mut Sha256) {
+        h.update(SECTION_TAG);
+        if self.rows.is_sorted_by_key(|r| r.0) {
+            // Written in id order (the usual case): the bytes follow each
+            // other already.
+            h.update(&self.bytes);
+        } else {
+            let ends = self.rows.iter().skip(1).map(|r| r.1);
+            let mut spans: Vec<(i64, usize, usize)> = self
+                .rows
+                .iter()
+                .zip(ends.chain([self.bytes.len()]))
+                .map(|(&(id, start), end)| (id, start, end))
+                .collect();
+            spans.sort_unstable_by_key(|r| r.0);
+            for (_, start, end) in spans {
+                h.update(&self.bytes[start..end]);
+            }
+        }
+        self.bytes.clear();
+        self.rows.clear();
+    }
+}
+
+/// A source file's rows as the transaction that stored the file wrote
+/// them, kept so that its seal needs no read-back (see [`SealValue`]).
+#[derive(Debug, Default)]
+pub(crate) struct FileRows {
+    /// `records` rows of the file, in [`RECORD_COLUMNS`] order.
+    pub(crate) records: SealRows,
+    /// `fits` rows whose `trigger_file` is the file, all columns.
+    pub(crate) fits: SealRows,
+    /// `quarantined_rows` rows of the file, all columns.
+    pub(crate) quarantined: SealRows,
+    /// The buffers grew past [`FileRows::BUDGET`] and were dropped: this
+    /// file's seal reads its rows back (streaming, in constant memory).
+    pub(crate) read_back: bool,
+}
+
+impl FileRows {
+    /// Bytes of encoded rows kept per file. A delivery of a million
+    /// records encodes to a few hundred megabytes; past this budget its
+    /// seal is computed the old way, from the rows read back, which costs
+    /// time (about a tenth of the ingest) instead of memory.
+    pub(crate) const BUDGET: usize = if cfg!(test) { 64 << 10 } else { 32 << 20 };
+
+    /// Whether rows are still to be encoded.
+    pub(crate) fn keeping(&self) -> bool {
+        !self.read_back
+    }
+
+    /// Drops the buffers once they pass the budget.
+    pub(crate) fn check_budget(&mut self) {
+        let held = self.records.bytes.len() + self.fits.bytes.len() + self.quarantined.bytes.len();
+        if held > Self::BUDGET {
+            *self = FileRows {
+                read_back: true,
+                ..FileRows::default()
+            };
+        }
+    }
+
+    /// The seal of [`SealScope::File`] of the file whose own
+    /// `source_files` row (all columns) is `file_row`: the same hash as
+    /// [`compute`] over the stored rows, sections in the order of
+    /// `sections(SealKind::File)`. Empties the buffers.
+    pub(crate) fn seal(&mut self, file_row: &mut SealRows) -> String {
+        debug_assert_eq!(file_row.len(), 1, "BUG: a file has one source_files row");
+        let mut h = Sha256::new();
+        file_row.feed(&mut h);
+        self.records.feed(&mut h);
+        self.fits.feed(&mut h);
+        self.quarantined.feed(&mut h);
+        hex::encode(h.finalize())
+    }
+}
+
 #[cfg(test)]
 mod tests {
+    #![allow(clippy::unwrap_used)]
     use super::*;
+
+    /// Binds `value` into column `column` of a fresh row of `t` and gives
+    /// back the bytes a seal reads for it (`feed_row`'s encoding) and those
+    /// [`SealValue`] predicts, read both inside the writing transaction and
+    /// after its commit.
+    fn stored_and_predicted<V: SealValue + ToSql>(
+        conn: &mut Connection,
+        column: &str,
+        value: V,
+    ) -> (Vec<u8>, Vec<u8>, Vec<u8>) {
+        let read = |c: &Connection, id: i64| {
+            c.query_row(
+                &format!("SELECT {column} FROM t WHERE id = ?1"),
+                [id],
+                |r| {
+                    let mut buf = Vec::new();
+                    encode_stored(&mut buf, r.get_ref(0)?);
+                    Ok(buf)
+                },
+            )
+            .unwrap()
+        };
+        let tx = conn.transaction().unwrap();
+        tx.execute(&format!("INSERT INTO t ({column}) VALUES (?1)"), [&value])
+            .unwrap();
+        let id = tx.last_insert_rowid();
+        let inside = read(&tx, id);
+        tx.commit().unwrap();
+        let after = read(conn, id);
+        let mut predicted = Vec::new();
+        value.encode(&mut predicted);
+        (inside, after, predicted)
+    }
+
+    fn test_table() -> Connection {
+        let conn = Connection::open_in_memory().unwrap();
+        conn.execute_batch(
+            "CREATE TABLE t (id INTEGER PRIMARY KEY, r REAL, i INTEGER, s TEXT, plain)",
+        )
+        .unwrap();
+        conn
+    }
+
+    fn real(v: f64) -> Vec<u8> {
+        let mut b = vec![b'F'];
+        b.extend_from_slice(&v.to_bits().to_le_bytes());
+        b
+    }
+
+    fn integer(v: i64) -> Vec<u8> {
+        let mut b = vec![b'I'];
+        b.extend_from_slice(&v.to_le_bytes());
+        b
+    }
+
+    fn text(v: &str) -> Vec<u8> {
+        let mut b = vec![b'T'];
+        b.extend_from_slice(&(v.len() as u64).to_le_bytes());
+        b.extend_from_slice(v.as_bytes());
+        b
+    }
+
+    #[test]
+    fn sqlite_storage_rules_are_what_seal_values_predict() {
+        let mut conn = test_table();
+        // Each rule, pinned against what the bundled SQLite gives back.
+        let pinned: [(f64, Vec<u8>); 6] = [
+            // A NaN binds as NULL.
+            (f64::NAN, vec![b'N']),
+            // -0.0 is kept as the integer 0 in a REAL column: +0.0 back.
+            (-0.0, real(0.0)),
+            // Integral doubles come back as REAL, not as integers.
+            (3.0, real(3.0)),
+            (-2.0f64.powi(53), real(-(2.0f64.powi(53)))),
+            // Large doubles, integral or not, come back bit for bit.
+            (1e300, real(1e300)),
+            (2.0f64.powi(63), real(2.0f64.powi(63))),
+        ];
+        for (v, want) in pinned {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, "r", v);
+            assert_eq!(inside, want, "{v:?} read back inside the transaction");
+            assert_eq!(after, want, "{v:?} read back after commit");
+            assert_eq!(predicted, want, "{v:?} predicted");
+        }
+        // A column without affinity keeps -0.0: the sign is lost by the
+        // REAL column's compact storage of integral values, not by binding.
+        let (inside, _, _) = stored_and_predicted(&mut conn, "plain", -0.0f64);
+        assert_eq!(inside, real(-0.0));
+        // Many more doubles, including the edges of i64 and of the double
+        // range, subnormals, infinities and NaNs with other payloads.
+        let more = [
+            0.0,
+            1.0,
+            -1.0,
+            0.1,
+            -2.5,
+            1e18,
+            -1e18,
+            2.0f64.powi(53) + 2.0,
+            -(2.0f64.powi(63)),
+            9_223_372_036_854_774_784.0,
+            1.5e19,
+            f64::MAX,
+            f64::MIN,
+            f64::MIN_POSITIVE,
+            -f64::MIN_POSITIVE,
+            5e-324,
+            -5e-324,
+            f64::EPSILON,
+            f64::INFINITY,
+            f64::NEG_INFINITY,
+            -f64::NAN,
+            f64::from_bits(0x7ff0_0000_0000_0001),
+            2_024.123_456_789,
+            -1e-300,
+        ];
+        for v in more {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, "r", v);
+            assert_eq!(inside, predicted, "{v:?} inside the transaction");
+            assert_eq!(after, predicted, "{v:?} after commit");
+        }
+        for v in [true, false] {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, "i", v);
+            assert_eq!(inside, integer(i64::from(v)), "{v}");
+            assert_eq!(after, integer(i64::from(v)), "{v}");
+            assert_eq!(predicted, integer(i64::from(v)), "{v}");
+        }
+        for v in [0, 1, -1, i64::MAX, i64::MIN, 1 << 53] {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, "i", v);
+            assert_eq!((&inside, &after), (&integer(v), &integer(v)), "{v}");
+            assert_eq!(predicted, integer(v), "{v}");
+        }
+        for v in [
+            "",
+            "plain",
+            "Grundwasser Ü-7 µg/L — 3 °C",
+            "日本語",
+            "a\u{0}b",
+            "12",
+            "1.5",
+        ] {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, "s", v);
+            assert_eq!((&inside, &after), (&text(v), &text(v)), "{v:?}");
+            assert_eq!(predicted, text(v), "{v:?}");
+        }
+        let (inside, after, predicted) = stored_and_predicted(&mut conn, "s", String::new());
+        assert_eq!(
+            (&inside, &after, &predicted),
+            (&text(""), &text(""), &text(""))
+        );
+        // None is NULL whatever the column.
+        for column in ["r", "i", "s"] {
+            let (inside, after, predicted) = stored_and_predicted(&mut conn, column, None::<f64>);
+            assert_eq!(
+                (&inside, &after, &predicted),
+                (&vec![b'N'], &vec![b'N'], &vec![b'N'])
+            );
+            let (inside, after, predicted) =
+                stored_and_predicted(&mut conn, column, None::<String>);
+            assert_eq!(
+                (&inside, &after, &predicted),
+                (&vec![b'N'], &vec![b'N'], &vec![b'N'])
+            );
+        }
+        let (inside, _, predicted) = stored_and_predicted(&mut conn, "r", Some(-0.0f64));
+        assert_eq!((&inside, &predicted), (&real(0.0), &real(0.0)));
+        let (inside, _, predicted) = stored_and_predicted(&mut conn, "r", Some(f64::NAN));
+        assert_eq!((&inside, &predicted), (&vec![b'N'], &vec![b'N']));
+    }
+
+    #[test]
+    fn rows_written_out_of_id_order_are_fed_in_id_order() {
+        let mut conn = test_table();
+        let tx = conn.transaction().unwrap();
+        let mut rows = SealRows::default();
+        for (id, r, s) in [
+            (3, 1.5, "c"),
+            (1, -0.0, "a"),
+            (4, f64::NAN, ""),
+            (2, 7.0, "b"),
+        ] {
+            tx.execute(
+                "INSERT INTO t (id, r, s) VALUES (?1, ?2, ?3)",
+                rusqlite::params![id, r, s],
+            )
+            .unwrap();
+            rows.row(id).put(&id).put(&r).put(s);
+        }
+        let mut h = Sha256::new();
+        rows.feed(&mut h);
+        let mut want = Sha256::new();
+        rows_of(
+            &mut want,
+            &tx,
+            "SELECT id, r, s FROM t WHERE ?1 = ?1 AND id >= ?2 ORDER BY id",
+        );
+        assert_eq!(h.finalize(), want.finalize());
+        assert_eq!(rows.len(), 0, "feeding empties the section");
+    }
+
+    fn rows_of(h: &mut Sha256, conn: &Connection, sql: &str) {
+        rows(h, conn, sql, 0, 0).unwrap();
+    }
 
     #[test]
     fn seals_are_found_in_a_detail_text_and_nothing_else_is() {

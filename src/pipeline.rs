@@ -11,7 +11,10 @@
 //! counted as the same record, never twice; with other values it is kept
 //! aside as a proposed version (a conflict), never overwriting.
 
-use std::collections::HashMap;
+/// The pipeline's maps are keyed by series keys and looked up for every
+/// record; SipHash (the standard default) cost a few percent of a large
+/// ingest. foldhash is seeded per process like the default.
+type HashMap<K, V> = std::collections::HashMap<K, V, foldhash::fast::RandomState>;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{channel, sync_channel};
@@ -46,6 +49,28 @@ const ROBUST_GROWTH: f64 = 2.0;
 /// Records awaiting review are left out of the judging fit up to one in
 /// this many of the series' points.
 const MAX_LEFT_OUT_SHARE: usize = 10;
+
+/// A file larger than this is neither read ahead on the reader thread nor
+/// parsed whole: a parsed record takes several times its line in memory
+/// (about 480 bytes for a 58-byte line), so a 100 MB delivery parsed whole
+/// took 1 GB. It is read when its turn comes and parsed in chunks of
+/// [`CHUNK_ROWS`] rows, twice: once to count each series' records and the
+/// refused rows (what the outlier test and the reject-file rule need of
+/// the whole file), once to store them, in the same one transaction.
+const LARGE_FILE_BYTES: u64 = 4 << 20;
+
+/// Rows per chunk of a large file.
+const CHUNK_ROWS: usize = 16_384;
+
+/// Refused rows listed in a finding or a reject-file reason; the rest are
+/// counted (each is stored in `quarantined_rows` all the same).
+const LISTED_ERRORS: usize = 200;
+
+/// Fit points kept in [`SeriesCache`] at most (16 bytes each: 64 MB).
+/// Past it they are all let go, and each series reads its points back
+/// from the store at its next robust-slope computation: a daemon running
+/// for months must not hold every point it ever stored.
+const POINTS_KEPT_MAX: usize = 4_000_000;
 
 /// Series rows kept between files by the one writer, so that a series
 /// touched by every file is not read back each time. Cleared whenever a
@@ -147,6 +172,7 @@ pub enum PipelineError {
 #[derive(Debug)]
 pub struct Prepared {
     read: Result<(String, u64, Vec<u8>), InboxError>,
+    /// `None` for a large file, parsed in chunks as it is stored.
     parsed: Option<Result<records::ParsedFile, records::FileError>>,
     now: SystemTime,
 }
@@ -161,17 +187,25 @@ fn listing_root(file: &ReadyFile) -> PathBuf {
         .map_or_else(|| PathBuf::from("."), Path::to_path_buf)
 }
 
-/// Reads, hashes and parses one file (no store, no series state).
+/// Reads, hashes and parses one file (no store, no series state); a large
+/// file is only read (see [`LARGE_FILE_BYTES`]).
 pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
     let read = inbox::read_below(&file.path, &listing_root(file), config.max_file_bytes);
-    let parsed = read.as_ref().ok().map(|(_, _, bytes)| {
-        let (_, layout) = config.feed_for(&file.relative);
-        let (year, month, day, _) = clock::civil(now);
-        let today = Today { year, month, day };
-        let rules = |id: &SeriesId| config.series_settings(id).rules();
-        records::parse_file(bytes, layout, &rules, today)
-    });
+    let parsed = read
+        .as_ref()
+        .ok()
+        .filter(|(_, _, bytes)| bytes.len() as u64 <= LARGE_FILE_BYTES)
+        .map(|(_, _, bytes)| {
+            let (_, layout) = config.feed_for(&file.relative);
+            let rules = |id: &SeriesId| config.series_settings(id).rules();
+            records::parse_file(bytes, layout, &rules, today_of(now))
+        });
     Prepared { read, parsed, now }
+}
+
+fn today_of(now: SystemTime) -> Today {
+    let (year, month, day, _) = clock::civil(now);
+    Today { year, month, day }
 }
 
 /// Processes one settled file.
@@ -237,17 +271,21 @@ pub fn process_in_order(
         return;
     }
     // One file ahead at most: memory stays at two files' worth.
-    let (ready_tx, ready_rx) = sync_channel::<Prepared>(1);
+    let (ready_tx, ready_rx) = sync_channel::<Option<Prepared>>(1);
     let (spent_tx, spent_rx) = channel::<Prepared>();
     std::thread::scope(|scope| {
         scope.spawn(move || {
             for (config, file) in files {
                 // Free what the writer is done with here, not on its thread.
                 while spent_rx.try_recv().is_ok() {}
-                if ready_tx
-                    .send(prepare(config, file, SystemTime::now()))
-                    .is_err()
-                {
+                // A large file is read by the writer when its turn comes,
+                // so that two of them are never in memory at once.
+                let prepared = if file.size > LARGE_FILE_BYTES {
+                    None
+                } else {
+                    Some(prepare(config, file, SystemTime::now()))
+                };
+                if ready_tx.send(prepared).is_err() {
                     return;
                 }
             }
@@ -259,6 +297,7 @@ pub fn process_in_order(
             let Ok(prepared) = ready_rx.recv() else {
                 break;
             };
+            let prepared = prepared.unwrap_or_else(|| prepare(config, file, SystemTime::now()));
             let (result, spent) = process_prepared(config, store, cache, file, prepared);
             let _ = spent_tx.send(spent);
             if each(i, file, result) == Flow::Stop {
@@ -324,40 +363,98 @@ fn process_file_inner(
             moved_to,
         });
     }
-    let (feed, _) = config.feed_for(&file.relative);
-    let parsed = match prepared.parsed.take() {
-        Some(Ok(p)) => p,
+    let (feed, layout) = config.feed_for(&file.relative);
+    let rules = |id: &SeriesId| config.series_settings(id).rules();
+    let bytes: &[u8] = match &prepared.read {
+        Ok((_, _, b)) => b,
+        Err(_) => &[],
+    };
+    // What the rules need of the whole file before any record is stored.
+    let (whole, survey) = match prepared.parsed.take() {
+        Some(Ok(p)) => {
+            let survey = Survey::of(&p);
+            (Some(p), survey)
+        }
         Some(Err(e)) => {
             let reason = format!("{e}");
             return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
         }
-        None => unreachable!("BUG: a file that was read is always parsed"),
+        None => match Survey::stream(bytes, layout, &rules, today_of(now)) {
+            Ok(survey) => (None, survey),
+            Err(e) => {
+                let reason = format!("{e}");
+                return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+            }
+        },
     };
-    if !parsed.errors.is_empty() && config.bad_rows == BadRows::RejectFile {
+    if survey.errors > 0 && config.bad_rows == BadRows::RejectFile {
         let mut reason = format!(
             "{} row(s) refused and ingest.bad_rows = \"reject-file\"; fix them and deliver the file again:\n",
-            parsed.errors.len()
+            survey.errors
         );
-        for e in &parsed.errors {
+        for e in &survey.first_errors {
             reason.push_str(&format!("  {e}\n"));
+        }
+        if survey.errors > survey.first_errors.len() {
+            reason.push_str(&format!(
+                "  and {} more\n",
+                survey.errors - survey.first_errors.len()
+            ));
+        }
+        if let Some(p) = whole {
+            prepared.parsed = Some(Ok(p));
         }
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
+    let mut whole = whole;
+    let mut stream = if whole.is_some() {
+        None
+    } else {
+        match records::RecordStream::new(bytes, layout, &rules, today_of(now)) {
+            Ok(s) => Some(s),
+            Err(e) => {
+                let reason = format!("{e}");
+                return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+            }
+        }
+    };
+    // Small files come in one piece, large ones chunk by chunk.
+    let mut handed: Option<records::ParsedFile> = None;
+    let mut next_chunk = || -> Result<Option<records::ParsedFile>, records::FileError> {
+        match stream.as_mut() {
+            Some(s) => s.next_chunk(CHUNK_ROWS),
+            None => Ok(whole.take()),
+        }
+    };
     let result = store_file(
         config,
         store,
         cache,
-        &name,
-        &sha,
-        size,
-        feed,
-        &parsed,
+        &FileMeta {
+            name: &name,
+            sha: &sha,
+            size,
+            feed,
+        },
+        &mut FileRows {
+            next: &mut next_chunk,
+            survey: &survey,
+            spent: &mut handed,
+        },
         &at,
         clock::unix_seconds(now),
     );
     // Handed back for freeing off this thread.
-    prepared.parsed = Some(Ok(parsed));
-    let (counts, refits) = result?;
+    prepared.parsed = handed.map(Ok);
+    let (counts, refits) = match result? {
+        Ok(done) => done,
+        Err(e) => {
+            // Found by the first pass already; a file that changed its
+            // mind is set aside all the same.
+            let reason = format!("{e}");
+            return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+        }
+    };
     info!(
         new = counts.new,
         same = counts.same,
@@ -587,7 +684,7 @@ fn judging_base(
 
 /// A record the rules flagged, waiting for the file's fits.
 struct Flagged {
-    index: usize,
+    record: Record,
     row_id: i64,
     arrival: Arrival,
     judgement: RecordJudgement,
@@ -596,19 +693,90 @@ struct Flagged {
     span_before: (f64, f64),
 }
 
-#[allow(clippy::too_many_arguments)]
+/// What the rules need of a whole file before any of its records is
+/// stored: how many records each series gets (the outlier test corrects
+/// for them), and the refused rows (the reject-file rule).
+#[derive(Debug, Default)]
+struct Survey {
+    per_series: HashMap<String, usize>,
+    errors: usize,
+    /// The first [`LISTED_ERRORS`] refused rows.
+    first_errors: Vec<RecordError>,
+}
+
+impl Survey {
+    fn of(p: &records::ParsedFile) -> Survey {
+        let mut s = Survey::default();
+        s.add(p);
+        s
+    }
+
+    /// A large file's survey, from a first pass in chunks.
+    fn stream(
+        bytes: &[u8],
+        layout: &records::Layout,
+        rules: &dyn Fn(&SeriesId) -> records::SeriesRules,
+        today: Today,
+    ) -> Result<Survey, records::FileError> {
+        let mut s = Survey::default();
+        let mut stream = records::RecordStream::new(bytes, layout, rules, today)?;
+        while let Some(chunk) = stream.next_chunk(CHUNK_ROWS)? {
+            s.add(&chunk);
+        }
+        Ok(s)
+    }
+
+    fn add(&mut self, p: &records::ParsedFile) {
+        for r in &p.records {
+            match self.per_series.get_mut(r.series.as_str()) {
+                Some(n) => *n += 1,
+                None => {
+                    self.per_series.insert(r.series.as_str().to_string(), 1);
+                }
+            }
+        }
+        self.errors += p.errors.len();
+        let room = LISTED_ERRORS.saturating_sub(self.first_errors.len());
+        self.first_errors
+            .extend(p.errors.iter().take(room).cloned());
+    }
+}
+
+/// The file being stored.
+struct FileMeta<'a> {
+    name: &'a str,
+    sha: &'a str,
+    size: u64,
+    feed: &'a str,
+}
+
+/// A file's rows as [`store_file`] takes them: chunks from `next` (one
+/// for a small file), and what the survey found of the whole.
+struct FileRows<'a> {
+    next: &'a mut dyn FnMut() -> Result<Option<records::ParsedFile>, records::FileError>,
+    survey: &'a Survey,
+    /// The last chunk, handed back to be freed off the writer's thread.
+    spent: &'a mut Option<records::ParsedFile>,
+}
+
+/// Stores a file in its one transaction. The outer error is the store's;
+/// the inner one a file that turned out unreadable part way (its
+/// transaction rolled back).
 fn store_file(
     config: &Config,
     store: &mut Store,
     cache: &mut SeriesCache,
-    name: &str,
-    sha: &str,
-    size: u64,
-    feed: &str,
-    parsed: &records::ParsedFile,
+    meta: &FileMeta<'_>,
+    rows: &mut FileRows<'_>,
     at: &str,
     now_unix: i64,
-) -> Result<(FileCounts, usize), PipelineError> {
+) -> Result<Result<(FileCounts, usize), records::FileError>, PipelineError> {
+    let FileMeta {
+        name,
+        sha,
+        size,
+        feed,
+    } = *meta;
     let tx = store.begin()?;
     // Checked inside the write transaction: no verdict can slip in between.
     let revision = tx.revision()?;
@@ -623,318 +791,319 @@ fn store_file(
         arrived_at: at,
         feed,
     })?;
-    let mut counts = FileCounts {
-        bad: parsed.errors.len() as u64,
-        ..FileCounts::default()
-    };
-    for e in &parsed.errors {
-        tx.insert_bad_row(file_id, e)?;
-    }
-    let mut touched: HashMap<String, Touched> = HashMap::new();
+    let mut counts = FileCounts::default();
+    let mut touched: HashMap<String, Touched> = HashMap::default();
     let mut order: Vec<String> = Vec::new();
-    // Ids stored by earlier files: those records take the slow path (same
-    // record again, or a conflict); all others are written in batches.
-    let stored = tx.stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
-    let mut per_series: HashMap<&str, usize> = HashMap::new();
-    for r in &parsed.records {
-        *per_series.entry(r.series.as_str()).or_default() += 1;
-    }
-    let mut batch = RecordBatch::new();
+    let per_series = &rows.survey.per_series;
     let mut flagged: Vec<Flagged> = Vec::new();
     let mut plain: Vec<PlainFinding> = Vec::new();
-    for (index, record) in parsed.records.iter().enumerate() {
-        let key = record.series.as_str();
-        if !touched.contains_key(key) {
-            let settings = config.series_settings(&record.series);
-            // Taken out, put back after the commit (a failure clears the cache).
-            let cached = cache.rows.remove(key);
-            let row = match cached {
-                Some(row) => row,
-                None => match tx.series(key)? {
-                    Some(row) => row,
-                    None => tx.create_series(
-                        key,
-                        settings.unit.as_deref(),
-                        settings.transform.name(),
-                        &settings.non_detects.name(),
-                    )?,
-                },
-            };
-            let state = SeriesState::from_moments(row.moments);
-            let window = match cache.windows.get(key) {
-                Some(w) => *w,
-                None => {
-                    let w = match tx.window_override(row.id)? {
-                        Some(text) if text == "all" => None,
-                        // Validated when it was stored.
-                        Some(text) => Window::parse(&text).ok(),
-                        None => settings.window,
-                    };
-                    cache.windows.insert(key.to_string(), w);
-                    w
-                }
-            };
-            let transform = settings.transform;
-            let window = window.map(|w| (w, w.on_fit_scale(transform)));
-            let window_points = match window {
-                Some((_, w)) => w.select(&tx.fit_points(&row)?, |p| p.0).into(),
-                None => std::collections::VecDeque::new(),
-            };
-            let awaiting = match cache.awaiting.remove(key) {
-                Some(a) => a,
-                None => tx.awaiting_review(row.id)?,
-            };
-            let log = match cache.log.remove(key) {
-                // The ln(y) screen follows all points; a windowed fit goes
-                // without it.
-                _ if window.is_some() => None,
-                Some(l) => l,
-                None if settings.transform != Transform::None => None,
-                None => {
-                    let points = if row.moments.n() == 0 {
-                        Vec::new()
-                    } else {
-                        tx.fit_points(&row)?
-                    };
-                    log_state(&points)
-                }
-            };
-            let head_before = row.latest_record;
-            touched.insert(
-                key.to_string(),
-                Touched {
-                    before: row.moments,
-                    row,
-                    settings,
-                    state,
-                    changed: false,
-                    new_points: Vec::new(),
-                    awaiting,
-                    in_file: per_series.get(key).copied().unwrap_or(1),
-                    last: None,
-                    log,
-                    window,
-                    window_points,
-                    head_before,
-                    judging: None,
-                },
-            );
-            order.push(key.to_string());
+    loop {
+        let parsed = match (rows.next)() {
+            Ok(Some(chunk)) => chunk,
+            Ok(None) => break,
+            Err(e) => return Ok(Err(e)),
+        };
+        counts.bad += parsed.errors.len() as u64;
+        for e in &parsed.errors {
+            tx.insert_bad_row(file_id, e)?;
         }
-        let Some(t) = touched.get_mut(key) else {
-            unreachable!("BUG: the series was inserted just above");
-        };
-        let joins = t.row.fit_version + 1;
-        let fit_point = match fit_point(record, &t.settings) {
-            Ok(p) => p,
-            Err(reason) => {
-                // A value the fit cannot take (zero under a log): set the
-                // row aside like any refused row.
-                tx.insert_bad_row(file_id, &refused(record, reason))?;
-                counts.bad += 1;
-                continue;
-            }
-        };
-        let mut probe = t.state;
-        // Outside the window, a record is stored and eligible, but neither
-        // enters this fit nor is judged against it.
-        let admitted = match (t.window, fit_point) {
-            (Some((_, w)), Some(p)) => w.admits_x(p.0),
-            _ => true,
-        };
-        let arrival: Option<Arrival> = match fit_point.filter(|_| admitted) {
-            Some((fx, fy)) => match probe.add(fx, fy) {
-                Ok(a) => {
-                    if let Some((_, w)) = t.window {
-                        t.window_points.push_back((fx, fy));
-                        if let Window::Last(n) = w
-                            && t.window_points.len() > n
-                            && let Some((ox, oy)) = t.window_points.pop_front()
-                        {
-                            // The oldest point leaves; the file's fit is
-                            // recomputed from the window's points at the end.
-                            let _ = probe.remove(ox, oy);
-                        }
+        // Ids stored by earlier files: those records take the slow path (same
+        // record again, or a conflict); all others are written in batches.
+        let stored = tx.stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
+        let mut batch = RecordBatch::new();
+        for record in &parsed.records {
+            let key = record.series.as_str();
+            if !touched.contains_key(key) {
+                let settings = config.series_settings(&record.series);
+                // Taken out, put back after the commit (a failure clears the cache).
+                let cached = cache.rows.remove(key);
+                let row = match cached {
+                    Some(row) => row,
+                    None => match tx.series(key)? {
+                        Some(row) => row,
+                        None => tx.create_series(
+                            key,
+                            settings.unit.as_deref(),
+                            settings.transform.name(),
+                            &settings.non_detects.name(),
+                        )?,
+                    },
+                };
+                let state = SeriesState::from_moments(row.moments);
+                let window = match cache.windows.get(key) {
+                    Some(w) => *w,
+                    None => {
+                        let w = match tx.window_override(row.id)? {
+                            Some(text) if text == "all" => None,
+                            // Validated when it was stored.
+                            Some(text) => Window::parse(&text).ok(),
+                            None => settings.window,
+                        };
+                        cache.windows.insert(key.to_string(), w);
+                        w
                     }
-                    Some(a)
-                }
-                Err(err) => {
-                    // Validated records are finite; a transform could still
-                    // overflow. Set the row aside rather than guess.
-                    let reason = format!("the value cannot enter the fit: {err}");
+                };
+                let transform = settings.transform;
+                let window = window.map(|w| (w, w.on_fit_scale(transform)));
+                let window_points = match window {
+                    Some((_, w)) => w.select(&tx.fit_points(&row)?, |p| p.0).into(),
+                    None => std::collections::VecDeque::new(),
+                };
+                let awaiting = match cache.awaiting.remove(key) {
+                    Some(a) => a,
+                    None => tx.awaiting_review(row.id)?,
+                };
+                let log = match cache.log.remove(key) {
+                    // The ln(y) screen follows all points; a windowed fit goes
+                    // without it.
+                    _ if window.is_some() => None,
+                    Some(l) => l,
+                    None if settings.transform != Transform::None => None,
+                    None => {
+                        let points = if row.moments.n() == 0 {
+                            Vec::new()
+                        } else {
+                            tx.fit_points(&row)?
+                        };
+                        log_state(&points)
+                    }
+                };
+                let head_before = row.latest_record;
+                touched.insert(
+                    key.to_string(),
+                    Touched {
+                        before: row.moments,
+                        row,
+                        settings,
+                        state,
+                        changed: false,
+                        new_points: Vec::new(),
+                        awaiting,
+                        in_file: per_series.get(key).copied().unwrap_or(1),
+                        last: None,
+                        log,
+                        window,
+                        window_points,
+                        head_before,
+                        judging: None,
+                    },
+                );
+                order.push(key.to_string());
+            }
+            let Some(t) = touched.get_mut(key) else {
+                unreachable!("BUG: the series was inserted just above");
+            };
+            let joins = t.row.fit_version + 1;
+            let fit_point = match fit_point(record, &t.settings) {
+                Ok(p) => p,
+                Err(reason) => {
+                    // A value the fit cannot take (zero under a log): set the
+                    // row aside like any refused row.
                     tx.insert_bad_row(file_id, &refused(record, reason))?;
                     counts.bad += 1;
                     continue;
                 }
-            },
-            None => None,
-        };
-        let placement = RecordPlacement {
-            fit_point,
-            arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
-        };
-        if !stored.contains(record.record_id.as_str()) {
-            let row_id = tx.queue_current(
-                &mut batch,
-                record,
-                t.row.id,
-                file_id,
-                placement,
-                t.row.latest_record,
-            )?;
-            t.row.latest_record = Some(row_id);
-            counts.new += 1;
-            t.row.records += 1;
-            if record.y.is_censored() {
-                t.row.censored += 1;
-            }
-            t.row.last_arrival = Some(at.to_string());
-            t.changed = true;
-            if let (Some(a), Some(p)) = (&arrival, fit_point) {
-                // Judge against the fit without records awaiting review.
-                // At most a tenth of the points are left out (the newest
-                // suspects): leaving out more would judge newcomers against
-                // a fit too thin to trust, and swamp clean records.
-                // (Not in a windowed fit: a suspect may have left the window.)
-                let cap = if t.window.is_some() {
-                    0
-                } else {
-                    (t.state.n() as usize) / MAX_LEFT_OUT_SHARE
-                };
-                let start = t.awaiting.len().saturating_sub(cap);
-                let left_out = &t.awaiting[start..];
-                // The fits without the left-out points, kept from record to
-                // record and rebuilt only when the suspects change: removing
-                // them afresh for every record cost O(suspects) each.
-                let base = if left_out.is_empty() {
-                    None
-                } else {
-                    Some(judging_base(
-                        &mut t.judging,
-                        t.state,
-                        t.log,
-                        &t.awaiting,
-                        start,
-                    ))
-                };
-                let judged = match &base {
-                    None => Some(*a),
-                    Some(b) => b
-                        .state
-                        .and_then(|mut st| st.add(p.0, p.1).ok())
-                        .or(Some(*a)),
-                };
-                // The same on the ln(y) scale, where a decimal slip or a unit
-                // mix-up stands out even in a series whose scatter grows
-                // with its level.
-                let log_judged = match t.log.as_mut() {
-                    Some(ls) if p.1 > 0.0 => {
-                        let judged = match &base {
-                            None => {
-                                let mut copy = *ls;
-                                copy.add(p.0, p.1.ln()).ok()
+            };
+            let mut probe = t.state;
+            // Outside the window, a record is stored and eligible, but neither
+            // enters this fit nor is judged against it.
+            let admitted = match (t.window, fit_point) {
+                (Some((_, w)), Some(p)) => w.admits_x(p.0),
+                _ => true,
+            };
+            let arrival: Option<Arrival> = match fit_point.filter(|_| admitted) {
+                Some((fx, fy)) => match probe.add(fx, fy) {
+                    Ok(a) => {
+                        if let Some((_, w)) = t.window {
+                            t.window_points.push_back((fx, fy));
+                            if let Window::Last(n) = w
+                                && t.window_points.len() > n
+                                && let Some((ox, oy)) = t.window_points.pop_front()
+                            {
+                                // The oldest point leaves; the file's fit is
+                                // recomputed from the window's points at the end.
+                                let _ = probe.remove(ox, oy);
                             }
-                            Some(b) => b.log.and_then(|mut l| l.add(p.0, p.1.ln()).ok()),
-                        };
-                        if ls.add(p.0, p.1.ln()).is_err() {
-                            t.log = None;
                         }
-                        judged
+                        Some(a)
                     }
-                    Some(_) => {
-                        t.log = None;
+                    Err(err) => {
+                        // Validated records are finite; a transform could still
+                        // overflow. Set the row aside rather than guess.
+                        let reason = format!("the value cannot enter the fit: {err}");
+                        tx.insert_bad_row(file_id, &refused(record, reason))?;
+                        counts.bad += 1;
+                        continue;
+                    }
+                },
+                None => None,
+            };
+            let placement = RecordPlacement {
+                fit_point,
+                arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
+            };
+            if !stored.contains(record.record_id.as_str()) {
+                let row_id = tx.queue_current(
+                    &mut batch,
+                    record,
+                    t.row.id,
+                    file_id,
+                    placement,
+                    t.row.latest_record,
+                )?;
+                t.row.latest_record = Some(row_id);
+                counts.new += 1;
+                t.row.records += 1;
+                if record.y.is_censored() {
+                    t.row.censored += 1;
+                }
+                t.row.last_arrival = Some(at.to_string());
+                t.changed = true;
+                if let (Some(a), Some(p)) = (&arrival, fit_point) {
+                    // Judge against the fit without records awaiting review.
+                    // At most a tenth of the points are left out (the newest
+                    // suspects): leaving out more would judge newcomers against
+                    // a fit too thin to trust, and swamp clean records.
+                    // (Not in a windowed fit: a suspect may have left the window.)
+                    let cap = if t.window.is_some() {
+                        0
+                    } else {
+                        (t.state.n() as usize) / MAX_LEFT_OUT_SHARE
+                    };
+                    let start = t.awaiting.len().saturating_sub(cap);
+                    let left_out = &t.awaiting[start..];
+                    // The fits without the left-out points, kept from record to
+                    // record and rebuilt only when the suspects change: removing
+                    // them afresh for every record cost O(suspects) each.
+                    let base = if left_out.is_empty() {
                         None
-                    }
-                    None => None,
-                };
-                let mut judgement = match (judged, t.row.x_span) {
-                    (Some(judged), Some((lo, hi))) => judge_record_with(
-                        &judged,
-                        Span { min: lo, max: hi },
-                        t.in_file,
-                        &t.settings.findings,
-                        &mut cache.cutoffs,
-                    ),
-                    _ => None,
-                };
-                if let (Some(j), Some(lj), Some((lo, hi))) =
-                    (judgement.as_mut(), log_judged, t.row.x_span)
-                    && !j.kinds.contains(&RecordKind::Outlier)
-                    && let Some(l) = judge_record_with(
-                        &lj,
-                        Span { min: lo, max: hi },
-                        t.in_file,
-                        &t.settings.findings,
-                        &mut cache.cutoffs,
-                    )
-                    && l.kinds.contains(&RecordKind::Outlier)
-                {
-                    j.kinds.push(RecordKind::Outlier);
-                    j.kinds.sort();
-                    if let Some(m) = l.measures.into_iter().find(|m| m.kind == "outlier") {
-                        j.measures.push(Measured {
+                    } else {
+                        Some(judging_base(
+                            &mut t.judging,
+                            t.state,
+                            t.log,
+                            &t.awaiting,
+                            start,
+                        ))
+                    };
+                    let judged = match &base {
+                        None => Some(*a),
+                        Some(b) => b
+                            .state
+                            .and_then(|mut st| st.add(p.0, p.1).ok())
+                            .or(Some(*a)),
+                    };
+                    // The same on the ln(y) scale, where a decimal slip or a unit
+                    // mix-up stands out even in a series whose scatter grows
+                    // with its level.
+                    let log_judged = match t.log.as_mut() {
+                        Some(ls) if p.1 > 0.0 => {
+                            let judged = match &base {
+                                None => {
+                                    let mut copy = *ls;
+                                    copy.add(p.0, p.1.ln()).ok()
+                                }
+                                Some(b) => b.log.and_then(|mut l| l.add(p.0, p.1.ln()).ok()),
+                            };
+                            if ls.add(p.0, p.1.ln()).is_err() {
+                                t.log = None;
+                            }
+                            judged
+                        }
+                        Some(_) => {
+                            t.log = None;
+                            None
+                        }
+                        None => None,
+                    };
+                    let mut judgement = match (judged, t.row.x_span) {
+                        (Some(judged), Some((lo, hi))) => judge_record_with(
+                            &judged,
+                            Span { min: lo, max: hi },
+                            t.in_file,
+                            &t.settings.findings,
+                            &mut cache.cutoffs,
+                        ),
+                        _ => None,
+                    };
+                    if let (Some(j), Some(lj), Some((lo, hi))) =
+                        (judgement.as_mut(), log_judged, t.row.x_span)
+                        && !j.kinds.contains(&RecordKind::Outlier)
+                        && let Some(l) = judge_record_with(
+                            &lj,
+                            Span { min: lo, max: hi },
+                            t.in_file,
+                            &t.settings.findings,
+                            &mut cache.cutoffs,
+                        )
+                        && l.kinds.contains(&RecordKind::Outlier)
+                    {
+                        j.kinds.push(RecordKind::Outlier);
+                        j.kinds.sort();
+                        if let Some(m) = l.measures.into_iter().find(|m| m.kind == "outlier") {
+                            j.measures.push(Measured {
                             measure: "prediction t on the ln(y) scale (second screen for multiplicative slips)",
                             ..m
                         });
+                        }
                     }
-                }
-                if let (Some(j), Some((lo, hi))) = (judgement, t.row.x_span)
-                    && !j.kinds.is_empty()
-                {
-                    // Only a record that sits off the line or far out in x
-                    // can mask the next one; an influential record on the
-                    // line stays in the judging fit.
-                    let suspect = j
-                        .kinds
-                        .iter()
-                        .any(|k| matches!(k, RecordKind::Outlier | RecordKind::HighLeverage));
-                    flagged.push(Flagged {
-                        index,
-                        row_id,
-                        arrival: *a,
-                        judgement: j,
-                        fit_point: p,
-                        left_out: left_out.len(),
-                        span_before: (lo, hi),
+                    if let (Some(j), Some((lo, hi))) = (judgement, t.row.x_span)
+                        && !j.kinds.is_empty()
+                    {
+                        // Only a record that sits off the line or far out in x
+                        // can mask the next one; an influential record on the
+                        // line stays in the judging fit.
+                        let suspect = j
+                            .kinds
+                            .iter()
+                            .any(|k| matches!(k, RecordKind::Outlier | RecordKind::HighLeverage));
+                        flagged.push(Flagged {
+                            record: record.clone(),
+                            row_id,
+                            arrival: *a,
+                            judgement: j,
+                            fit_point: p,
+                            left_out: left_out.len(),
+                            span_before: (lo, hi),
+                        });
+                        if suspect {
+                            t.awaiting.push(p);
+                        }
+                    }
+                    t.row.x_span = Some(match t.row.x_span {
+                        Some((lo, hi)) => (lo.min(p.0), hi.max(p.0)),
+                        None => (p.0, p.0),
                     });
-                    if suspect {
-                        t.awaiting.push(p);
+                    t.state = probe;
+                    // The judging base takes the point too, unless it became a
+                    // suspect (then the base is rebuilt for the next record).
+                    match t.judging.as_mut() {
+                        Some(j) if j.len == t.awaiting.len() => j.take(p),
+                        _ => t.judging = None,
                     }
+                    t.new_points.push(p);
+                    t.last = Some((*a, record.record_id.clone()));
                 }
-                t.row.x_span = Some(match t.row.x_span {
-                    Some((lo, hi)) => (lo.min(p.0), hi.max(p.0)),
-                    None => (p.0, p.0),
-                });
-                t.state = probe;
-                // The judging base takes the point too, unless it became a
-                // suspect (then the base is rebuilt for the next record).
-                match t.judging.as_mut() {
-                    Some(j) if j.len == t.awaiting.len() => j.take(p),
-                    _ => t.judging = None,
-                }
-                t.new_points.push(p);
-                t.last = Some((*a, record.record_id.clone()));
+                continue;
             }
-            continue;
-        }
-        let Some((stored_record, max_version)) = tx.current_record(&record.record_id)? else {
-            unreachable!("BUG: stored_ids found a version 1, so a current version exists");
-        };
-        let same = stored_record.series == key
-            && stored_record.x == record.x
-            && stored_record.y == record.y.number()
-            && stored_record.censored == record.y.is_censored();
-        if same {
-            counts.same += 1;
-        } else if !tx.has_proposal(
-            &record.record_id,
-            record.x,
-            record.y.number(),
-            record.y.is_censored(),
-        )? {
-            counts.conflict += 1;
-            tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
-            plain.push(PlainFinding {
+            let Some((stored_record, max_version)) = tx.current_record(&record.record_id)? else {
+                unreachable!("BUG: stored_ids found a version 1, so a current version exists");
+            };
+            let same = stored_record.series == key
+                && stored_record.x == record.x
+                && stored_record.y == record.y.number()
+                && stored_record.censored == record.y.is_censored();
+            if same {
+                counts.same += 1;
+            } else if !tx.has_proposal(
+                &record.record_id,
+                record.x,
+                record.y.number(),
+                record.y.is_censored(),
+            )? {
+                counts.conflict += 1;
+                tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+                plain.push(PlainFinding {
                 kind: "conflict",
                 series: key.to_string(),
                 record_ids: vec![record.record_id.clone()],
@@ -949,7 +1118,7 @@ fn store_file(
                     max_version + 1
                 ),
             });
-            tx.append_audit(
+                tx.append_audit(
                 at,
                 AuditKind::Conflict,
                 &record.record_id,
@@ -966,9 +1135,13 @@ fn store_file(
                     max_version + 1
                 ),
             )?;
-        } else {
-            counts.same += 1;
+            } else {
+                counts.same += 1;
+            }
         }
+        tx.flush_records(&mut batch)?;
+        drop(batch);
+        *rows.spent = Some(parsed);
     }
     // Robust slopes first: gather the series due for one, compute them on
     // a second thread while the file's last records are written, then
@@ -999,35 +1172,26 @@ fn store_file(
                 e.into_mut().append(&mut t.new_points);
             }
             std::collections::hash_map::Entry::Vacant(e) => {
-                // The points stored before this file, then this file's.
-                let mut points: Vec<(f64, f64)> = tx
-                    .fit_points_with_rows(t.head_before)?
-                    .into_iter()
-                    .map(|(_, x, y)| (x, y))
-                    .collect();
-                points.append(&mut t.new_points);
+                // The points stored before this file, then this file's
+                // (taken, not copied: a large file's are megabytes).
+                let stored = tx.fit_points_with_rows(t.head_before)?;
+                let mut points = std::mem::take(&mut t.new_points);
+                if !stored.is_empty() {
+                    points.splice(0..0, stored.into_iter().map(|(_, x, y)| (x, y)));
+                }
                 e.insert(points);
             }
         }
         due.push(key);
     }
-    let mut robust_of: HashMap<&str, RobustRow> = HashMap::new();
+    let mut robust_of: HashMap<&str, RobustRow> = HashMap::default();
     {
         let jobs: Vec<(&str, &[(f64, f64)])> = due
             .iter()
             .filter_map(|k| cache.points.get(*k).map(|p| (*k, p.as_slice())))
             .chain(windowed.iter().map(|(k, p)| (*k, p.as_slice())))
             .collect();
-        let level = config.level;
-        let rows = std::thread::scope(|scope| -> Result<_, PipelineError> {
-            let worker = (!jobs.is_empty()).then(|| scope.spawn(|| robust_rows(&jobs, level)));
-            tx.flush_records(&mut batch)?;
-            Ok(match worker {
-                Some(w) => w.join().unwrap_or_else(|e| std::panic::resume_unwind(e)),
-                None => Vec::new(),
-            })
-        })?;
-        for (key, r) in rows {
+        for (key, r) in robust_rows_split(&jobs, config.level) {
             robust_of.insert(key, r);
             cache
                 .robust
@@ -1113,7 +1277,7 @@ fn store_file(
         &tx,
         config,
         cache,
-        parsed,
+        rows.survey,
         &touched,
         &flagged,
         &plain,
@@ -1142,10 +1306,13 @@ fn store_file(
         cache.log.insert(key.clone(), t.log);
         cache.rows.insert(key, t.row);
     }
+    if cache.points.values().map(Vec::len).sum::<usize>() > POINTS_KEPT_MAX {
+        cache.points = HashMap::default();
+    }
     if findings > 0 {
         info!(findings, "findings raised");
     }
-    Ok((counts, refits))
+    Ok(Ok((counts, refits)))
 }
 
 /// The ln(y)-on-x state of a series' points, when every y is positive.
@@ -1168,6 +1335,49 @@ struct PlainFinding {
     summary: String,
 }
 
+/// The series a flagged record could belong to instead: those of the file
+/// and those met earlier, indexed by site and by parameter (the key's parts
+/// before and after the first '/'), with their fits computed when first
+/// asked for. Built once per file: scanning every series for every flagged
+/// record cost O(series) each.
+struct Neighbours<'a> {
+    /// Key, scale (transform name) and moments.
+    series: Vec<(&'a str, &'a str, Moments)>,
+    fits: Vec<Option<Option<LineFit>>>,
+    by_site: HashMap<&'a str, Vec<usize>>,
+    by_parameter: HashMap<&'a str, Vec<usize>>,
+}
+
+impl<'a> Neighbours<'a> {
+    fn of(touched: &'a HashMap<String, Touched>, earlier: &'a HashMap<String, SeriesRow>) -> Self {
+        let series: Vec<(&str, &str, Moments)> = touched
+            .iter()
+            .map(|(k, o)| (k.as_str(), o.settings.transform.name(), *o.state.moments()))
+            .chain(
+                earlier
+                    .iter()
+                    .filter(|(k, _)| !touched.contains_key(*k))
+                    .map(|(k, r)| (k.as_str(), r.transform.as_str(), r.moments)),
+            )
+            .collect();
+        let mut by_site: HashMap<&str, Vec<usize>> = HashMap::default();
+        let mut by_parameter: HashMap<&str, Vec<usize>> = HashMap::default();
+        for (i, (k, _, _)) in series.iter().enumerate() {
+            let (site, parameter) = k.split_once('/').unwrap_or((k, ""));
+            by_site.entry(site).or_default().push(i);
+            if !parameter.is_empty() {
+                by_parameter.entry(parameter).or_default().push(i);
+            }
+        }
+        Neighbours {
+            fits: vec![None; series.len()],
+            series,
+            by_site,
+            by_parameter,
+        }
+    }
+}
+
 /// Raises the file's findings (records flagged by the rules, conflicts,
 /// refused rows, trend changes) in its transaction. Returns how many.
 #[allow(clippy::too_many_arguments)]
@@ -1175,7 +1385,7 @@ fn raise_findings(
     tx: &crate::store::Tx<'_>,
     config: &Config,
     cache: &mut SeriesCache,
-    parsed: &records::ParsedFile,
+    survey: &Survey,
     touched: &HashMap<String, Touched>,
     flagged: &[Flagged],
     plain: &[PlainFinding],
@@ -1185,14 +1395,13 @@ fn raise_findings(
     now_unix: i64,
 ) -> Result<usize, PipelineError> {
     let mut raised = 0;
-    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::new();
+    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::default();
     if !flagged.is_empty() {
         let quantiles = cache.quantiles(config.level);
         let mut quantiles = std::mem::replace(quantiles, TQuantiles::new(config.level));
+        let mut neighbours = Neighbours::of(touched, &cache.rows);
         for f in flagged {
-            let Some(record) = parsed.records.get(f.index) else {
-                continue;
-            };
+            let record = &f.record;
             let key = record.series.as_str();
             let Some(t) = touched.get(key) else {
                 continue;
@@ -1205,7 +1414,24 @@ fn raise_findings(
             // of records of one long series.
             let points: &[(f64, f64)] = if high_leverage || draw_chart {
                 if !series_points.contains_key(key) {
-                    series_points.insert(key, tx.fit_points(&t.row)?);
+                    // From the points kept for the robust slope when there
+                    // are (those before this file, then this file's),
+                    // else walked from the store.
+                    let points = match cache.points.get(key) {
+                        Some(before) => {
+                            let mut all = Vec::with_capacity(before.len() + t.new_points.len());
+                            all.extend_from_slice(before);
+                            all.extend_from_slice(&t.new_points);
+                            #[cfg(debug_assertions)]
+                            {
+                                let stored = tx.fit_points(&t.row)?;
+                                debug_assert_eq!(all, stored, "kept points of {key}");
+                            }
+                            all
+                        }
+                        None => tx.fit_points(&t.row)?,
+                    };
+                    series_points.insert(key, points);
                 }
                 series_points.get(key).map_or(&[], Vec::as_slice)
             } else {
@@ -1215,30 +1441,33 @@ fn raise_findings(
             // its parameter (the key's part before or after the first '/')
             // and its scale: those of this file, and those met earlier.
             let (site, parameter) = key.split_once('/').unwrap_or((key, ""));
-            let related = |k: &str| {
-                let (s2, p2) = k.split_once('/').unwrap_or((k, ""));
-                k != key && (s2 == site || (!parameter.is_empty() && p2 == parameter))
-            };
             let scale = t.settings.transform.name();
-            let candidates = touched
-                .iter()
-                .filter(|(_, o)| o.settings.transform == t.settings.transform)
-                .map(|(k, o)| (k.as_str(), *o.state.moments()))
+            let related = neighbours
+                .by_site
+                .get(site)
+                .into_iter()
                 .chain(
-                    cache
-                        .rows
-                        .iter()
-                        .filter(|(k, r)| !touched.contains_key(*k) && r.transform == scale)
-                        .map(|(k, r)| (k.as_str(), r.moments)),
-                );
-            let mine: Vec<(&str, LineFit)> = candidates
-                .filter(|(k, _)| related(k))
-                .filter_map(|(k, m)| {
-                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df))
-                        .ok()
-                        .map(|fit| (k, fit))
-                })
-                .collect();
+                    (!parameter.is_empty())
+                        .then(|| neighbours.by_parameter.get(parameter))
+                        .flatten(),
+                )
+                .flatten()
+                .copied();
+            let mut mine: Vec<(&str, LineFit)> = Vec::new();
+            for i in related {
+                let Some(&(k, other_scale, m)) = neighbours.series.get(i) else {
+                    continue;
+                };
+                if k == key || other_scale != scale {
+                    continue;
+                }
+                let fit = neighbours.fits[i].get_or_insert_with(|| {
+                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df)).ok()
+                });
+                if let Some(fit) = fit {
+                    mine.push((k, *fit));
+                }
+            }
             let robust = cache.robust.get(key).copied();
             raise::record_finding(
                 tx,
@@ -1284,29 +1513,28 @@ fn raise_findings(
         )?;
         raised += 1;
     }
-    if !parsed.errors.is_empty() {
-        let ids: Vec<String> = parsed
-            .errors
-            .iter()
-            .filter_map(|e| e.record_id.clone())
-            .collect();
-        let rows: Vec<serde_json::Value> = parsed
-            .errors
+    if survey.errors > 0 {
+        let listed = &survey.first_errors;
+        let ids: Vec<String> = listed.iter().filter_map(|e| e.record_id.clone()).collect();
+        let rows: Vec<serde_json::Value> = listed
             .iter()
             .map(|e| {
                 serde_json::json!({"line": e.line, "column": e.column, "field": e.field,
                 "record_id": e.record_id, "reason": e.reason})
             })
             .collect();
-        let first = parsed
-            .errors
-            .first()
-            .map(|e| e.to_string())
-            .unwrap_or_default();
+        let first = listed.first().map(|e| e.to_string()).unwrap_or_default();
+        let more = if survey.errors > listed.len() {
+            format!(
+                " ({} listed here; all are in the store's quarantined rows)",
+                listed.len()
+            )
+        } else {
+            String::new()
+        };
         let summary = format!(
-            "{} row(s) of {} set aside by validation; the rest of the file was stored. First: {first}",
-            parsed.errors.len(),
-            file.1
+            "{} row(s) of {} set aside by validation; the rest of the file was stored{more}. First: {first}",
+            survey.errors, file.1
         );
         raise::plain_finding(
             tx,
@@ -1414,6 +1642,35 @@ fn robust_rows<'k>(jobs: &[(&'k str, &[(f64, f64)])], level: f64) -> Vec<(&'k st
 }
 
 /// The smallest and largest x, when there are any.
+/// [`robust_rows`] on two threads when there is work for two, the jobs
+/// split in halves of about equal points.
+fn robust_rows_split<'k>(
+    jobs: &[(&'k str, &[(f64, f64)])],
+    level: f64,
+) -> Vec<(&'k str, RobustRow)> {
+    let total: usize = jobs.iter().map(|j| j.1.len()).sum();
+    if jobs.len() < 2 || total < 2_000 {
+        return robust_rows(jobs, level);
+    }
+    let mut half = 0;
+    let mut points = 0;
+    while half < jobs.len() && points * 2 < total {
+        points += jobs[half].1.len();
+        half += 1;
+    }
+    let (first, second) = jobs.split_at(half);
+    std::thread::scope(|scope| {
+        let worker = scope.spawn(|| robust_rows(second, level));
+        let mut out = robust_rows(first, level);
+        out.extend(
+            worker
+                .join()
+                .unwrap_or_else(|e| std::panic::resume_unwind(e)),
+        );
+        out
+    })
+}
+
 pub(crate) fn x_span(x: &[f64]) -> Option<(f64, f64)> {
     x.iter().fold(None, |span, &v| match span {
         None => Some((v, v)),

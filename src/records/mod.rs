@@ -25,5 +25,5 @@ mod tests;
 pub use dates::decimal_year;
 pub use layout::{DateFormat, Layout, SeriesKey, SeriesRules, Today, XSource};
 pub use model::{Measure, Record, RecordError, SeriesId};
-pub use parse::{FileError, ParsedFile, parse_file};
+pub use parse::{FileError, ParsedFile, RecordStream, parse_file};
 pub use units::{Matrix, UnitError};

@@ -49,7 +49,7 @@
 //! messages are formatted only for refused rows.
 
 use std::collections::HashMap;
-use std::collections::hash_map::{Entry, RandomState};
+use std::collections::hash_map::RandomState;
 use std::hash::{BuildHasher, BuildHasherDefault, Hasher};
 use std::rc::Rc;
 
@@ -119,45 +119,102 @@ pub fn parse_file(
     rules: &dyn Fn(&SeriesId) -> SeriesRules,
     today: Today,
 ) -> Result<ParsedFile, FileError> {
-    let text = check_text(bytes)?;
-    let mut rows = Rows::new(text, layout.delimiter);
-    let (header_line, names) = loop {
-        match rows.next_row()? {
-            None => return Err(FileError::NoHeader),
-            Some(row) if is_blank(&row) => continue,
-            Some(row) => {
-                let names: Vec<String> = row.fields.iter().map(|f| f.trim().to_string()).collect();
-                break (row.line, names);
-            }
-        }
-    };
-    // One row per line is an upper bound; reserving it saves regrowing.
-    // Capped, so that a file of empty lines cannot reserve gigabytes.
-    let rows_expected = text.bytes().filter(|&b| b == b'\n').count().min(1 << 16);
-    let mut checker = Checker {
-        cols: Columns::resolve(names, layout, header_line)?,
-        delimiter: layout.delimiter,
-        decimal_comma: layout.decimal_comma,
-        rules,
-        today,
-        last_allowed_day: dates::last_allowed_day(today),
-        seen: SeenIds::with_capacity(rows_expected),
-        series_rules: RulesCache::default(),
-    };
+    let mut stream = RecordStream::new(bytes, layout, rules, today)?;
     let mut out = ParsedFile {
-        records: Vec::with_capacity(rows_expected),
+        records: Vec::with_capacity(stream.rows_expected),
         errors: Vec::new(),
     };
-    while let Some(row) = rows.next_row()? {
-        if is_blank(&row) {
-            continue;
-        }
-        match checker.check(&row) {
-            Ok(record) => out.records.push(record),
-            Err(fault) => out.errors.push(checker.error(&row, fault)),
-        }
+    while let Some(mut chunk) = stream.next_chunk(usize::MAX)? {
+        out.records.append(&mut chunk.records);
+        out.errors.append(&mut chunk.errors);
     }
     Ok(out)
+}
+
+/// A file read in chunks of rows, for files too large to hold as records
+/// all at once (a record costs several times its line in memory). The
+/// chunks together are exactly what [`parse_file`] gives, in order: the
+/// same records, the same errors, duplicates found across chunks.
+pub struct RecordStream<'a> {
+    rows: Rows<'a>,
+    checker: Checker<'a>,
+    /// Lines in the file, capped: what to reserve for records.
+    rows_expected: usize,
+}
+
+impl std::fmt::Debug for RecordStream<'_> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("RecordStream").finish_non_exhaustive()
+    }
+}
+
+impl<'a> RecordStream<'a> {
+    /// Checks the text and resolves the header; a whole-file problem found
+    /// here (not text, no header, missing columns) is the error.
+    pub fn new(
+        bytes: &'a [u8],
+        layout: &Layout,
+        rules: &'a dyn Fn(&SeriesId) -> SeriesRules,
+        today: Today,
+    ) -> Result<Self, FileError> {
+        let text = check_text(bytes)?;
+        let mut rows = Rows::new(text, layout.delimiter);
+        let (header_line, names) = loop {
+            match rows.next_row()? {
+                None => return Err(FileError::NoHeader),
+                Some(row) if is_blank(&row) => continue,
+                Some(row) => {
+                    let names: Vec<String> =
+                        row.fields.iter().map(|f| f.trim().to_string()).collect();
+                    break (row.line, names);
+                }
+            }
+        };
+        // One row per line is an upper bound; reserving it saves regrowing.
+        // Capped, so that a file of empty lines cannot reserve gigabytes.
+        let rows_expected = text.bytes().filter(|&b| b == b'\n').count().min(1 << 16);
+        let checker = Checker {
+            cols: Columns::resolve(names, layout, header_line)?,
+            delimiter: layout.delimiter,
+            decimal_comma: layout.decimal_comma,
+            rules,
+            today,
+            last_allowed_day: dates::last_allowed_day(today),
+            seen: SeenIds::with_capacity(rows_expected),
+            series_rules: RulesCache::default(),
+        };
+        Ok(RecordStream {
+            rows,
+            checker,
+            rows_expected,
+        })
+    }
+
+    /// The next rows, at most `max_rows` of them (records and refused rows
+    /// together; blank rows do not count); `None` once the file is done. A
+    /// structural break further down the file (an unbalanced quote) is an
+    /// error at the chunk that reaches it.
+    pub fn next_chunk(&mut self, max_rows: usize) -> Result<Option<ParsedFile>, FileError> {
+        let mut out = ParsedFile {
+            records: Vec::with_capacity(max_rows.min(self.rows_expected)),
+            errors: Vec::new(),
+        };
+        let mut taken = 0usize;
+        while taken < max_rows {
+            let Some(row) = self.rows.next_row()? else {
+                break;
+            };
+            if is_blank(&row) {
+                continue;
+            }
+            taken += 1;
+            match self.checker.check(&row) {
+                Ok(record) => out.records.push(record),
+                Err(fault) => out.errors.push(self.checker.error(&row, fault)),
+            }
+        }
+        Ok((taken > 0).then_some(out))
+    }
 }
 
 const BOM: &[u8] = b"\xEF\xBB\xBF";
@@ -808,51 +865,83 @@ fn swallowed_rows(fields: &csv::StringRecord, delimiter: u8, c: &Columns) -> Opt
     })
 }
 
-/// The record ids met in a file, with the line each was first met on.
+/// The record ids met so far in the file, to find a repeated one.
 ///
-/// The ids are kept end to end in one string and found by their keyed
-/// (SipHash) hash, so a row costs no allocation here. Two different ids
-/// with the same 64-bit hash are told apart by comparing the text.
-struct SeenIds {
+/// The ids are kept end to end in one string, each ended by a NUL (which
+/// checked text never contains), and found by their keyed (SipHash) hash,
+/// so a row costs no allocation here. Two different ids with the same
+/// 64-bit hash are told apart by comparing the text. An entry is 16 bytes
+/// (hash, and where the id starts and its line, as u32): a file of 1.7
+/// million records kept 70 MB of entries at 32 bytes each. Positions past
+/// u32 (a file beyond 4 GiB) go to `wide`.
+pub(super) struct SeenIds {
     text: String,
-    hasher: RandomState,
-    /// hash -> (start, end) in `text`, and the line.
-    first: HashMap<u64, (usize, usize, u64), BuildHasherDefault<AlreadyHashed>>,
+    pub(super) hasher: RandomState,
+    /// hash -> (start in `text`, line).
+    pub(super) first: HashMap<u64, (u32, u32), BuildHasherDefault<AlreadyHashed>>,
+    /// Entries whose start or line does not fit in u32.
+    wide: HashMap<u64, (usize, u64), BuildHasherDefault<AlreadyHashed>>,
     /// Ids whose hash another id already holds; practically always empty.
-    collided: Vec<(usize, usize, u64)>,
+    collided: Vec<(usize, u64)>,
 }
 
 impl SeenIds {
-    fn with_capacity(ids: usize) -> Self {
+    pub(super) fn with_capacity(ids: usize) -> Self {
         SeenIds {
             text: String::with_capacity(ids * 8),
             hasher: RandomState::new(),
             first: HashMap::with_capacity_and_hasher(ids, BuildHasherDefault::default()),
+            wide: HashMap::default(),
             collided: Vec::new(),
         }
     }
 
+    /// The id stored from `start` (up to its NUL).
+    fn id_at(&self, start: usize) -> &str {
+        let rest = self.text.get(start..).unwrap_or_default();
+        rest.split('\0').next().unwrap_or_default()
+    }
+
+    /// Appends `id` and its end mark; returns where it starts.
+    fn keep(&mut self, id: &str) -> usize {
+        let start = self.text.len();
+        self.text.push_str(id);
+        self.text.push('\0');
+        start
+    }
+
     /// Notes `id` on `line`; if it was met before, the line of its first
     /// occurrence.
-    fn first_line(&mut self, id: &str, line: u64) -> Option<u64> {
-        let start = self.text.len();
+    pub(super) fn first_line(&mut self, id: &str, line: u64) -> Option<u64> {
         let hash = self.hasher.hash_one(id);
-        match self.first.entry(hash) {
-            Entry::Vacant(slot) => {
-                self.text.push_str(id);
-                slot.insert((start, self.text.len(), line));
+        let found = match (self.first.get(&hash), self.wide.get(&hash)) {
+            (Some(&(start, first)), _) => Some((start as usize, u64::from(first))),
+            (None, Some(&(start, first))) => Some((start, first)),
+            (None, None) => None,
+        };
+        match found {
+            None => {
+                let start = self.keep(id);
+                match (u32::try_from(start), u32::try_from(line)) {
+                    (Ok(s), Ok(l)) => {
+                        self.first.insert(hash, (s, l));
+                    }
+                    _ => {
+                        self.wide.insert(hash, (start, line));
+                    }
+                }
                 None
             }
-            Entry::Occupied(taken) => {
-                let same = |&(s, e, _): &(usize, usize, u64)| self.text.get(s..e) == Some(id);
-                if same(taken.get()) {
-                    return Some(taken.get().2);
-                }
-                if let Some(&(_, _, first)) = self.collided.iter().find(|entry| same(entry)) {
+            Some((start, first)) => {
+                if self.id_at(start) == id {
                     return Some(first);
                 }
-                self.text.push_str(id);
-                self.collided.push((start, self.text.len(), line));
+                if let Some(&(_, first)) = self.collided.iter().find(|&&(s, _)| self.id_at(s) == id)
+                {
+                    return Some(first);
+                }
+                let start = self.keep(id);
+                self.collided.push((start, line));
                 None
             }
         }
@@ -861,7 +950,7 @@ impl SeenIds {
 
 /// A hasher for keys that are already hashes.
 #[derive(Default)]
-struct AlreadyHashed(u64);
+pub(super) struct AlreadyHashed(u64);
 
 impl Hasher for AlreadyHashed {
     fn finish(&self) -> u64 {

@@ -7,6 +7,9 @@ use std::cell::Cell;
 
 use proptest::prelude::*;
 
+use std::hash::BuildHasher;
+
+use super::parse::SeenIds;
 use super::*;
 
 const TODAY: Today = Today {
@@ -870,6 +873,66 @@ fn breaks(raw: &str) -> u64 {
 /// Parses `bytes` (must not panic) and, when they are text, checks the
 /// outcome against the independent row split: every data row is a record
 /// or an error, on the right lines, in order, and nothing else.
+/// A file read through [`RecordStream`] in chunks of `rows`, put together.
+fn chunked(
+    bytes: &[u8],
+    layout: &Layout,
+    rules: &dyn Fn(&SeriesId) -> SeriesRules,
+    rows: usize,
+) -> Result<ParsedFile, FileError> {
+    let mut stream = RecordStream::new(bytes, layout, rules, TODAY)?;
+    let mut all = ParsedFile::default();
+    while let Some(mut chunk) = stream.next_chunk(rows)? {
+        assert!(chunk.records.len() + chunk.errors.len() <= rows);
+        assert!(chunk.records.len() + chunk.errors.len() > 0);
+        all.records.append(&mut chunk.records);
+        all.errors.append(&mut chunk.errors);
+    }
+    Ok(all)
+}
+
+#[test]
+fn a_repeated_id_is_found_across_chunks_and_a_late_break_stops_the_chunk_that_meets_it() {
+    let text = "record_id,series,x,y\nA,s,1,2\nB,s,2,3\nA,s,3,4\nC,s,4,\"5\n";
+    let mut stream =
+        RecordStream::new(text.as_bytes(), &Layout::default(), &no_rules, TODAY).unwrap();
+    let first = stream.next_chunk(2).unwrap().unwrap();
+    assert_eq!(first.records.len(), 2);
+    let second = stream.next_chunk(1).unwrap().unwrap();
+    assert!(second.records.is_empty());
+    assert!(
+        second.errors[0].reason.contains("first on line 2"),
+        "{:?}",
+        second.errors
+    );
+    assert!(matches!(
+        stream.next_chunk(2),
+        Err(FileError::Malformed { line: 5, .. })
+    ));
+}
+
+#[test]
+fn ids_are_told_apart_when_their_hashes_collide_and_far_lines_are_kept() {
+    let mut seen = SeenIds::with_capacity(4);
+    assert_eq!(seen.first_line("A-1", 2), None);
+    // Make "B-2" collide with "A-1", as two ids with one 64-bit hash would.
+    let a = seen.hasher.hash_one("A-1");
+    let b = seen.hasher.hash_one("B-2");
+    let entry = seen.first[&a];
+    seen.first.insert(b, entry);
+    assert_eq!(
+        seen.first_line("B-2", 3),
+        None,
+        "a different id, not a repeat"
+    );
+    assert_eq!(seen.first_line("B-2", 9), Some(3));
+    assert_eq!(seen.first_line("A-1", 10), Some(2));
+    // A line beyond u32 (a file of many gigabytes) is kept whole.
+    let far = u64::from(u32::MAX) + 7;
+    assert_eq!(seen.first_line("Z-9", far), None);
+    assert_eq!(seen.first_line("Z-9", far + 1), Some(far));
+}
+
 fn check_every_row_accounted_for(bytes: &[u8]) {
     check_rows_with(bytes, &Layout::default());
 }
@@ -886,6 +949,14 @@ fn check_rows_with(bytes: &[u8], layout: &Layout) {
         allow_negative: false,
     };
     let result = parse_file(bytes, layout, &rules, TODAY);
+    // Read in chunks, the file gives exactly the same rows and errors.
+    for rows in [1, 2, 3, 7] {
+        assert_eq!(
+            chunked(bytes, layout, &rules, rows),
+            result,
+            "chunks of {rows}"
+        );
+    }
     let body = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
     let Ok(text) = std::str::from_utf8(body) else {
         assert!(

@@ -14,7 +14,7 @@ use crate::findings::causes::{CauseInput, XKind, rank_causes};
 use crate::findings::rules::{Measured, RecordJudgement, TrendChange};
 use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
-    RobustSlope, Severity, render_notice,
+    RobustSlope, Severity, render_notice, render_notice_heading,
 };
 use crate::records::Record;
 use crate::stats::{Arrival, LineFit, Transform};
@@ -295,14 +295,7 @@ pub fn record_finding(
         verdict_commands: verdict_commands(id),
         created_at: at.to_string(),
     };
-    queue(
-        tx,
-        config,
-        id,
-        Some(&case.series.key),
-        &render_notice(&notice),
-        now_unix,
-    )?;
+    queue(tx, config, id, Some(&case.series.key), &notice, now_unix)?;
     audit_finding(tx, at, id, &summary)?;
     Ok(id)
 }
@@ -388,7 +381,7 @@ pub fn plain_finding(
         config,
         id,
         series.map(|s| s.key.as_str()),
-        &render_notice(&notice),
+        &notice,
         now_unix,
     )?;
     audit_finding(tx, at, id, summary)?;
@@ -511,18 +504,30 @@ pub fn all_held(tx: &Tx<'_>, config: &Config, series: Option<&str>, now_unix: i6
     Ok(true)
 }
 
-/// Queues the rendered message for each recipient, holding it for a digest
-/// when the recipient has had `max_per_hour` messages in the last hour.
+/// Queues the message for each recipient, holding it for a digest when the
+/// recipient has had `max_per_hour` messages in the last hour. A held row
+/// keeps only the message's identity and subject, which is all the digest
+/// lists: the notice itself is the finding (`slopewarden show`), so its
+/// bodies are neither rendered nor stored a second time (in a backlog with
+/// many findings, rendering and storing held bodies took half the ingest).
 fn queue(
     tx: &Tx<'_>,
     config: &Config,
     finding: i64,
     series: Option<&str>,
-    rendered: &Rendered,
+    notice: &Notice,
     now_unix: i64,
 ) -> Result<()> {
+    let mut full: Option<Rendered> = None;
+    let mut heading: Option<Rendered> = None;
     for to in config.mail.recipients(series) {
         let recent = tx.messages_since(&to, now_unix - 3600)?;
+        let held = recent >= i64::from(config.mail.max_per_hour);
+        let rendered: &Rendered = if held {
+            heading.get_or_insert_with(|| render_notice_heading(notice))
+        } else {
+            full.get_or_insert_with(|| render_notice(notice))
+        };
         tx.queue_message(&NewMessage {
             finding: Some(finding),
             recipient: &to,
@@ -535,7 +540,7 @@ fn queue(
                 .as_ref()
                 .map(|c| (c.content_id.as_str(), c.png.as_slice())),
             date_unix: now_unix,
-            held: recent >= i64::from(config.mail.max_per_hour),
+            held,
         })?;
     }
     Ok(())

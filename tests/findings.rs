@@ -436,6 +436,57 @@ fn a_value_ten_times_too_large_is_an_outlier_and_its_plausible_twin_raises_nothi
 }
 
 #[test]
+fn a_message_held_by_the_hourly_limit_keeps_its_subject_but_no_second_copy_of_the_finding() {
+    // Three decimal slips in three series at once, one message an hour.
+    let site = Site::new("max_per_hour = 1", "");
+    let mut text = String::from("record_id,series,x,y\n");
+    for s in ["W-1/nitrate", "W-2/nitrate", "W-3/nitrate"] {
+        for (i, (x, y)) in gentle().iter().enumerate() {
+            text.push_str(&format!("{s}-{i},{s},{x},{y}\n"));
+        }
+    }
+    site.deliver("a.csv", &text);
+    let mut slips = String::from("record_id,series,x,y\n");
+    for s in ["W-1/nitrate", "W-2/nitrate", "W-3/nitrate"] {
+        slips.push_str(&format!("{s}-slip,{s},2017.5,{}\n", 10.0 * line(2017.5)));
+    }
+    site.deliver("b.csv", &slips);
+    assert_eq!(site.findings().len(), 3);
+    let conn = site.db();
+    let mut stmt = conn
+        .prepare(
+            "SELECT status, subject, length(body_text), length(body_html), chart IS NULL
+             FROM outbox ORDER BY id",
+        )
+        .unwrap();
+    let rows: Vec<(String, String, i64, i64, bool)> = stmt
+        .query_map([], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
+        .unwrap()
+        .collect::<Result<_, _>>()
+        .unwrap();
+    assert_eq!(rows.len(), 3, "{rows:?}");
+    // The first went out whole (written to data/outbox without [smtp]).
+    assert_eq!(rows[0].0, "sent");
+    assert!(rows[0].2 > 500 && rows[0].3 > 500, "{rows:?}");
+    // The others wait for the digest, which lists their subjects; the
+    // finding itself (`slopewarden show`) is the full notice.
+    for held in &rows[1..] {
+        assert_eq!(held.0, "held");
+        assert!(held.1.contains("nitrate"), "{held:?}");
+        assert_eq!((held.2, held.3, held.4), (0, 0, true), "{held:?}");
+    }
+    // `verify` still vouches for the messages as written.
+    let out = site.command(&["verify"]).output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stdout)
+    );
+}
+
+#[test]
 fn a_record_a_decade_beyond_the_range_on_the_line_has_high_leverage_and_nothing_else() {
     // 2027.5 instead of 2017.5 (a wrong year), its value on the trend.
     let found = findings_after(&csv(31, &[(2027.5, line(2027.5))]));

@@ -25,7 +25,7 @@ pub use chart::{ChartPoint, PointRole};
 pub use render::{
     Cause, Digest, DigestLine, FindingKind, FitSummary, Flag, InlineImage, Notice, RecordInfo,
     Rendered, RobustSlope, Severity, finding_message_id, render_digest, render_notice,
-    render_test_message,
+    render_notice_heading, render_test_message,
 };
 pub use send::{
     Mailer, OutboxDir, Outgoing, Recording, Secret, SecretError, SendError, Smtp, SmtpSettings,

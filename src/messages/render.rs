@@ -526,6 +526,19 @@ compliance determination and does not say that a limit was exceeded or met. The 
 regulations, the site's approved sampling and analysis plan, and the judgement of the licensed \
 professionals responsible for the site take precedence over anything written here.";
 
+/// A notice held back for a digest: its Message-ID and subject only, the
+/// two things a digest line needs. No bodies and no chart.
+pub fn render_notice_heading(n: &Notice) -> Rendered {
+    Rendered {
+        message_id: finding_message_id(&n.instance, n.finding_id),
+        subject: notice_subject(n),
+        text: String::new(),
+        html: String::new(),
+        chart: None,
+        chart_problem: None,
+    }
+}
+
 /// Renders one finding's message. Never fails: when the chart cannot be
 /// drawn the message goes out without it, says so, and
 /// [`Rendered::chart_problem`] tells the caller why.

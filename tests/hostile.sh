@@ -193,8 +193,13 @@ for name, delay in zip(sorted(os.listdir(race)), [0.3, 0.45, 0.5, 0.55, 0.6, 0.7
     dest = os.path.join(site, "inbox", name)
     os.rename(os.path.join(race, name), dest)
     time.sleep(delay)
-    os.unlink(dest)
-    rounds.append({"name": name, "delay": delay})
+    try:
+        os.unlink(dest)
+        deleted = True
+    except FileNotFoundError:
+        # The daemon took it first: then it must be stored whole.
+        deleted = False
+    rounds.append({"name": name, "delay": delay, "deleted": deleted})
     time.sleep(3.0)
 json.dump(rounds, sys.stdout)
 EOF

@@ -213,7 +213,8 @@ class Checker:
             p.append(f"... {bad} files wrong in all")
         self.report(case, f"{case['count'] - bad} of {case['count']} ingested", p)
 
-    def whole_or_none(self, case, delay):
+    def whole_or_none(self, case, race):
+        delay, deleted = race
         row = self.files.get(case["sha256"])
         prefix = case["name"].split("-")[1].split(".")[0]
         stored = self.count("SELECT COUNT(*) FROM records WHERE record_id LIKE ?", f"VAN{prefix}-%")
@@ -230,7 +231,10 @@ class Checker:
         inbox_copy = os.path.join(self.inbox, os.fsencode(case["name"]))
         if os.path.lexists(inbox_copy):
             p.append("still in the inbox after it was deleted")
-        self.report(case, f"{observed} (deleted after {delay:.2f} s)", p)
+        if not deleted and observed != "whole":
+            p.append("taken by the daemon before the deletion, yet not stored whole")
+        when = f"deleted after {delay:.2f} s" if deleted else f"taken before the deletion at {delay:.2f} s"
+        self.report(case, f"{observed} ({when})", p)
 
     def never_outside(self, case):
         """A file replaced by a symlink to an outside file while the daemon
@@ -343,7 +347,7 @@ class Checker:
 
     def run(self):
         manifest = json.load(open(os.path.join(self.corpus, "manifest.json")))
-        delays = {r["name"]: r["delay"] for r in self.races}
+        delays = {r["name"]: (r["delay"], r.get("deleted", True)) for r in self.races}
         for case in manifest["cases"]:
             kind, group = case["expect"], case["group"]
             if group == "race":

@@ -307,6 +307,16 @@ fn parse_level(s: &str) -> Result<f64, String> {
 }
 
 fn main() -> ExitCode {
+    // Blocks of 1 MiB and more are mapped and handed back to the system
+    // when freed. glibc's default threshold rises after each such free, so
+    // the buffers of one large delivery stayed in the daemon's heap after
+    // it was stored (measured: 70 MB of 258 MB peak RSS).
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: called before any thread starts and before any allocation
+    // that depends on the setting; mallopt only changes a tuning value.
+    unsafe {
+        libc::mallopt(libc::M_MMAP_THRESHOLD, 1 << 20);
+    }
     let cli = Cli::parse();
     if matches!(
         cli.command,

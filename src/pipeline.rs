@@ -869,6 +869,7 @@ fn store_file(
                     }
                 };
                 let head_before = row.latest_record;
+                let in_file = per_series.get(key).copied().unwrap_or(1);
                 touched.insert(
                     key.to_string(),
                     Touched {
@@ -877,9 +878,11 @@ fn store_file(
                         settings,
                         state,
                         changed: false,
-                        new_points: Vec::new(),
+                        // Sized once: a large delivery's points must not
+                        // double their way up.
+                        new_points: Vec::with_capacity(in_file),
                         awaiting,
-                        in_file: per_series.get(key).copied().unwrap_or(1),
+                        in_file,
                         last: None,
                         log,
                         window,

@@ -502,11 +502,12 @@ pub(crate) struct FileRows {
 }
 
 impl FileRows {
-    /// Bytes of encoded rows kept per file. A delivery of a million
-    /// records encodes to a few hundred megabytes; past this budget its
-    /// seal is computed the old way, from the rows read back, which costs
-    /// time (about a tenth of the ingest) instead of memory.
-    pub(crate) const BUDGET: usize = if cfg!(test) { 64 << 10 } else { 32 << 20 };
+    /// Bytes of encoded rows kept per file (about 30,000 records). A
+    /// delivery of a million records encodes to a few hundred megabytes;
+    /// past this budget its seal is computed the old way, from the rows
+    /// read back, which costs time (about a tenth of its ingest) instead
+    /// of memory.
+    pub(crate) const BUDGET: usize = if cfg!(test) { 64 << 10 } else { 8 << 20 };
 
     /// Whether rows are still to be encoded.
     pub(crate) fn keeping(&self) -> bool {

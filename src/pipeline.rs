@@ -1085,7 +1085,16 @@ fn store_file(
                         _ => t.judging = None,
                     }
                     t.new_points.push(p);
-                    t.last = Some((*a, record.record_id.clone()));
+                    // The id's buffer is reused: one allocation per series
+                    // and file, not per record.
+                    match t.last.as_mut() {
+                        Some((arrival, id)) => {
+                            *arrival = *a;
+                            id.clear();
+                            id.push_str(&record.record_id);
+                        }
+                        None => t.last = Some((*a, record.record_id.clone())),
+                    }
                 }
                 continue;
             }

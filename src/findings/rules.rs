@@ -26,7 +26,7 @@
 
 use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 
-use crate::stats::dist::{t_quantile, t_two_sided_p};
+use crate::stats::dist::t_quantile;
 use crate::stats::{Arrival, LineFit};
 
 /// Number of coefficients of the straight line.
@@ -245,11 +245,17 @@ pub fn judge_record_with(
         && pred.df >= 1
     {
         let kk = k.max(1);
-        // |t| beyond the critical value exactly when its two-sided p is
-        // below alpha / k: one t tail instead of a t quantile for every
-        // record (the quantile, for the message, is taken below only when
-        // the record raises a finding).
-        let crossed = t_two_sided_p(tv, pred.df as f64) < t.outlier_alpha / kk as f64;
+        // |t| beyond the Bonferroni critical value t(1 − alpha/2k, df):
+        // the very cutoff the finding shows, memoised per (df, k), so a
+        // backlog pays a few thousand quantiles instead of a t tail for
+        // every record.
+        let cutoff = *cache
+            .outlier_t
+            .entry((pred.df, kk, t.outlier_alpha.to_bits()))
+            .or_insert_with(|| {
+                t_quantile(1.0 - t.outlier_alpha / (2.0 * kk as f64), pred.df as f64)
+            });
+        let crossed = tv.abs() > cutoff;
         if crossed {
             kinds.push(RecordKind::Outlier);
         }
@@ -257,8 +263,7 @@ pub fn judge_record_with(
             kind: "outlier",
             measure: "prediction t (externally studentized residual)",
             value: tv,
-            // Filled in below when the record raises a finding.
-            cutoff: f64::NAN,
+            cutoff,
             crossed,
             source: CutoffSource::Outlier {
                 alpha: t.outlier_alpha,
@@ -362,16 +367,6 @@ pub fn judge_record_with(
         }
     }
     kinds.sort();
-    if !kinds.is_empty() {
-        for m in measures.iter_mut() {
-            if let CutoffSource::Outlier { alpha, df, k } = m.source {
-                m.cutoff = *cache
-                    .outlier_t
-                    .entry((df, k, alpha.to_bits()))
-                    .or_insert_with(|| t_quantile(1.0 - alpha / (2.0 * k as f64), df as f64));
-            }
-        }
-    }
     Some(RecordJudgement {
         kinds,
         measures,

@@ -204,7 +204,10 @@ fn queue_digests(config: &Config, store: &mut Store, now: SystemTime) -> Result<
                 config.mail.max_per_hour
             ),
             lines,
-            review_hint: Some("slopewarden findings --open".into()),
+            review_hint: Some(
+                "Each one in full (its numbers, the fit with and without the record, the likely entry errors, the verdict commands): slopewarden show N. The open ones: slopewarden findings --open."
+                    .into(),
+            ),
         });
         let ids: Vec<i64> = rows.iter().map(|r| r.0).collect();
         let tx = store.begin()?;
@@ -299,6 +302,8 @@ mod tests {
         let sent = mailer.sent();
         assert_eq!(sent.len(), 3);
         let digest = &sent[2].rendered.text;
+        // Held rows carry no bodies: the digest says where each is in full.
+        assert!(digest.contains("slopewarden show N"), "{digest}");
         for id in ["3", "4", "5"] {
             assert!(
                 digest.contains(&format!("#{id}")) || digest.contains(id),

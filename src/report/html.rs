@@ -414,7 +414,21 @@ fn series_section(out: &mut String, s: &SeriesData) {
     out.push_str("</dl>\n");
 
     if let Some(f) = fit {
-        figures_table(out, f, transform, &labels.slope_unit, &labels.y_unit);
+        // The robust slope is recomputed as a series doubles; between
+        // times, the newest computed one is shown with its version.
+        let robust = s
+            .fits
+            .iter()
+            .filter(|r| r.version <= f.version && r.theil_sen_slope.is_some())
+            .max_by_key(|r| r.version);
+        figures_table(
+            out,
+            f,
+            robust,
+            transform,
+            &labels.slope_unit,
+            &labels.y_unit,
+        );
     }
 
     // The scatter.
@@ -589,9 +603,22 @@ fn trigger_text(f: &ReportFitRow) -> String {
     }
 }
 
+/// Where the robust figures were last computed, when not at this version.
+fn as_of(robust: &ReportFitRow, current: &ReportFitRow) -> String {
+    if robust.version == current.version {
+        String::new()
+    } else {
+        format!(
+            " <span class=\"muted\">(as of version {}, n = {}; recomputed when the series doubles)</span>",
+            robust.version, robust.n
+        )
+    }
+}
+
 fn figures_table(
     out: &mut String,
     f: &ReportFitRow,
+    robust: Option<&ReportFitRow>,
     transform: Transform,
     slope_unit: &str,
     y_unit: &str,
@@ -630,16 +657,23 @@ fn figures_table(
         ),
         (
             "Theil-Sen slope (robust)".into(),
-            match f.theil_sen_slope {
-                Some(b) => format!(
-                    "{} {}",
-                    html_number(&sig(b, DIGITS)),
-                    interval(f.theil_sen_ci_low, f.theil_sen_ci_high)
+            match robust {
+                Some(r) => format!(
+                    "{} {}{}",
+                    html_number(&sig(r.theil_sen_slope.unwrap_or(f64::NAN), DIGITS)),
+                    interval(r.theil_sen_ci_low, r.theil_sen_ci_high),
+                    as_of(r, f)
                 ),
-                None => "not computed for this version".into(),
+                None => "not computed yet".into(),
             },
         ),
-        ("Mann-Kendall p".into(), p_html(f.mann_kendall_p)),
+        (
+            "Mann-Kendall p".into(),
+            match robust {
+                Some(r) => format!("{}{}", p_html(r.mann_kendall_p), as_of(r, f)),
+                None => "not computed yet".into(),
+            },
+        ),
     ];
     // The slope in original units, where a transform makes that readable.
     if transform != Transform::None

@@ -168,7 +168,11 @@ impl Walk<'_> {
             }
         };
         if !target.starts_with(&self.root) {
-            warn!(path = %path.display(), target = %target.display(), "symlink leads outside the inbox; skipped (copy the file into the inbox instead)");
+            if first_report(&path) {
+                warn!(path = %path.display(), target = %target.display(), "symlink leads outside the inbox; skipped, and not reported again while it stays (copy the file into the inbox instead)");
+            } else {
+                debug!(path = %path.display(), "symlink leads outside the inbox; skipped");
+            }
             return;
         }
         match fs::metadata(&target) {
@@ -208,6 +212,24 @@ fn skip_unreadable(path: &Path, err: &io::Error) {
     if err.kind() != io::ErrorKind::NotFound {
         warn!(path = %path.display(), error = %err, "cannot inspect inbox entry; skipped until the next scan");
     }
+}
+
+/// Links already reported as leading outside the inbox, so that a link
+/// left in place is logged once, not at every rescan for months. Bounded:
+/// past 10,000 paths it starts afresh (each is then reported once more).
+static REPORTED: std::sync::Mutex<Option<std::collections::HashSet<PathBuf>>> =
+    std::sync::Mutex::new(None);
+
+/// Whether `path` is reported for the first time.
+fn first_report(path: &Path) -> bool {
+    let Ok(mut guard) = REPORTED.lock() else {
+        return true;
+    };
+    let seen = guard.get_or_insert_with(Default::default);
+    if seen.len() >= 10_000 {
+        seen.clear();
+    }
+    seen.insert(path.to_path_buf())
 }
 
 #[cfg(test)]
@@ -368,6 +390,17 @@ mod tests {
     mod unix {
         use super::*;
         use std::os::unix::fs::symlink;
+
+        #[test]
+        fn a_link_leading_outside_is_reported_once_per_path() {
+            let dir = tempfile::tempdir().unwrap();
+            let a = dir.path().join("first-link.csv");
+            let b = dir.path().join("second-link.csv");
+            assert!(first_report(&a));
+            assert!(!first_report(&a));
+            assert!(first_report(&b));
+            assert!(!first_report(&a) && !first_report(&b));
+        }
 
         #[test]
         fn symlink_to_a_file_outside_the_inbox_is_skipped() {

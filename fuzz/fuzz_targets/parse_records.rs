@@ -5,8 +5,10 @@
 //! second byte the per-series rules (unit to convert to, matrix, plausible x
 //! range, negatives allowed); the rest is the file's bytes.
 //!
-//! Besides "never panics", it checks what the parser promises about what
-//! it returns: every number finite, a non-detect's limit above zero, no
+//! Besides "never panics", it checks that reading the file in chunks
+//! (`RecordStream`, as large deliveries are read) gives exactly what
+//! reading it whole gives, and what the parser promises about what it
+//! returns: every number finite, a non-detect's limit above zero, no
 //! negative value unless allowed, lines counted from 1 in file order, no
 //! empty record id or series, and never more rows out than rows in.
 //!
@@ -19,8 +21,8 @@
 
 use libfuzzer_sys::fuzz_target;
 use slopewarden::records::{
-    DateFormat, Layout, Matrix, Measure, SeriesId, SeriesKey, SeriesRules, Today, XSource,
-    parse_file,
+    DateFormat, Layout, Matrix, Measure, ParsedFile, RecordStream, SeriesId, SeriesKey,
+    SeriesRules, Today, XSource, parse_file,
 };
 
 fn layout(selector: u8) -> Layout {
@@ -119,7 +121,21 @@ fuzz_target!(|data: &[u8]| {
         month: 2,
         day: 28,
     };
-    let Ok(parsed) = parse_file(bytes, &layout, &rules, today) else {
+    let whole = parse_file(bytes, &layout, &rules, today);
+    // Read in chunks (as a large delivery is), the same rows and errors
+    // come out, in the same order; the chunk size varies with the input.
+    let rows = 1 + usize::from(rules_byte % 5);
+    let chunked = RecordStream::new(bytes, &layout, &rules, today).and_then(|mut stream| {
+        let mut all = ParsedFile::default();
+        while let Some(mut chunk) = stream.next_chunk(rows)? {
+            assert!(chunk.records.len() + chunk.errors.len() <= rows);
+            all.records.append(&mut chunk.records);
+            all.errors.append(&mut chunk.errors);
+        }
+        Ok(all)
+    });
+    assert_eq!(whole, chunked, "chunks of {rows} differ from the whole file");
+    let Ok(parsed) = whole else {
         return;
     };
     // A row is at least one line, so the lines bound what comes out.

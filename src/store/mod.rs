@@ -888,6 +888,7 @@ impl Store {
             next_fit,
             first,
             written: std::cell::RefCell::new(Vec::new()),
+            recent: std::cell::RefCell::new(Vec::new()),
         })
     }
 
@@ -1150,6 +1151,10 @@ pub struct Tx<'a> {
     /// The files inserted by this transaction and not sealed yet, with
     /// their rows encoded as they were written (usually one file).
     written: std::cell::RefCell<Vec<WrittenFile>>,
+    /// Messages counted towards a recipient's hourly limit, per
+    /// (recipient, since): counted once, then kept up to date as this
+    /// transaction queues messages (nobody else writes meanwhile).
+    recent: std::cell::RefCell<Vec<(String, i64, i64)>>,
 }
 
 impl Tx<'_> {

@@ -3,7 +3,7 @@
 
 use rusqlite::{OptionalExtension, params};
 
-use super::{FileId, Result, SeriesRowId, Store, Tx};
+use super::{FileId, Result, SeriesRowId, Store, Tx, seal};
 
 /// A finding about to be stored.
 #[derive(Debug, Clone, PartialEq)]
@@ -125,6 +125,7 @@ impl Tx<'_> {
     pub fn insert_finding(&self, f: &NewFinding<'_>) -> Result<i64> {
         let ids = serde_json::to_string(f.record_ids).unwrap_or_else(|_| "[]".into());
         let kinds = serde_json::to_string(f.kinds).unwrap_or_else(|_| "[]".into());
+        let detail = f.detail.to_string();
         self.tx
             .prepare_cached(
                 "INSERT INTO findings (created_at, series_id, file_id, record_row, record_ids, kinds,
@@ -144,11 +145,30 @@ impl Tx<'_> {
                     f.fit_point.map(|p| p.0),
                     f.fit_point.map(|p| p.1),
                     f.summary,
-                    f.detail.to_string()
+                    detail
                 ])
             })
             .map_err(self.wrap())?;
-        Ok(self.tx.last_insert_rowid())
+        let id = self.tx.last_insert_rowid();
+        // Its seal is hashed from these values (see `Tx::seal`).
+        let mut rows = seal::FindingRows::default();
+        rows.finding
+            .row(id)
+            .put(&id)
+            .put(f.created_at)
+            .put(&f.series.map(|s| s.0))
+            .put(&f.file.map(|s| s.0))
+            .put(&f.record_row)
+            .put(&ids)
+            .put(&kinds)
+            .put(f.severity)
+            .put(&f.fit_version)
+            .put(&f.fit_point.map(|p| p.0))
+            .put(&f.fit_point.map(|p| p.1))
+            .put(f.summary)
+            .put(&detail);
+        self.findings_written.borrow_mut().push((id, rows));
+        Ok(id)
     }
 
     /// Points (fitted scale) of the series' records whose findings are still
@@ -220,6 +240,28 @@ impl Tx<'_> {
                 ])
             })
             .map_err(self.wrap())?;
+        if inserted == 1
+            && let Some(finding) = m.finding
+            && let Some((_, rows)) = self
+                .findings_written
+                .borrow_mut()
+                .iter_mut()
+                .find(|w| w.0 == finding)
+        {
+            let id = self.tx.last_insert_rowid();
+            rows.outbox
+                .row(id)
+                .put(&id)
+                .put(&finding)
+                .put(m.recipient)
+                .put(m.message_id)
+                .put(m.subject)
+                .put(m.text)
+                .put(m.html)
+                .put(&m.chart.map(|c| c.1))
+                .put(&m.chart.map(|c| c.0))
+                .put(&m.date_unix);
+        }
         if inserted == 1 && !m.held {
             for (to, since, n) in self.recent.borrow_mut().iter_mut() {
                 if to == m.recipient && m.date_unix >= *since {
@@ -486,6 +528,59 @@ mod tests {
             chart: None,
             date_unix,
             held,
+        }
+    }
+
+    /// A finding's seal hashed from the values written is the seal of its
+    /// rows read back, with a chart, a held message, NaN and -0.0 points
+    /// and an ignored duplicate message among them.
+    #[test]
+    fn a_finding_sealed_from_its_written_values_matches_its_rows_read_back() {
+        use crate::store::seal::{self, SealKind, SealScope};
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let ids = vec!["R-1".to_string()];
+        let kinds = vec!["outlier".to_string(), "influential".to_string()];
+        let detail = serde_json::json!({"summary": "ü <b>", "n": 12});
+        let mut found = Vec::new();
+        for (k, point) in [(f64::NAN, -0.0), (2024.5, 3.0)].into_iter().enumerate() {
+            let id = tx
+                .insert_finding(&NewFinding {
+                    created_at: "2026-12-02T10:00:00Z",
+                    series: None,
+                    file: None,
+                    record_row: None,
+                    record_ids: &ids,
+                    kinds: &kinds,
+                    severity: "alert",
+                    fit_version: Some(3),
+                    fit_point: Some(point),
+                    summary: "a summary",
+                    detail: &detail,
+                })
+                .unwrap();
+            let mid = format!("<finding-{id}@t>");
+            let png = [0x89u8, b'P', b'N', b'G', 0, 1, 2];
+            let mut with_chart = message("a@x", &mid, 1_500, false);
+            with_chart.chart = Some(("cid-1", &png[..]));
+            with_chart.finding = Some(id);
+            tx.queue_message(&with_chart).unwrap();
+            let mut held = message("b@x", &mid, 1_500, k == 0);
+            held.finding = Some(id);
+            tx.queue_message(&held).unwrap();
+            // Ignored: the same message to the same recipient.
+            tx.queue_message(&with_chart).unwrap();
+            let scope = SealScope::Finding(id);
+            let read_back = seal::compute(&tx.tx, scope, tx.first).unwrap();
+            assert_eq!(tx.seal(scope).unwrap(), seal::seal_text(scope, &read_back));
+            found.push((id, read_back));
+        }
+        assert!(tx.findings_written.borrow().is_empty());
+        tx.commit().unwrap();
+        let ids: Vec<i64> = found.iter().map(|f| f.0).collect();
+        let again = store.recompute_seals(SealKind::Finding, &ids).unwrap();
+        for (id, hash) in found {
+            assert_eq!(again[&id], hash);
         }
     }
 

@@ -889,6 +889,7 @@ impl Store {
             first,
             written: std::cell::RefCell::new(Vec::new()),
             recent: std::cell::RefCell::new(Vec::new()),
+            findings_written: std::cell::RefCell::new(Vec::new()),
         })
     }
 
@@ -1155,6 +1156,9 @@ pub struct Tx<'a> {
     /// (recipient, since): counted once, then kept up to date as this
     /// transaction queues messages (nobody else writes meanwhile).
     recent: std::cell::RefCell<Vec<(String, i64, i64)>>,
+    /// Findings inserted by this transaction and not sealed yet, with
+    /// their rows encoded as they were written.
+    findings_written: std::cell::RefCell<Vec<(i64, seal::FindingRows)>>,
 }
 
 impl Tx<'_> {
@@ -1659,6 +1663,28 @@ impl Tx<'_> {
                     }
                     // Not written here, or too large to keep: read back.
                     _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+                }
+            }
+            seal::SealScope::Finding(id) => {
+                let taken = {
+                    let mut written = self.findings_written.borrow_mut();
+                    let at = written.iter().position(|w| w.0 == id);
+                    at.map(|i| written.swap_remove(i))
+                };
+                match taken {
+                    Some((_, mut rows)) => {
+                        let hash = rows.seal();
+                        if cfg!(debug_assertions) {
+                            let read_back =
+                                seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+                            debug_assert_eq!(
+                                hash, read_back,
+                                "BUG: the seal of finding {id} from the values written differs from the rows read back"
+                            );
+                        }
+                        hash
+                    }
+                    None => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
                 }
             }
             _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,

@@ -400,6 +400,12 @@ impl SealValue for str {
     }
 }
 
+impl SealValue for [u8] {
+    fn encode(&self, buf: &mut Vec<u8>) {
+        encode_stored(buf, ValueRef::Blob(self));
+    }
+}
+
 impl SealValue for String {
     fn encode(&self, buf: &mut Vec<u8>) {
         self.as_str().encode(buf);
@@ -536,6 +542,27 @@ impl FileRows {
         self.records.feed(&mut h);
         self.fits.feed(&mut h);
         self.quarantined.feed(&mut h);
+        hex::encode(h.finalize())
+    }
+}
+
+/// A finding's row and its outbox rows as this transaction wrote them,
+/// for [`SealScope::Finding`] without reading them back.
+#[derive(Debug, Default)]
+pub(crate) struct FindingRows {
+    /// Its `findings` row, in `FINDING_COLUMNS` order.
+    pub(crate) finding: SealRows,
+    /// Its `outbox` rows, in `OUTBOX_COLUMNS` order.
+    pub(crate) outbox: SealRows,
+}
+
+impl FindingRows {
+    /// The seal: the same hash as [`compute`] over the stored rows,
+    /// sections in the order of `sections(SealKind::Finding)`.
+    pub(crate) fn seal(&mut self) -> String {
+        let mut h = Sha256::new();
+        self.finding.feed(&mut h);
+        self.outbox.feed(&mut h);
         hex::encode(h.finalize())
     }
 }

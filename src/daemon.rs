@@ -349,6 +349,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
     let mut cache = SeriesCache::new();
     let mut totals = RunTotals::default();
     let mut next_scan = Instant::now();
+    let mut reported = inbox::Reported::default();
     let mut dirty = true;
     let mut disk_low = false;
     let store_dir = store
@@ -375,7 +376,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
         if dirty || now >= next_scan || settler.pending() > 0 {
             dirty = false;
             next_scan = now + config.rescan;
-            let listed = match inbox::list_candidates(&cfg) {
+            let listed = match inbox::list_candidates_noting(&cfg, &mut reported) {
                 Ok(l) => l,
                 Err(e) => {
                     error!(error = %e, "cannot list the inbox; retrying");

@@ -55,7 +55,7 @@ use std::time::Duration;
 pub use error::InboxError;
 pub use hash::{read_below, sha256_file};
 pub use moves::{REASON_SUFFIX, archive_from_inbox, move_to_archive, move_to_quarantine};
-pub use scan::{Candidate, is_ignored_name, list_candidates};
+pub use scan::{Candidate, Reported, is_ignored_name, list_candidates, list_candidates_noting};
 pub use settle::{ReadyFile, Settler};
 pub use watch::{Wake, WatchMode, Watcher};
 

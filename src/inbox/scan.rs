@@ -59,6 +59,15 @@ pub fn is_ignored_name(name: &OsStr) -> bool {
 /// vanishes mid-listing is skipped silently (it is gone); one that cannot be
 /// read is skipped with a warning and tried again on the next listing.
 pub fn list_candidates(cfg: &InboxConfig) -> Result<Vec<Candidate>, InboxError> {
+    list_candidates_noting(cfg, &mut Reported::default())
+}
+
+/// [`list_candidates`] for repeated listings: problems already in
+/// `reported` are logged at debug level only.
+pub fn list_candidates_noting(
+    cfg: &InboxConfig,
+    reported: &mut Reported,
+) -> Result<Vec<Candidate>, InboxError> {
     let missing = || InboxError::InboxMissing {
         path: cfg.dir.clone(),
     };
@@ -79,6 +88,7 @@ pub fn list_candidates(cfg: &InboxConfig) -> Result<Vec<Candidate>, InboxError> 
 
     let mut walk = Walk {
         cfg,
+        reported,
         root,
         found: Vec::new(),
         pending: Vec::new(),
@@ -107,6 +117,7 @@ pub fn list_candidates(cfg: &InboxConfig) -> Result<Vec<Candidate>, InboxError> 
 /// One listing in progress.
 struct Walk<'a> {
     cfg: &'a InboxConfig,
+    reported: &'a mut Reported,
     /// The inbox folder with every symlink resolved.
     root: PathBuf,
     found: Vec<Candidate>,
@@ -168,7 +179,7 @@ impl Walk<'_> {
             }
         };
         if !target.starts_with(&self.root) {
-            if first_report(&path) {
+            if self.reported.first(&path) {
                 warn!(path = %path.display(), target = %target.display(), "symlink leads outside the inbox; skipped, and not reported again while it stays (copy the file into the inbox instead)");
             } else {
                 debug!(path = %path.display(), "symlink leads outside the inbox; skipped");
@@ -214,22 +225,23 @@ fn skip_unreadable(path: &Path, err: &io::Error) {
     }
 }
 
-/// Links already reported as leading outside the inbox, so that a link
+/// Links already reported as leading outside the inbox, kept by a caller
+/// that lists the same inbox again and again (the daemon), so that a link
 /// left in place is logged once, not at every rescan for months. Bounded:
 /// past 10,000 paths it starts afresh (each is then reported once more).
-static REPORTED: std::sync::Mutex<Option<std::collections::HashSet<PathBuf>>> =
-    std::sync::Mutex::new(None);
+#[derive(Debug, Default)]
+pub struct Reported {
+    links_outside: std::collections::HashSet<PathBuf>,
+}
 
-/// Whether `path` is reported for the first time.
-fn first_report(path: &Path) -> bool {
-    let Ok(mut guard) = REPORTED.lock() else {
-        return true;
-    };
-    let seen = guard.get_or_insert_with(Default::default);
-    if seen.len() >= 10_000 {
-        seen.clear();
+impl Reported {
+    /// Whether `path` is reported for the first time.
+    fn first(&mut self, path: &Path) -> bool {
+        if self.links_outside.len() >= 10_000 {
+            self.links_outside.clear();
+        }
+        self.links_outside.insert(path.to_path_buf())
     }
-    seen.insert(path.to_path_buf())
 }
 
 #[cfg(test)]
@@ -396,10 +408,11 @@ mod tests {
             let dir = tempfile::tempdir().unwrap();
             let a = dir.path().join("first-link.csv");
             let b = dir.path().join("second-link.csv");
-            assert!(first_report(&a));
-            assert!(!first_report(&a));
-            assert!(first_report(&b));
-            assert!(!first_report(&a) && !first_report(&b));
+            let mut reported = Reported::default();
+            assert!(reported.first(&a));
+            assert!(!reported.first(&a));
+            assert!(reported.first(&b));
+            assert!(!reported.first(&a) && !reported.first(&b));
         }
 
         #[test]

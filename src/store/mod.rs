@@ -52,13 +52,13 @@ pub use report::{
 };
 pub use verdicts::{NewVerdict, RecordState, ReviewTarget, VerdictRow};
 
-/// Columns of a record row, in the order [`bind_record`] binds them.
+/// Columns of a record row, in the order [`record_columns`] gives them.
 const INSERT_RECORD_HEAD: &str =
     "INSERT INTO records (id, record_id, version, status, series_id, x, y,
     censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id,
-    line, raw, joined_fit, leverage, standardized_residual, studentized_residual, cooks_distance,
-    dffits, dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t, slope_without,
-    slope_p_without, undefined, prev_in_series) VALUES ";
+    line, raw, prev_in_series, joined_fit, leverage, standardized_residual, studentized_residual,
+    cooks_distance, dffits, dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t,
+    slope_without, slope_p_without, undefined) VALUES ";
 const RECORD_COLUMNS: usize = 33;
 /// Records per multi-row INSERT: per-statement overhead dominates small
 /// inserts, and 32 × 33 parameters stay far below SQLite's limit.
@@ -211,211 +211,174 @@ impl FitBatch {
     }
 }
 
+/// A value a row's INSERT binds and its seal encodes (see `seal.rs`).
+trait Column: rusqlite::ToSql + seal::SealValue {}
+impl<T: rusqlite::ToSql + seal::SealValue + ?Sized> Column for T {}
+
+/// Where a column's value goes.
+#[derive(Clone, Copy, PartialEq, Eq)]
+enum Goes {
+    /// Bound at insert and covered by the seal.
+    Both,
+    /// Bound at insert, left out of the seal (it changes by design later).
+    Insert,
+    /// Not bound at insert (NULL until something else sets it), but read
+    /// by the seal's `SELECT *`.
+    Seal,
+}
+
+/// Every column of a fit row once, in the table's order (what the seal's
+/// `SELECT *` reads), with the columns the later migrations appended at
+/// the end (`x_min`, `x_max`, `significant`, then `trigger_verdict`, then
+/// `window`, `trigger_window`). `trigger_verdict` and `trigger_window` are
+/// NULL at insert; only a verdict's or a window change's fit (which has no
+/// trigger file) gets them set.
+fn fit_columns(row: &PendingFit, put: &mut dyn FnMut(&dyn Column, Goes)) {
+    use Goes::{Both, Seal};
+    let fit = row.fit.as_ref();
+    let robust = row.robust;
+    let m = &row.moments;
+    let null: Option<i64> = None;
+    put(&row.id, Both);
+    put(&row.series, Both);
+    put(&row.version, Both);
+    put(&row.trigger_file, Both);
+    put(&row.created_at, Both);
+    put(&row.transform, Both);
+    put(&row.non_detects, Both);
+    put(&(m.n as i64), Both);
+    put(&row.censored, Both);
+    put(&row.level, Both);
+    put(&fit.map(|v| v.slope), Both);
+    put(&fit.map(|v| v.intercept), Both);
+    put(&fit.map(|v| v.slope_se), Both);
+    put(&fit.map(|v| v.intercept_se), Both);
+    put(&fit.and_then(|v| v.slope_t), Both);
+    put(&fit.and_then(|v| v.slope_p), Both);
+    put(&fit.map(|v| v.slope_ci_low), Both);
+    put(&fit.map(|v| v.slope_ci_high), Both);
+    put(&fit.and_then(|v| v.r_squared), Both);
+    put(&fit.map(|v| v.residual_sd), Both);
+    put(&fit.map(|v| v.df as i64), Both);
+    put(&robust.map(|r| r.slope), Both);
+    put(&robust.map(|r| r.ci_low), Both);
+    put(&robust.map(|r| r.ci_high), Both);
+    put(&robust.map(|r| r.mk_s), Both);
+    put(&robust.map(|r| r.mk_p), Both);
+    put(&row.note, Both);
+    put(&row.records, Both);
+    put(&row.robust_n, Both);
+    put(&m.origin, Both);
+    put(&m.mean_x, Both);
+    put(&m.mean_y, Both);
+    put(&m.sxx, Both);
+    put(&m.sxy, Both);
+    put(&m.syy, Both);
+    put(&m.sse, Both);
+    put(&row.prev_fit, Both);
+    put(&row.x_span.map(|s| s.0), Both);
+    put(&row.x_span.map(|s| s.1), Both);
+    put(&row.significant, Both);
+    put(&null, Seal);
+    put(&row.window, Both);
+    put(&null, Seal);
+}
+
+/// Every column of a record row once, in [`INSERT_RECORD_HEAD`] order,
+/// which is [`seal::RECORD_COLUMNS`] order with `status` (left out of the
+/// seal: a verdict changes it) in its place.
+fn record_columns(row: &PendingRecord<'_>, put: &mut dyn FnMut(&dyn Column, Goes)) {
+    use Goes::{Both, Insert};
+    let r = row.record;
+    let (fx, fy) = row.fit_point.unzip();
+    let d = row.diagnostics.as_ref();
+    put(&row.id, Both);
+    put(&r.record_id, Both);
+    put(&row.version, Both);
+    put(&row.status, Insert);
+    put(&row.series, Both);
+    put(&r.x, Both);
+    put(&r.y.number(), Both);
+    put(&r.y.is_censored(), Both);
+    put(&row.fit_point.is_some(), Both);
+    put(&fx, Both);
+    put(&fy, Both);
+    put(&r.unit, Both);
+    put(&r.unit_as_written, Both);
+    put(&r.sampled_at, Both);
+    put(&r.note, Both);
+    put(&row.attributes, Both);
+    put(&row.file, Both);
+    put(&(r.line as i64), Both);
+    put(&r.raw, Both);
+    put(&row.prev_in_series, Both);
+    put(&d.map(|d| d.joined_fit), Both);
+    put(&d.and_then(|d| d.leverage), Both);
+    put(&d.and_then(|d| d.standardized), Both);
+    put(&d.and_then(|d| d.studentized), Both);
+    put(&d.and_then(|d| d.cooks), Both);
+    put(&d.and_then(|d| d.dffits), Both);
+    put(&d.and_then(|d| d.dfbetas_intercept), Both);
+    put(&d.and_then(|d| d.dfbetas_slope), Both);
+    put(&d.and_then(|d| d.covariance_ratio), Both);
+    put(&d.and_then(|d| d.prediction_t), Both);
+    put(&d.and_then(|d| d.slope_without), Both);
+    put(&d.and_then(|d| d.slope_p_without), Both);
+    put(&d.and_then(|d| d.undefined), Both);
+}
+
+/// Binds the columns `columns` gives for insert, from parameter offset
+/// `base` (0-based); `count` is how many there must be.
+fn bind_columns(
+    stmt: &mut rusqlite::Statement<'_>,
+    base: usize,
+    count: usize,
+    columns: impl FnOnce(&mut dyn FnMut(&dyn Column, Goes)),
+) -> rusqlite::Result<()> {
+    let mut i = base;
+    let mut result = Ok(());
+    columns(&mut |v, goes| {
+        if goes != Goes::Seal && result.is_ok() {
+            i += 1;
+            result = stmt.raw_bind_parameter(i, v as &dyn rusqlite::ToSql);
+        }
+    });
+    debug_assert!(
+        result.is_err() || i - base == count,
+        "BUG: {} columns bound, {count} expected",
+        i - base
+    );
+    result
+}
+
+/// Encodes the columns `columns` gives for the seal, as row `id`.
+fn seal_columns(
+    out: &mut seal::SealRows,
+    id: i64,
+    columns: impl FnOnce(&mut dyn FnMut(&dyn Column, Goes)),
+) {
+    let mut row = out.row(id);
+    columns(&mut |v, goes| {
+        if goes != Goes::Insert {
+            row.put(v as &dyn seal::SealValue);
+        }
+    });
+}
+
 fn bind_fit(
     stmt: &mut rusqlite::Statement<'_>,
     base: usize,
     row: &PendingFit,
 ) -> rusqlite::Result<()> {
-    let fit = row.fit.as_ref();
-    let robust = row.robust;
-    let m = &row.moments;
-    let mut i = base;
-    let mut put = |v: &dyn rusqlite::ToSql| -> rusqlite::Result<()> {
-        i += 1;
-        stmt.raw_bind_parameter(i, v)
-    };
-    put(&row.id)?;
-    put(&row.series)?;
-    put(&row.version)?;
-    put(&row.trigger_file)?;
-    put(&row.created_at)?;
-    put(&row.transform)?;
-    put(&row.non_detects)?;
-    put(&(m.n as i64))?;
-    put(&row.censored)?;
-    put(&row.level)?;
-    put(&fit.map(|v| v.slope))?;
-    put(&fit.map(|v| v.intercept))?;
-    put(&fit.map(|v| v.slope_se))?;
-    put(&fit.map(|v| v.intercept_se))?;
-    put(&fit.and_then(|v| v.slope_t))?;
-    put(&fit.and_then(|v| v.slope_p))?;
-    put(&fit.map(|v| v.slope_ci_low))?;
-    put(&fit.map(|v| v.slope_ci_high))?;
-    put(&fit.and_then(|v| v.r_squared))?;
-    put(&fit.map(|v| v.residual_sd))?;
-    put(&fit.map(|v| v.df as i64))?;
-    put(&robust.map(|r| r.slope))?;
-    put(&robust.map(|r| r.ci_low))?;
-    put(&robust.map(|r| r.ci_high))?;
-    put(&robust.map(|r| r.mk_s))?;
-    put(&robust.map(|r| r.mk_p))?;
-    put(&row.note)?;
-    put(&row.records)?;
-    put(&row.robust_n)?;
-    put(&m.origin)?;
-    put(&m.mean_x)?;
-    put(&m.mean_y)?;
-    put(&m.sxx)?;
-    put(&m.sxy)?;
-    put(&m.syy)?;
-    put(&m.sse)?;
-    put(&row.prev_fit)?;
-    put(&row.x_span.map(|s| s.0))?;
-    put(&row.x_span.map(|s| s.1))?;
-    put(&row.significant)?;
-    put(&row.window)?;
-    debug_assert_eq!(i - base, FIT_COLUMNS);
-    Ok(())
+    bind_columns(stmt, base, FIT_COLUMNS, |put| fit_columns(row, put))
 }
 
-/// Binds one record row at parameter offset `base` (0-based).
 fn bind_record(
     stmt: &mut rusqlite::Statement<'_>,
     base: usize,
     row: &PendingRecord<'_>,
 ) -> rusqlite::Result<()> {
-    let r = row.record;
-    let (fx, fy) = row.fit_point.unzip();
-    let d = row.diagnostics.as_ref();
-    let mut i = base;
-    let mut put = |v: &dyn rusqlite::ToSql| -> rusqlite::Result<()> {
-        i += 1;
-        stmt.raw_bind_parameter(i, v)
-    };
-    put(&row.id)?;
-    put(&r.record_id)?;
-    put(&row.version)?;
-    put(&row.status)?;
-    put(&row.series)?;
-    put(&r.x)?;
-    put(&r.y.number())?;
-    put(&r.y.is_censored())?;
-    put(&row.fit_point.is_some())?;
-    put(&fx)?;
-    put(&fy)?;
-    put(&r.unit)?;
-    put(&r.unit_as_written)?;
-    put(&r.sampled_at)?;
-    put(&r.note)?;
-    put(&row.attributes)?;
-    put(&row.file)?;
-    put(&(r.line as i64))?;
-    put(&r.raw)?;
-    put(&d.map(|d| d.joined_fit))?;
-    put(&d.and_then(|d| d.leverage))?;
-    put(&d.and_then(|d| d.standardized))?;
-    put(&d.and_then(|d| d.studentized))?;
-    put(&d.and_then(|d| d.cooks))?;
-    put(&d.and_then(|d| d.dffits))?;
-    put(&d.and_then(|d| d.dfbetas_intercept))?;
-    put(&d.and_then(|d| d.dfbetas_slope))?;
-    put(&d.and_then(|d| d.covariance_ratio))?;
-    put(&d.and_then(|d| d.prediction_t))?;
-    put(&d.and_then(|d| d.slope_without))?;
-    put(&d.and_then(|d| d.slope_p_without))?;
-    put(&d.and_then(|d| d.undefined))?;
-    put(&row.prev_in_series)?;
-    debug_assert_eq!(i - base, RECORD_COLUMNS);
-    Ok(())
-}
-
-/// A record row as its file's seal reads it back: the values
-/// [`bind_record`] binds, in [`seal::RECORD_COLUMNS`] order.
-fn seal_record(out: &mut seal::SealRows, row: &PendingRecord<'_>) {
-    let r = row.record;
-    let (fx, fy) = row.fit_point.unzip();
-    let d = row.diagnostics.as_ref();
-    out.row(row.id)
-        .put(&row.id)
-        .put(&r.record_id)
-        .put(&row.version)
-        .put(&row.series)
-        .put(&r.x)
-        .put(&r.y.number())
-        .put(&r.y.is_censored())
-        .put(&row.fit_point.is_some())
-        .put(&fx)
-        .put(&fy)
-        .put(&r.unit)
-        .put(&r.unit_as_written)
-        .put(&r.sampled_at)
-        .put(&r.note)
-        .put(&row.attributes)
-        .put(&row.file)
-        .put(&(r.line as i64))
-        .put(&r.raw)
-        .put(&row.prev_in_series)
-        .put(&d.map(|d| d.joined_fit))
-        .put(&d.and_then(|d| d.leverage))
-        .put(&d.and_then(|d| d.standardized))
-        .put(&d.and_then(|d| d.studentized))
-        .put(&d.and_then(|d| d.cooks))
-        .put(&d.and_then(|d| d.dffits))
-        .put(&d.and_then(|d| d.dfbetas_intercept))
-        .put(&d.and_then(|d| d.dfbetas_slope))
-        .put(&d.and_then(|d| d.covariance_ratio))
-        .put(&d.and_then(|d| d.prediction_t))
-        .put(&d.and_then(|d| d.slope_without))
-        .put(&d.and_then(|d| d.slope_p_without))
-        .put(&d.and_then(|d| d.undefined));
-}
-
-/// A fit row as a seal reads it back (`SELECT *`): the values [`bind_fit`]
-/// binds, in the table's column order, with the columns the later
-/// migrations appended at the end (`x_min`, `x_max`, `significant`, then
-/// `trigger_verdict`, then `window`, `trigger_window`). `trigger_verdict`
-/// and `trigger_window` are not bound at insert, so NULL; only a verdict's
-/// or a window change's fit (which has no trigger file) gets them set.
-fn seal_fit(out: &mut seal::SealRows, row: &PendingFit) {
-    let fit = row.fit.as_ref();
-    let robust = row.robust;
-    let m = &row.moments;
-    let null: Option<i64> = None;
-    out.row(row.id)
-        .put(&row.id)
-        .put(&row.series)
-        .put(&row.version)
-        .put(&row.trigger_file)
-        .put(&row.created_at)
-        .put(&row.transform)
-        .put(&row.non_detects)
-        .put(&(m.n as i64))
-        .put(&row.censored)
-        .put(&row.level)
-        .put(&fit.map(|v| v.slope))
-        .put(&fit.map(|v| v.intercept))
-        .put(&fit.map(|v| v.slope_se))
-        .put(&fit.map(|v| v.intercept_se))
-        .put(&fit.and_then(|v| v.slope_t))
-        .put(&fit.and_then(|v| v.slope_p))
-        .put(&fit.map(|v| v.slope_ci_low))
-        .put(&fit.map(|v| v.slope_ci_high))
-        .put(&fit.and_then(|v| v.r_squared))
-        .put(&fit.map(|v| v.residual_sd))
-        .put(&fit.map(|v| v.df as i64))
-        .put(&robust.map(|r| r.slope))
-        .put(&robust.map(|r| r.ci_low))
-        .put(&robust.map(|r| r.ci_high))
-        .put(&robust.map(|r| r.mk_s))
-        .put(&robust.map(|r| r.mk_p))
-        .put(&row.note)
-        .put(&row.records)
-        .put(&row.robust_n)
-        .put(&m.origin)
-        .put(&m.mean_x)
-        .put(&m.mean_y)
-        .put(&m.sxx)
-        .put(&m.sxy)
-        .put(&m.syy)
-        .put(&m.sse)
-        .put(&row.prev_fit)
-        .put(&row.x_span.map(|s| s.0))
-        .put(&row.x_span.map(|s| s.1))
-        .put(&row.significant)
-        .put(&null)
-        .put(&row.window)
-        .put(&null);
+    bind_columns(stmt, base, RECORD_COLUMNS, |put| record_columns(row, put))
 }
 
 /// A `source_files` row written by this transaction, as its columns stand
@@ -1355,7 +1318,7 @@ impl Tx<'_> {
             &batch.rows,
             |r| Some(r.file),
             |w, r| {
-                seal_record(&mut w.records, r);
+                seal_columns(&mut w.records, r.id, |put| record_columns(r, put));
             },
         );
         static SQL: OnceLock<(String, String)> = OnceLock::new();
@@ -1587,7 +1550,7 @@ impl Tx<'_> {
             &batch.rows,
             |f| f.trigger_file,
             |w, f| {
-                seal_fit(&mut w.fits, f);
+                seal_columns(&mut w.fits, f.id, |put| fit_columns(f, put));
             },
         );
         static SQL: OnceLock<(String, String)> = OnceLock::new();

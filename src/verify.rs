@@ -7,7 +7,9 @@
 //!    row must be vouched for by some entry.
 //! 3. The states that verdicts change (a record's status and exclusion, a
 //!    finding's status) must be what the verdict log says.
-//! 4. Every stored fit is recomputed from the stored records with the
+//! 4. Every reference between rows (a record's series and file, a fit's
+//!    series, a finding's record) names a row that exists.
+//! 5. Every stored fit is recomputed from the stored records with the
 //!    stored settings, replaying the series in version order: a file adds
 //!    its records' points, a verdict refits from scratch on the remaining
 //!    points, exactly as ingest and `review` do.
@@ -114,6 +116,15 @@ pub fn verify(store: &Store) -> Result<VerifyReport, StoreError> {
                 );
             }
         }
+    }
+    // References: the writer leaves them unchecked in release builds.
+    for (table, row, parent) in store.dangling_references()? {
+        rep.problem(
+            format!("{table} {row}"),
+            format!(
+                "it refers to a row of {parent} that does not exist (deleted or never written)"
+            ),
+        );
     }
     let ids = |k: &str| -> Vec<i64> {
         let mut v: Vec<i64> = sealed

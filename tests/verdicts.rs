@@ -469,6 +469,9 @@ fn tampering_with_any_row_through_sqlite3_is_caught_by_verify() {
             "fits",
         ),
         ("UPDATE fits SET n = n - 1 WHERE id = (SELECT MAX(id) FROM fits)".to_string(), "fits"),
+        // References: the release writer leaves them to verify.
+        ("UPDATE records SET series_id = 999 WHERE id = 4".to_string(), "a row of series"),
+        ("DELETE FROM series WHERE id = 1".to_string(), "a row of series"),
         ("DELETE FROM fits WHERE version = 2".to_string(), "fits"),
         (format!("UPDATE findings SET summary = 'nothing to see' WHERE id = {finding}"), "finding"),
         (format!("UPDATE findings SET status = 'open' WHERE id = {finding}"), "findings"),

@@ -102,6 +102,25 @@ impl Store {
         rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
     }
 
+    /// Rows whose reference names a row that does not exist (SQLite's
+    /// `PRAGMA foreign_key_check`): (table, row id, referenced table).
+    pub fn dangling_references(&self) -> Result<Vec<(String, i64, String)>> {
+        let mut stmt = self
+            .conn
+            .prepare("PRAGMA foreign_key_check")
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([], |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get::<_, Option<i64>>(1)?.unwrap_or(0),
+                    r.get(2)?,
+                ))
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
     /// Record rows whose file is not among `files` and that no verdict in
     /// `verdicts` stored; fit rows triggered by neither; outbox rows of
     /// findings not in `findings`. Returns (table, row id) pairs.

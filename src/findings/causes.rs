@@ -416,6 +416,9 @@ pub fn rank_causes(input: &CauseInput<'_>) -> Ranked {
         c.tied = tied;
     }
     listed.truncate(input.max);
+    for c in &mut listed {
+        c.label = label_of(input, c.kind, &c.change, c.x, c.y);
+    }
     Ranked {
         as_written: scored.as_written,
         needed_p: needed,
@@ -437,7 +440,11 @@ enum Tail {
 /// Scores the record as written and every candidate, without filtering or
 /// sorting (for reports that show everything tried, and for tests).
 pub fn score_candidates(input: &CauseInput<'_>) -> Result<Scored, Unavailable> {
-    score_with(input, Tail::Now)
+    let mut scored = score_with(input, Tail::Now)?;
+    for c in &mut scored.candidates {
+        c.label = label_of(input, c.kind, &c.change, c.x, c.y);
+    }
+    Ok(scored)
 }
 
 fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable> {
@@ -468,7 +475,8 @@ fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable>
                     s
                 },
                 kind: proposal.kind,
-                label: proposal.label,
+                // Written by the caller for the candidates it keeps.
+                label: String::new(),
                 x: proposal.x,
                 y: proposal.y,
                 change: proposal.change,
@@ -530,73 +538,50 @@ struct Proposal<'a> {
     change: Change,
     x: f64,
     y: f64,
-    label: String,
     against: Option<&'a LineFit>,
 }
 
 fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
     let (x, y) = (input.x, input.y);
-    let unit = input.unit.map(str::trim).filter(|u| !u.is_empty());
-    let shown = |v: f64| match unit {
-        Some(u) => format!("{} {u}", show(v)),
-        None => show(v),
-    };
+    let unit = label_unit(input);
     let mut out = Vec::new();
-    let push_y = |kind, change, new_y: f64, what: String, out: &mut Vec<Proposal<'a>>| {
+    let push_y = |kind, change, new_y: f64, out: &mut Vec<Proposal<'a>>| {
         out.push(Proposal {
             kind,
             change,
             x,
             y: new_y,
-            label: format!("{what}: {} instead of {}", shown(new_y), shown(y)),
             against: None,
         });
     };
 
     // Unit mix-ups first decide which decimal slips they cover.
-    let units: Vec<(i32, String)> = UNIT_STEPS
+    let units: Vec<i32> = UNIT_STEPS
         .iter()
-        .filter_map(|&k| unit_wording(unit, k).map(|w| (k, w)))
+        .copied()
+        .filter(|&k| unit_wording(unit, k).is_some())
         .collect();
     for &k in &DECIMAL_SLIPS {
-        if units.iter().any(|(u, _)| *u == k) {
+        if units.contains(&k) {
             continue;
         }
-        let places = k.unsigned_abs();
-        let what = format!(
-            "decimal point slipped {places} place{}",
-            if places == 1 { "" } else { "s" }
-        );
         push_y(
             CauseKind::DecimalSlip,
             Change::ScaleY { power: k },
             scale10(y, k),
-            what,
             &mut out,
         );
     }
-    for (k, what) in units {
+    for k in units {
         push_y(
             CauseKind::UnitMixUp,
             Change::ScaleY { power: k },
             scale10(y, k),
-            what,
             &mut out,
         );
     }
-    push_y(
-        CauseKind::Sign,
-        Change::NegateY,
-        -y,
-        "sign typed wrong".to_string(),
-        &mut out,
-    );
+    push_y(CauseKind::Sign, Change::NegateY, -y, &mut out);
     for s in digit_swaps(input.y_raw, y) {
-        let what = format!(
-            "adjacent digits transposed (\"{}\" typed as \"{}\")",
-            s.text,
-            input.y_raw.trim()
-        );
         push_y(
             CauseKind::SwappedDigitsY,
             Change::SwapY {
@@ -604,28 +589,20 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
                 proposed: s.text,
             },
             s.value,
-            what,
             &mut out,
         );
     }
 
-    let xword = input.x_kind.word();
-    let push_x = |kind, change, new_x: f64, what: String, out: &mut Vec<Proposal<'a>>| {
+    let push_x = |kind, change, new_x: f64, out: &mut Vec<Proposal<'a>>| {
         out.push(Proposal {
             kind,
             change,
             x: new_x,
             y,
-            label: format!("{what}: {} instead of {}", show(new_x), show(x)),
             against: None,
         });
     };
     for s in digit_swaps(input.x_raw, x) {
-        let what = format!(
-            "adjacent digits transposed in the {xword} (\"{}\" typed as \"{}\")",
-            s.text,
-            input.x_raw.trim()
-        );
         push_x(
             CauseKind::SwappedDigitsX,
             Change::SwapX {
@@ -633,7 +610,6 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
                 proposed: s.text,
             },
             s.value,
-            what,
             &mut out,
         );
     }
@@ -644,7 +620,6 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
                     CauseKind::WrongYear,
                     Change::ShiftYears { years },
                     x + f64::from(years),
-                    format!("year off by {}", years.unsigned_abs()),
                     &mut out,
                 );
             }
@@ -655,7 +630,6 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
                     CauseKind::DecimalSlipX,
                     Change::ScaleX { power: k },
                     scale10(x, k),
-                    format!("decimal point slipped in the {xword}"),
                     &mut out,
                 );
             }
@@ -669,13 +643,54 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
             },
             x,
             y,
-            label: format!(
-                "may belong to series {name}: the value as written is consistent with its trend"
-            ),
             against: Some(fit),
         });
     }
     out
+}
+
+/// The record's unit as labels name it (none when blank).
+fn label_unit<'a>(input: &CauseInput<'a>) -> Option<&'a str> {
+    input.unit.map(str::trim).filter(|u| !u.is_empty())
+}
+
+/// The line for people that says what a candidate changes, e.g. "decimal
+/// point slipped 1 place: 4.73 mg/L instead of 47.3 mg/L". Written only
+/// for the candidates listed: most candidates tried are never shown, and
+/// their text was most of the cost of ranking after the p-values.
+fn label_of(input: &CauseInput<'_>, kind: CauseKind, change: &Change, x: f64, y: f64) -> String {
+    let unit = label_unit(input);
+    let shown = |v: f64| match unit {
+        Some(u) => format!("{} {u}", show(v)),
+        None => show(v),
+    };
+    let of_y = |what: String| format!("{what}: {} instead of {}", shown(y), shown(input.y));
+    let of_x = |what: String| format!("{what}: {} instead of {}", show(x), show(input.x));
+    let xword = input.x_kind.word();
+    match (kind, change) {
+        (CauseKind::UnitMixUp, Change::ScaleY { power }) => {
+            of_y(unit_wording(unit, *power).unwrap_or_default())
+        }
+        (_, Change::ScaleY { power }) => {
+            let places = power.unsigned_abs();
+            of_y(format!(
+                "decimal point slipped {places} place{}",
+                if places == 1 { "" } else { "s" }
+            ))
+        }
+        (_, Change::NegateY) => of_y("sign typed wrong".to_string()),
+        (_, Change::SwapY { written, proposed }) => of_y(format!(
+            "adjacent digits transposed (\"{proposed}\" typed as \"{written}\")"
+        )),
+        (_, Change::SwapX { written, proposed }) => of_x(format!(
+            "adjacent digits transposed in the {xword} (\"{proposed}\" typed as \"{written}\")"
+        )),
+        (_, Change::ShiftYears { years }) => of_x(format!("year off by {}", years.unsigned_abs())),
+        (_, Change::ScaleX { .. }) => of_x(format!("decimal point slipped in the {xword}")),
+        (_, Change::OtherSeries { series }) => format!(
+            "may belong to series {series}: the value as written is consistent with its trend"
+        ),
+    }
 }
 
 /// The label for y × 10^k read as a unit mix-up, or `None` when the unit

@@ -3,6 +3,11 @@
 //! per file, and nothing else (no validation, no refit, no audit).
 //!
 //! Run by benches/ingest.sh: `cargo bench --bench bare_insert -- INBOX DB`.
+//!
+//! `-- INBOX DB records` writes the same rows in the shape of slopewarden's
+//! `records` table instead (33 columns, the unique index on the record id,
+//! 32 rows a statement, as the store writes them), with placeholder
+//! diagnostics and nothing computed: what the row shape alone costs.
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -13,9 +18,10 @@ fn main() {
         .filter(|a| a != "--bench")
         .collect();
     let (Some(inbox), Some(db)) = (args.first(), args.get(1)) else {
-        eprintln!("usage: bare_insert INBOX DB (run through benches/ingest.sh)");
+        eprintln!("usage: bare_insert INBOX DB [records] (run through benches/ingest.sh)");
         return;
     };
+    let records_shape = args.get(2).is_some_and(|a| a == "records");
     let mut files: Vec<PathBuf> = std::fs::read_dir(inbox)
         .unwrap_or_else(|e| panic!("cannot read {inbox}: {e}"))
         .filter_map(|e| e.ok().map(|e| e.path()))
@@ -35,6 +41,9 @@ fn main() {
         "CREATE TABLE rows (record_id TEXT, series TEXT, x TEXT, y TEXT, unit TEXT, sampled_at TEXT, note TEXT)",
     )
     .unwrap_or_else(|e| panic!("{e}"));
+    if records_shape {
+        return records(&mut conn, &files);
+    }
     let start = Instant::now();
     let mut rows = 0u64;
     for f in &files {
@@ -62,5 +71,106 @@ fn main() {
         "bare_insert files={} rows={rows} seconds={secs:.3} rows_per_s={:.0}",
         files.len(),
         rows as f64 / secs
+    );
+}
+
+/// The columns of slopewarden's `records` table as its store inserts them.
+const RECORD_COLUMNS: usize = 33;
+const CHUNK: usize = 32;
+
+/// The same rows as `records` rows: ids assigned here, x and y parsed, the
+/// raw line kept, eleven placeholder diagnostics; no series or file rows
+/// are checked (as in a release build of slopewarden).
+fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
+    conn.execute_batch(
+        "CREATE TABLE records (
+            id INTEGER PRIMARY KEY, record_id TEXT NOT NULL, version INTEGER NOT NULL,
+            status TEXT NOT NULL CHECK (status IN ('current', 'proposed', 'superseded')),
+            series_id INTEGER NOT NULL, x REAL NOT NULL, y REAL NOT NULL,
+            censored INTEGER NOT NULL, in_fit INTEGER NOT NULL, fit_x REAL, fit_y REAL,
+            unit TEXT, unit_as_written TEXT, sampled_at TEXT, note TEXT, attributes TEXT,
+            file_id INTEGER NOT NULL, line INTEGER NOT NULL, raw TEXT NOT NULL,
+            prev_in_series INTEGER, joined_fit INTEGER, leverage REAL,
+            standardized_residual REAL, studentized_residual REAL, cooks_distance REAL,
+            dffits REAL, dfbetas_intercept REAL, dfbetas_slope REAL, covariance_ratio REAL,
+            prediction_t REAL, slope_without REAL, slope_p_without REAL, undefined TEXT,
+            excluded INTEGER NOT NULL DEFAULT 0, UNIQUE (record_id, version))",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let group = format!("({})", vec!["?"; RECORD_COLUMNS].join(", "));
+    let head = "INSERT INTO records (id, record_id, version, status, series_id, x, y,
+        censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes,
+        file_id, line, raw, prev_in_series, joined_fit, leverage, standardized_residual,
+        studentized_residual, cooks_distance, dffits, dfbetas_intercept, dfbetas_slope,
+        covariance_ratio, prediction_t, slope_without, slope_p_without, undefined) VALUES ";
+    let many = format!("{head}{}", vec![group.as_str(); CHUNK].join(", "));
+    let one = format!("{head}{group}");
+    let start = Instant::now();
+    let mut id = 0i64;
+    let mut series: std::collections::HashMap<String, i64> = std::collections::HashMap::new();
+    for (file_no, f) in files.iter().enumerate() {
+        let text = std::fs::read_to_string(f).unwrap_or_else(|e| panic!("{e}"));
+        let tx = conn.transaction().unwrap_or_else(|e| panic!("{e}"));
+        {
+            let mut stmt_many = tx.prepare_cached(&many).unwrap_or_else(|e| panic!("{e}"));
+            let mut stmt_one = tx.prepare_cached(&one).unwrap_or_else(|e| panic!("{e}"));
+            let lines: Vec<(usize, &str)> = text.lines().enumerate().skip(1).collect();
+            let full = lines.len() / CHUNK * CHUNK;
+            for (k, &(line_no, line)) in lines.iter().enumerate() {
+                let g: Vec<&str> = line.split(',').collect();
+                let field = |i: usize| g.get(i).copied().unwrap_or("");
+                let next = series.len() as i64 + 1;
+                let series_id = *series.entry(field(1).to_string()).or_insert(next);
+                id += 1;
+                let x: f64 = field(2).parse().unwrap_or(0.0);
+                let y: f64 = field(3).parse().unwrap_or(0.0);
+                let d = id as f64 * 1e-7;
+                let (stmt, at) = if k < full {
+                    (&mut stmt_many, (k % CHUNK) * RECORD_COLUMNS)
+                } else {
+                    (&mut stmt_one, 0)
+                };
+                let t = |c: usize| at + c;
+                let bound = (|| -> rusqlite::Result<()> {
+                    stmt.raw_bind_parameter(t(1), id)?;
+                    stmt.raw_bind_parameter(t(2), field(0))?;
+                    stmt.raw_bind_parameter(t(3), 1)?;
+                    stmt.raw_bind_parameter(t(4), "current")?;
+                    stmt.raw_bind_parameter(t(5), series_id)?;
+                    stmt.raw_bind_parameter(t(6), x)?;
+                    stmt.raw_bind_parameter(t(7), y)?;
+                    stmt.raw_bind_parameter(t(8), 0)?;
+                    stmt.raw_bind_parameter(t(9), 1)?;
+                    stmt.raw_bind_parameter(t(10), x)?;
+                    stmt.raw_bind_parameter(t(11), y)?;
+                    stmt.raw_bind_parameter(t(12), field(4))?;
+                    stmt.raw_bind_parameter(t(13), field(4))?;
+                    stmt.raw_bind_parameter(t(14), field(5))?;
+                    stmt.raw_bind_parameter(t(15), Option::<&str>::None)?;
+                    stmt.raw_bind_parameter(t(16), Option::<&str>::None)?;
+                    stmt.raw_bind_parameter(t(17), file_no as i64 + 1)?;
+                    stmt.raw_bind_parameter(t(18), line_no as i64 + 1)?;
+                    stmt.raw_bind_parameter(t(19), line)?;
+                    stmt.raw_bind_parameter(t(20), id - 1)?;
+                    stmt.raw_bind_parameter(t(21), 2)?;
+                    for c in 22..=32 {
+                        stmt.raw_bind_parameter(t(c), d * c as f64)?;
+                    }
+                    stmt.raw_bind_parameter(t(33), Option::<&str>::None)?;
+                    if k >= full || k % CHUNK == CHUNK - 1 {
+                        stmt.raw_execute()?;
+                    }
+                    Ok(())
+                })();
+                bound.unwrap_or_else(|e| panic!("{e}"));
+            }
+        }
+        tx.commit().unwrap_or_else(|e| panic!("{e}"));
+    }
+    let secs = start.elapsed().as_secs_f64();
+    println!(
+        "records_shape files={} rows={id} seconds={secs:.3} rows_per_s={:.0}",
+        files.len(),
+        id as f64 / secs
     );
 }

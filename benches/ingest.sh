@@ -1,7 +1,9 @@
 #!/usr/bin/env bash
 # Ingest speed side by side in one run, on a workload from
 # ../shared/bench/make_workload.py (an invented scenario):
-#   1. a bare SQLite insert of the same rows (benches/bare_insert.rs),
+#   1. a bare SQLite insert of the same rows (benches/bare_insert.rs), and
+#      the same rows in the shape of slopewarden's records table (its
+#      `records` mode: what the row shape alone costs),
 #   2. `slopewarden ingest` over the same inbox (parse, validate, refit,
 #      diagnostics, audit, commit per file), with its peak RSS.
 # Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
@@ -30,6 +32,12 @@ bare_bin=$(ls -t target/release/deps/bare_insert-* | grep -v '\.d$' | head -1)
 bare_out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
 echo "$bare_out"
 bare_s=$(echo "$bare_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+# The same rows in the shape of slopewarden's records table, nothing
+# computed: what the row shape alone costs against the bare insert.
+shape_out=$("$bare_bin" "$work/w/inbox" "$work/shape.sqlite3" records)
+echo "$shape_out"
+shape_s=$(echo "$shape_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+rm -f "$work"/shape.sqlite3*
 
 cat > "$work/sw.toml" <<TOML
 [paths]
@@ -45,9 +53,11 @@ sw_s=$(grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: 
 rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
-python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" <<'PY'
+python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" <<'PY'
 import sys
 records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
+shape = float(sys.argv[5])
 print(f"slopewarden ingest: {records} records in {sw:.2f} s = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
 print(f"bare SQLite insert: {bare:.2f} s; ratio slopewarden / bare = {sw/bare:.2f}")
+print(f"records-shaped insert (nothing computed): {shape:.2f} s = {shape/bare:.2f} x bare")
 PY

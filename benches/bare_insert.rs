@@ -66,10 +66,14 @@ fn main() {
         }
         tx.commit().unwrap_or_else(|e| panic!("{e}"));
     }
+    print_rate("bare_insert", files.len(), rows, start);
+}
+
+/// The line benches/ingest.sh reads.
+fn print_rate(what: &str, files: usize, rows: u64, start: Instant) {
     let secs = start.elapsed().as_secs_f64();
     println!(
-        "bare_insert files={} rows={rows} seconds={secs:.3} rows_per_s={:.0}",
-        files.len(),
+        "{what} files={files} rows={rows} seconds={secs:.3} rows_per_s={:.0}",
         rows as f64 / secs
     );
 }
@@ -78,25 +82,23 @@ fn main() {
 const RECORD_COLUMNS: usize = 33;
 const CHUNK: usize = 32;
 
-/// The same rows as `records` rows: ids assigned here, x and y parsed, the
-/// raw line kept, eleven placeholder diagnostics; no series or file rows
-/// are checked (as in a release build of slopewarden).
+/// The same rows as `records` rows of a store created by slopewarden's
+/// migrations: ids assigned here, x and y parsed, the raw line kept, eleven
+/// placeholder diagnostics; references are not checked (as in a release
+/// build of slopewarden).
 fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
-    conn.execute_batch(
-        "CREATE TABLE records (
-            id INTEGER PRIMARY KEY, record_id TEXT NOT NULL, version INTEGER NOT NULL,
-            status TEXT NOT NULL CHECK (status IN ('current', 'proposed', 'superseded')),
-            series_id INTEGER NOT NULL, x REAL NOT NULL, y REAL NOT NULL,
-            censored INTEGER NOT NULL, in_fit INTEGER NOT NULL, fit_x REAL, fit_y REAL,
-            unit TEXT, unit_as_written TEXT, sampled_at TEXT, note TEXT, attributes TEXT,
-            file_id INTEGER NOT NULL, line INTEGER NOT NULL, raw TEXT NOT NULL,
-            prev_in_series INTEGER, joined_fit INTEGER, leverage REAL,
-            standardized_residual REAL, studentized_residual REAL, cooks_distance REAL,
-            dffits REAL, dfbetas_intercept REAL, dfbetas_slope REAL, covariance_ratio REAL,
-            prediction_t REAL, slope_without REAL, slope_p_without REAL, undefined TEXT,
-            excluded INTEGER NOT NULL DEFAULT 0, UNIQUE (record_id, version))",
-    )
-    .unwrap_or_else(|e| panic!("{e}"));
+    // References unchecked, as a release build of slopewarden writes them
+    // (rusqlite's bundled SQLite checks them by default).
+    conn.pragma_update(None, "foreign_keys", "OFF")
+        .unwrap_or_else(|e| panic!("{e}"));
+    // The store's own schema, so that the shape follows its migrations.
+    for sql in [
+        include_str!("../migrations/0001_initial.sql"),
+        include_str!("../migrations/0002_findings.sql"),
+        include_str!("../migrations/0003_verdicts.sql"),
+    ] {
+        conn.execute_batch(sql).unwrap_or_else(|e| panic!("{e}"));
+    }
     let group = format!("({})", vec!["?"; RECORD_COLUMNS].join(", "));
     let head = "INSERT INTO records (id, record_id, version, status, series_id, x, y,
         censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes,
@@ -167,10 +169,5 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
         }
         tx.commit().unwrap_or_else(|e| panic!("{e}"));
     }
-    let secs = start.elapsed().as_secs_f64();
-    println!(
-        "records_shape files={} rows={id} seconds={secs:.3} rows_per_s={:.0}",
-        files.len(),
-        id as f64 / secs
-    );
+    print_rate("records_shape", files.len(), id as u64, start);
 }

@@ -324,9 +324,11 @@ impl Tx<'_> {
     /// its text form (`all` for every point); None when the configuration
     /// decides (no command, or the newest command gave the choice back).
     pub fn window_override(&self, series: super::SeriesRowId) -> Result<Option<String>> {
+        // `+?1`: see `series_row` (a bare parameter made SQLite re-parse
+        // the statement for every series).
         self.tx
             .prepare_cached(
-                "SELECT window FROM series_windows WHERE series_id = ?1 AND source = 'command'
+                "SELECT window FROM series_windows WHERE series_id = +?1 AND source = 'command'
                  ORDER BY id DESC LIMIT 1",
             )
             .and_then(|mut s| {

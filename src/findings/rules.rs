@@ -237,7 +237,9 @@ pub fn judge_record_with(
     let nf = n as f64;
     let pf = P as f64;
     let mut kinds = Vec::new();
-    let mut measures = Vec::new();
+    // Up to five measures (prediction t, leverage, Cook's distance, DFFITS,
+    // DFBETAS): sized once, as this runs for every record of a backlog.
+    let mut measures = Vec::with_capacity(5);
 
     // Outlier: prediction t against the fit before the record.
     if let Some(pred) = judged.prediction

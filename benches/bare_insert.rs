@@ -8,6 +8,9 @@
 //! `records` table instead (33 columns, the unique index on the record id,
 //! 32 rows a statement, as the store writes them), with placeholder
 //! diagnostics and nothing computed: what the row shape alone costs.
+//! `-- INBOX DB lean` writes them in a hypothetical narrow shape (16 columns:
+//! no diagnostics, no raw line, the same unique index): what a record would
+//! cost if its diagnostics were recomputed from the fit it joined.
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -18,10 +21,10 @@ fn main() {
         .filter(|a| a != "--bench")
         .collect();
     let (Some(inbox), Some(db)) = (args.first(), args.get(1)) else {
-        eprintln!("usage: bare_insert INBOX DB [records] (run through benches/ingest.sh)");
+        eprintln!("usage: bare_insert INBOX DB [records|lean] (run through benches/ingest.sh)");
         return;
     };
-    let records_shape = args.get(2).is_some_and(|a| a == "records");
+    let shape = args.get(2).map(String::as_str);
     let mut files: Vec<PathBuf> = std::fs::read_dir(inbox)
         .unwrap_or_else(|e| panic!("cannot read {inbox}: {e}"))
         .filter_map(|e| e.ok().map(|e| e.path()))
@@ -41,8 +44,8 @@ fn main() {
         "CREATE TABLE rows (record_id TEXT, series TEXT, x TEXT, y TEXT, unit TEXT, sampled_at TEXT, note TEXT)",
     )
     .unwrap_or_else(|e| panic!("{e}"));
-    if records_shape {
-        return records(&mut conn, &files);
+    if let Some(shape @ ("records" | "lean")) = shape {
+        return records(&mut conn, &files, shape == "lean");
     }
     let start = Instant::now();
     let mut rows = 0u64;
@@ -79,14 +82,71 @@ fn print_rate(what: &str, files: usize, rows: u64, start: Instant) {
 }
 
 /// The columns of slopewarden's `records` table as its store inserts them.
-const RECORD_COLUMNS: usize = 33;
+const RECORD_COLUMNS: [&str; 33] = [
+    "id",
+    "record_id",
+    "version",
+    "status",
+    "series_id",
+    "x",
+    "y",
+    "censored",
+    "in_fit",
+    "fit_x",
+    "fit_y",
+    "unit",
+    "unit_as_written",
+    "sampled_at",
+    "note",
+    "attributes",
+    "file_id",
+    "line",
+    "raw",
+    "prev_in_series",
+    "joined_fit",
+    "leverage",
+    "standardized_residual",
+    "studentized_residual",
+    "cooks_distance",
+    "dffits",
+    "dfbetas_intercept",
+    "dfbetas_slope",
+    "covariance_ratio",
+    "prediction_t",
+    "slope_without",
+    "slope_p_without",
+    "undefined",
+];
+
+/// A hypothetical narrow record row (not the store's schema): what a record
+/// would cost if its diagnostics were recomputed from the fit it joined and
+/// its raw line were not kept, with the same unique index on the record id.
+const LEAN_COLUMNS: [&str; 16] = [
+    "id",
+    "record_id",
+    "version",
+    "status",
+    "series_id",
+    "x",
+    "y",
+    "censored",
+    "in_fit",
+    "unit",
+    "sampled_at",
+    "note",
+    "file_id",
+    "line",
+    "prev_in_series",
+    "joined_fit",
+];
 const CHUNK: usize = 32;
 
-/// The same rows as `records` rows of a store created by slopewarden's
-/// migrations: ids assigned here, x and y parsed, the raw line kept, eleven
-/// placeholder diagnostics; references are not checked (as in a release
-/// build of slopewarden).
-fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
+/// The same rows as `records` rows, ids assigned here, x and y parsed, the
+/// raw line kept, eleven placeholder diagnostics, references not checked (as
+/// in a release build of slopewarden). `lean`: the same rows with only
+/// [`LEAN_COLUMNS`] kept, in a table of that shape.
+fn records(conn: &mut rusqlite::Connection, files: &[PathBuf], lean: bool) {
+    use rusqlite::types::{ToSqlOutput, ValueRef};
     // References unchecked, as a release build of slopewarden writes them
     // (rusqlite's bundled SQLite checks them by default).
     conn.pragma_update(None, "foreign_keys", "OFF")
@@ -99,12 +159,32 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
     ] {
         conn.execute_batch(sql).unwrap_or_else(|e| panic!("{e}"));
     }
-    let group = format!("({})", vec!["?"; RECORD_COLUMNS].join(", "));
-    let head = "INSERT INTO records (id, record_id, version, status, series_id, x, y,
-        censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes,
-        file_id, line, raw, prev_in_series, joined_fit, leverage, standardized_residual,
-        studentized_residual, cooks_distance, dffits, dfbetas_intercept, dfbetas_slope,
-        covariance_ratio, prediction_t, slope_without, slope_p_without, undefined) VALUES ";
+    let (table, columns): (&str, &[&str]) = if lean {
+        conn.execute_batch(
+            "CREATE TABLE records_lean (id INTEGER PRIMARY KEY, record_id TEXT NOT NULL,
+                version INTEGER NOT NULL, status TEXT NOT NULL, series_id INTEGER NOT NULL,
+                x REAL NOT NULL, y REAL NOT NULL, censored INTEGER NOT NULL, in_fit INTEGER NOT NULL,
+                unit TEXT, sampled_at TEXT, note TEXT, file_id INTEGER NOT NULL,
+                line INTEGER NOT NULL, prev_in_series INTEGER, joined_fit INTEGER,
+                UNIQUE (record_id, version))",
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+        ("records_lean", &LEAN_COLUMNS)
+    } else {
+        ("records", &RECORD_COLUMNS)
+    };
+    // Where each kept column sits among the store's 33.
+    let at_full: Vec<usize> = columns
+        .iter()
+        .map(|c| {
+            RECORD_COLUMNS
+                .iter()
+                .position(|f| f == c)
+                .unwrap_or_else(|| panic!("{c}"))
+        })
+        .collect();
+    let group = format!("({})", vec!["?"; columns.len()].join(", "));
+    let head = format!("INSERT INTO {table} ({}) VALUES ", columns.join(", "));
     let many = format!("{head}{}", vec![group.as_str(); CHUNK].join(", "));
     let one = format!("{head}{group}");
     let start = Instant::now();
@@ -120,45 +200,55 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
             let full = lines.len() / CHUNK * CHUNK;
             for (k, &(line_no, line)) in lines.iter().enumerate() {
                 let g: Vec<&str> = line.split(',').collect();
-                let field = |i: usize| g.get(i).copied().unwrap_or("");
+                let field = |i: usize| g.get(i).copied().unwrap_or("").as_bytes();
                 let next = series.len() as i64 + 1;
-                let series_id = *series.entry(field(1).to_string()).or_insert(next);
+                let key = String::from_utf8_lossy(field(1)).into_owned();
+                let series_id = *series.entry(key).or_insert(next);
                 id += 1;
-                let x: f64 = field(2).parse().unwrap_or(0.0);
-                let y: f64 = field(3).parse().unwrap_or(0.0);
+                let number = |i: usize| {
+                    std::str::from_utf8(field(i))
+                        .ok()
+                        .and_then(|v| v.parse().ok())
+                        .unwrap_or(0.0)
+                };
+                let (x, y): (f64, f64) = (number(2), number(3));
                 let d = id as f64 * 1e-7;
+                let mut values = [ValueRef::Null; 33];
+                values[..21].copy_from_slice(&[
+                    ValueRef::Integer(id),
+                    ValueRef::Text(field(0)),
+                    ValueRef::Integer(1),
+                    ValueRef::Text(b"current"),
+                    ValueRef::Integer(series_id),
+                    ValueRef::Real(x),
+                    ValueRef::Real(y),
+                    ValueRef::Integer(0),
+                    ValueRef::Integer(1),
+                    ValueRef::Real(x),
+                    ValueRef::Real(y),
+                    ValueRef::Text(field(4)),
+                    ValueRef::Text(field(4)),
+                    ValueRef::Text(field(5)),
+                    ValueRef::Null,
+                    ValueRef::Null,
+                    ValueRef::Integer(file_no as i64 + 1),
+                    ValueRef::Integer(line_no as i64 + 1),
+                    ValueRef::Text(line.as_bytes()),
+                    ValueRef::Integer(id - 1),
+                    ValueRef::Integer(2),
+                ]);
+                for (c, v) in values.iter_mut().enumerate().take(32).skip(21) {
+                    *v = ValueRef::Real(d * c as f64);
+                }
                 let (stmt, at) = if k < full {
-                    (&mut stmt_many, (k % CHUNK) * RECORD_COLUMNS)
+                    (&mut stmt_many, (k % CHUNK) * columns.len())
                 } else {
                     (&mut stmt_one, 0)
                 };
-                let t = |c: usize| at + c;
                 let bound = (|| -> rusqlite::Result<()> {
-                    stmt.raw_bind_parameter(t(1), id)?;
-                    stmt.raw_bind_parameter(t(2), field(0))?;
-                    stmt.raw_bind_parameter(t(3), 1)?;
-                    stmt.raw_bind_parameter(t(4), "current")?;
-                    stmt.raw_bind_parameter(t(5), series_id)?;
-                    stmt.raw_bind_parameter(t(6), x)?;
-                    stmt.raw_bind_parameter(t(7), y)?;
-                    stmt.raw_bind_parameter(t(8), 0)?;
-                    stmt.raw_bind_parameter(t(9), 1)?;
-                    stmt.raw_bind_parameter(t(10), x)?;
-                    stmt.raw_bind_parameter(t(11), y)?;
-                    stmt.raw_bind_parameter(t(12), field(4))?;
-                    stmt.raw_bind_parameter(t(13), field(4))?;
-                    stmt.raw_bind_parameter(t(14), field(5))?;
-                    stmt.raw_bind_parameter(t(15), Option::<&str>::None)?;
-                    stmt.raw_bind_parameter(t(16), Option::<&str>::None)?;
-                    stmt.raw_bind_parameter(t(17), file_no as i64 + 1)?;
-                    stmt.raw_bind_parameter(t(18), line_no as i64 + 1)?;
-                    stmt.raw_bind_parameter(t(19), line)?;
-                    stmt.raw_bind_parameter(t(20), id - 1)?;
-                    stmt.raw_bind_parameter(t(21), 2)?;
-                    for c in 22..=32 {
-                        stmt.raw_bind_parameter(t(c), d * c as f64)?;
+                    for (c, &f) in at_full.iter().enumerate() {
+                        stmt.raw_bind_parameter(at + c + 1, ToSqlOutput::Borrowed(values[f]))?;
                     }
-                    stmt.raw_bind_parameter(t(33), Option::<&str>::None)?;
                     if k >= full || k % CHUNK == CHUNK - 1 {
                         stmt.raw_execute()?;
                     }
@@ -169,5 +259,14 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
         }
         tx.commit().unwrap_or_else(|e| panic!("{e}"));
     }
-    print_rate("records_shape", files.len(), id as u64, start);
+    print_rate(
+        if lean {
+            "records_lean"
+        } else {
+            "records_shape"
+        },
+        files.len(),
+        id as u64,
+        start,
+    );
 }

@@ -3,7 +3,8 @@
 # ../shared/bench/make_workload.py (an invented scenario):
 #   1. a bare SQLite insert of the same rows (benches/bare_insert.rs), and
 #      the same rows in the shape of slopewarden's records table (its
-#      `records` mode: what the row shape alone costs),
+#      `records` mode: what the row shape alone costs) and in a narrower
+#      hypothetical shape (its `lean` mode),
 #   2. `slopewarden ingest` over the same inbox (parse, validate, refit,
 #      diagnostics, audit, commit per file), with its peak RSS.
 # Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
@@ -38,6 +39,12 @@ shape_out=$("$bare_bin" "$work/w/inbox" "$work/shape.sqlite3" records)
 echo "$shape_out"
 shape_s=$(echo "$shape_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
 rm -f "$work"/shape.sqlite3*
+# A hypothetical narrow record row (no diagnostics, no raw line, the same
+# unique index): the floor any narrower schema could reach.
+lean_out=$("$bare_bin" "$work/w/inbox" "$work/lean.sqlite3" lean)
+echo "$lean_out"
+lean_s=$(echo "$lean_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+rm -f "$work"/lean.sqlite3*
 
 cat > "$work/sw.toml" <<TOML
 [paths]
@@ -53,11 +60,12 @@ sw_s=$(grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: 
 rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
-python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" <<'PY'
+python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" "$lean_s" <<'PY'
 import sys
 records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
-shape = float(sys.argv[5])
+shape, lean = float(sys.argv[5]), float(sys.argv[6])
 print(f"slopewarden ingest: {records} records in {sw:.2f} s = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
 print(f"bare SQLite insert: {bare:.2f} s; ratio slopewarden / bare = {sw/bare:.2f}")
 print(f"records-shaped insert (nothing computed): {shape:.2f} s = {shape/bare:.2f} x bare")
+print(f"narrow record rows (no diagnostics, no raw line; nothing computed): {lean:.2f} s = {lean/bare:.2f} x bare")
 PY

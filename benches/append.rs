@@ -56,8 +56,32 @@ fn main() {
             .unwrap_or_else(|e| panic!("{e}"));
         times.push(t0.elapsed());
     }
+    // The same right after a restart: a fresh cache, so the series' state
+    // comes from the store.
+    let mut cold: Vec<Duration> = Vec::new();
+    for k in 0..11 {
+        let file = write_file(
+            &config.inbox,
+            &format!("restart-{k:03}.csv"),
+            200_000 + k * 100,
+            100,
+        );
+        let mut fresh = SeriesCache::new();
+        let t0 = Instant::now();
+        process_file(&config, &mut store, &mut fresh, &file, SystemTime::now())
+            .unwrap_or_else(|e| panic!("{e}"));
+        cold.push(t0.elapsed());
+    }
+    cold.sort();
     times.sort();
     let ms = |d: Duration| d.as_secs_f64() * 1e3;
+    println!(
+        "the same, first file after a restart (empty cache): median {:.2} ms (min {:.2}, max {:.2}) over {} files",
+        ms(cold[cold.len() / 2]),
+        ms(cold[0]),
+        ms(cold[cold.len() - 1]),
+        cold.len()
+    );
     println!(
         "100-record file onto a 100,000-point series: median {:.2} ms (min {:.2}, p90 {:.2}, max {:.2}) over {} files",
         ms(times[times.len() / 2]),

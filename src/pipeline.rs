@@ -859,6 +859,11 @@ fn store_file(
                     _ if window.is_some() => None,
                     Some(l) => l,
                     None if settings.transform != Transform::None => None,
+                    // Kept with the series' heads: no walk through its
+                    // points (a long series took 0.1 s a restart).
+                    None if row.log_screen.is_some() => {
+                        row.log_screen.flatten().map(SeriesState::from_moments)
+                    }
                     None => {
                         let points = if row.moments.n() == 0 {
                             Vec::new()
@@ -1275,6 +1280,12 @@ fn store_file(
             },
         )?;
         t.row.latest_fit = Some(fit_row);
+        // The ln(y) screen resumes from here after a restart (kept only
+        // where the screen runs: untransformed series without a window).
+        t.row.log_screen = match (t.window, t.settings.transform) {
+            (None, Transform::None) => Some(t.log.map(|l| *l.moments())),
+            _ => None,
+        };
         tx.save_series_heads(&t.row)?;
         refit_list.push_str(&refit_detail(&t.row, fit.as_ref().ok()));
         refit_list.push('\n');

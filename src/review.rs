@@ -427,6 +427,9 @@ fn refit(
         Trigger::Window(id) => tx.cite_window(fit_row, id)?,
     }
     s.latest_fit = Some(fit_row);
+    // The ln(y) screen is rebuilt from the points when the series is next
+    // ingested (a verdict or a window changes which points it holds).
+    s.log_screen = None;
     tx.save_series_heads(s)?;
     Ok((before, fit.ok()))
 }

@@ -13,6 +13,8 @@
 //!    stored settings, replaying the series in version order: a file adds
 //!    its records' points, a verdict refits from scratch on the remaining
 //!    points, exactly as ingest and `review` do.
+//! 6. A series' kept ln(y) screen state (what ingest resumes the second
+//!    outlier screen from) is what its current points give.
 //!
 //! Any failure is a [`Problem`] that names the table, the row and what does
 //! not match.
@@ -23,7 +25,9 @@ use crate::config::NonDetectPolicy;
 use crate::stats::robust::theil_sen;
 use crate::stats::{LineFit, Moments, MomentsParts, TQuantiles, Transform};
 use crate::store::seal::{SealKind, seals_in};
-use crate::store::{SeriesReplay, Store, StoreError, StoredPoint, VerdictRow, verify_chain};
+use crate::store::{
+    SeriesReplay, Store, StoreError, StoredPoint, VerdictRow, decode_log_screen, verify_chain,
+};
 use crate::window::Window;
 
 /// Relative agreement required between a stored and a recomputed figure.
@@ -362,6 +366,20 @@ fn replay(
         let points = in_window(&set);
         compare_fit(f, &moments, &points, quantiles, rep, &here);
     }
+    if let Some(Err(kind)) = &s.log_screen {
+        rep.problem(
+            format!("series {}", s.key),
+            format!("its kept ln(y) screen state is a {kind} value, not a blob"),
+        );
+    }
+    if let Some(Ok(bytes)) = &s.log_screen {
+        let last = s.fits.last();
+        let screened = last.is_some_and(|f| {
+            Transform::from_name(&f.transform) == Some(Transform::None) && f.window.is_none()
+        });
+        let points: Vec<(f64, f64)> = set.values().copied().collect();
+        check_log_screen(bytes, screened, &points, &format!("series {}", s.key), rep);
+    }
     if s.latest_fit != prev {
         rep.problem(
             format!("series {}", s.key),
@@ -430,6 +448,79 @@ fn expected_point(r: &StoredPoint, t: Transform, p: NonDetectPolicy) -> Option<(
         return Some((r.x, y));
     }
     t.apply(0, r.x, y).ok()
+}
+
+/// Checks a kept ln(y) screen state against the one the series' current
+/// points give (oldest row first, as the daemon builds it).
+fn check_log_screen(
+    bytes: &[u8],
+    screened: bool,
+    points: &[(f64, f64)],
+    here: &str,
+    rep: &mut VerifyReport,
+) {
+    let Some(kept) = decode_log_screen(Some(bytes)) else {
+        rep.problem(
+            here,
+            format!(
+                "its kept ln(y) screen state cannot be read ({} bytes)",
+                bytes.len()
+            ),
+        );
+        return;
+    };
+    if !screened {
+        rep.problem(
+            here,
+            "a ln(y) screen state is kept, but its current fit is transformed or windowed",
+        );
+        return;
+    }
+    let mut expected = Some(Moments::new());
+    for &(x, y) in points {
+        match expected.as_mut() {
+            Some(m) if y > 0.0 => m.add(x, y.ln()),
+            _ => expected = None,
+        }
+    }
+    match (kept, expected) {
+        (None, None) => {}
+        (Some(_), None) => rep.problem(
+            here,
+            "a ln(y) screen state is kept, but some of its values are at or below zero",
+        ),
+        (None, Some(_)) => rep.problem(
+            here,
+            "its ln(y) screen is kept as off, but all of its values are above zero",
+        ),
+        (Some(k), Some(e)) => {
+            let (k, e) = (k.to_parts(), e.to_parts());
+            let pairs = [
+                ("mean x", k.origin + k.mean_x, e.origin + e.mean_x),
+                ("mean ln y", k.mean_y, e.mean_y),
+                ("Sxx", k.sxx, e.sxx),
+                ("Sxy", k.sxy, e.sxy),
+                ("Syy", k.syy, e.syy),
+                ("SSE", k.sse, e.sse),
+            ];
+            if k.n != e.n {
+                rep.problem(
+                    here,
+                    format!(
+                        "its kept ln(y) screen state has n = {}, its records give {}",
+                        k.n, e.n
+                    ),
+                );
+            } else if let Some((name, a, b)) = pairs.iter().find(|(_, a, b)| !close(*a, *b)) {
+                rep.problem(
+                    here,
+                    format!(
+                        "its kept ln(y) screen state has {name} = {a:e}, its records give {b:e}"
+                    ),
+                );
+            }
+        }
+    }
 }
 
 fn close(a: f64, b: f64) -> bool {

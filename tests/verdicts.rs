@@ -707,3 +707,39 @@ fn the_settings_in_force_are_recorded_in_the_audit_trail_when_they_change() {
     assert!(entries[1].contains("(changed)"), "{entries:?}");
     assert!(site.ok(&["verify"]).contains("intact"));
 }
+
+/// The ln(y) screen state kept with a series' heads (so that ingest resumes
+/// it after a restart without walking the points) is checked by verify
+/// against the stored records; NULL (not kept) is legal.
+#[test]
+fn a_kept_ln_y_screen_state_that_does_not_match_the_records_is_caught_by_verify() {
+    let (site, _finding) = site_with_typo();
+    let (code, out) = tampered(&site, "SELECT 1;");
+    assert_eq!(code, Some(0), "{out}");
+    let (code, out) = tampered(&site, "UPDATE series SET log_screen = NULL;");
+    assert_eq!(code, Some(0), "not kept is legal: {out}");
+    // Bytes 33..40 (1-based) are Sxx on the ln scale; 1..8 are n.
+    for (sql, says) in [
+        (
+            "UPDATE series SET log_screen = substr(log_screen, 1, 63);",
+            "cannot be read (63 bytes)",
+        ),
+        ("UPDATE series SET log_screen = x'';", "kept as off"),
+        (
+            "UPDATE series SET log_screen = 'off';",
+            "a text value, not a blob",
+        ),
+        (
+            "UPDATE series SET log_screen = CAST(x'2000000000000000' || substr(log_screen, 9) AS BLOB);",
+            "n = 32, its records give 37",
+        ),
+        (
+            "UPDATE series SET log_screen = CAST(substr(log_screen, 1, 32) || x'000000000000F03F' || substr(log_screen, 41) AS BLOB);",
+            "Sxx = 1e0",
+        ),
+    ] {
+        let (code, out) = tampered(&site, sql);
+        assert_eq!(code, Some(5), "{sql}: {out}");
+        assert!(out.contains("series") && out.contains(says), "{sql}: {out}");
+    }
+}

@@ -75,6 +75,9 @@ pub struct SeriesReplay {
     pub fits: Vec<StoredFit>,
     /// Records, by row id.
     pub records: Vec<StoredPoint>,
+    /// The kept ln(y) screen state as stored (`series.log_screen`): its
+    /// bytes, or the SQLite type it has instead of a blob.
+    pub log_screen: Option<std::result::Result<Vec<u8>, &'static str>>,
 }
 
 impl Store {
@@ -233,12 +236,28 @@ impl Store {
     /// Everything the replay of one series needs.
     pub fn series_replay(&self, series: i64) -> Result<SeriesReplay> {
         let wrap = self.wrap();
-        let (key, latest_fit, latest_record): (String, Option<i64>, Option<i64>) = self
+        type Heads = (
+            String,
+            Option<i64>,
+            Option<i64>,
+            Option<std::result::Result<Vec<u8>, &'static str>>,
+        );
+        let (key, latest_fit, latest_record, log_screen): Heads = self
             .conn
             .query_row(
-                "SELECT key, latest_fit, latest_record FROM series WHERE id = ?1",
+                "SELECT key, latest_fit, latest_record, log_screen FROM series WHERE id = ?1",
                 [series],
-                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+                |r| {
+                    use rusqlite::types::ValueRef;
+                    let kept = match r.get_ref(3)? {
+                        ValueRef::Null => None,
+                        ValueRef::Blob(b) => Some(Ok(b.to_vec())),
+                        ValueRef::Text(_) => Some(Err("text")),
+                        ValueRef::Integer(_) => Some(Err("integer")),
+                        ValueRef::Real(_) => Some(Err("real")),
+                    };
+                    Ok((r.get(0)?, r.get(1)?, r.get(2)?, kept))
+                },
             )
             .map_err(&wrap)?;
         let mut stmt = self
@@ -332,6 +351,7 @@ impl Store {
             latest_fit,
             fits,
             records,
+            log_screen,
         })
     }
 }

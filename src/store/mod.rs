@@ -434,6 +434,10 @@ const MIGRATIONS: &[(&str, &str)] = &[
         "0003_verdicts",
         include_str!("../../migrations/0003_verdicts.sql"),
     ),
+    (
+        "0004_log_screen",
+        include_str!("../../migrations/0004_log_screen.sql"),
+    ),
 ];
 
 /// Why the store failed.
@@ -554,6 +558,56 @@ pub struct SeriesRow {
     /// The analysis window of the current fit, in its stored text form
     /// (None: all points).
     pub window: Option<String>,
+    /// The ln(y) screen's moments after the current fit: `Some(Some(m))`
+    /// kept, `Some(None)` the screen is off (a y at or below zero), `None`
+    /// not kept (rebuilt from the points when needed).
+    pub log_screen: Option<Option<Moments>>,
+}
+
+/// Bytes of a kept ln(y) screen state: n and seven f64.
+const LOG_SCREEN_BYTES: usize = 64;
+
+/// The `series.log_screen` value of a kept (or off) ln(y) screen state.
+pub fn encode_log_screen(state: Option<Option<Moments>>) -> Option<Vec<u8>> {
+    state.map(|m| match m {
+        None => Vec::new(),
+        Some(m) => {
+            let p = m.to_parts();
+            let mut b = Vec::with_capacity(LOG_SCREEN_BYTES);
+            b.extend_from_slice(&p.n.to_le_bytes());
+            for v in [p.origin, p.mean_x, p.mean_y, p.sxx, p.sxy, p.syy, p.sse] {
+                b.extend_from_slice(&v.to_le_bytes());
+            }
+            b
+        }
+    })
+}
+
+/// Reads a `series.log_screen` value; anything but an empty blob or 64
+/// bytes is taken as not kept (and reported by `verify`).
+pub fn decode_log_screen(bytes: Option<&[u8]>) -> Option<Option<Moments>> {
+    match bytes? {
+        [] => Some(None),
+        b if b.len() == LOG_SCREEN_BYTES => {
+            let word = |i: usize| {
+                let mut w = [0u8; 8];
+                w.copy_from_slice(&b[i * 8..i * 8 + 8]);
+                w
+            };
+            let f = |i: usize| f64::from_le_bytes(word(i));
+            Some(Some(Moments::from_parts(MomentsParts {
+                n: u64::from_le_bytes(word(0)),
+                origin: f(1),
+                mean_x: f(2),
+                mean_y: f(3),
+                sxx: f(4),
+                sxy: f(5),
+                syy: f(6),
+                sse: f(7),
+            })))
+        }
+        _ => None,
+    }
 }
 
 /// A stored record's current version, for duplicate and conflict checks.
@@ -1250,6 +1304,7 @@ impl Tx<'_> {
             x_span: None,
             significant: false,
             window: None,
+            log_screen: None,
         })
     }
 
@@ -1583,8 +1638,17 @@ impl Tx<'_> {
     /// Points the series at its newest fit version and current record.
     pub fn save_series_heads(&self, row: &SeriesRow) -> Result<()> {
         self.tx
-            .prepare_cached("UPDATE series SET latest_fit = ?2, latest_record = ?3 WHERE id = ?1")
-            .and_then(|mut s| s.execute(params![row.id.0, row.latest_fit, row.latest_record]))
+            .prepare_cached(
+                "UPDATE series SET latest_fit = ?2, latest_record = ?3, log_screen = ?4 WHERE id = ?1",
+            )
+            .and_then(|mut s| {
+                s.execute(params![
+                    row.id.0,
+                    row.latest_fit,
+                    row.latest_record,
+                    encode_log_screen(row.log_screen)
+                ])
+            })
             .map_err(self.wrap())?;
         Ok(())
     }
@@ -1702,7 +1766,7 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
                 COALESCE(f.mean_x, 0), COALESCE(f.mean_y, 0), COALESCE(f.sxx, 0), COALESCE(f.sxy, 0),
                 COALESCE(f.syy, 0), COALESCE(f.sse, 0), COALESCE(f.version, 0), COALESCE(f.robust_n, 0),
                 f.created_at, COALESCE(f.records, 0), COALESCE(f.n_censored, 0), s.latest_fit, s.latest_record,
-                f.x_min, f.x_max, COALESCE(f.significant, 0), f.window
+                f.x_min, f.x_max, COALESCE(f.significant, 0), f.window, s.log_screen
          FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
          WHERE s.key = +?1",
     )?
@@ -1736,6 +1800,11 @@ fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow
             },
             significant: r.get(22)?,
             window: r.get(23)?,
+            // Anything but a blob is taken as not kept (`verify` names it).
+            log_screen: match r.get_ref(24)? {
+                rusqlite::types::ValueRef::Blob(b) => decode_log_screen(Some(b)),
+                _ => None,
+            },
         })
     })
     .optional()

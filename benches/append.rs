@@ -43,35 +43,33 @@ fn main() {
         process_file(&config, &mut store, &mut cache, &file, SystemTime::now())
             .unwrap_or_else(|e| panic!("{e}"));
     }
-    let mut times: Vec<Duration> = Vec::new();
-    for k in 0..41 {
-        let file = write_file(
-            &config.inbox,
-            &format!("new-{k:03}.csv"),
-            100_000 + k * 100,
-            100,
-        );
+    // One 100-record file, from being taken to done.
+    let timed = |store: &mut Store, cache: &mut SeriesCache, name: String, first: usize| {
+        let file = write_file(&config.inbox, &name, first, 100);
         let t0 = Instant::now();
-        process_file(&config, &mut store, &mut cache, &file, SystemTime::now())
+        process_file(&config, store, cache, &file, SystemTime::now())
             .unwrap_or_else(|e| panic!("{e}"));
-        times.push(t0.elapsed());
-    }
+        t0.elapsed()
+    };
+    let mut times: Vec<Duration> = (0..41)
+        .map(|k| {
+            timed(
+                &mut store,
+                &mut cache,
+                format!("new-{k:03}.csv"),
+                100_000 + k * 100,
+            )
+        })
+        .collect();
     // The same right after a restart: a fresh cache, so the series' state
     // comes from the store.
-    let mut cold: Vec<Duration> = Vec::new();
-    for k in 0..11 {
-        let file = write_file(
-            &config.inbox,
-            &format!("restart-{k:03}.csv"),
-            200_000 + k * 100,
-            100,
-        );
-        let mut fresh = SeriesCache::new();
-        let t0 = Instant::now();
-        process_file(&config, &mut store, &mut fresh, &file, SystemTime::now())
-            .unwrap_or_else(|e| panic!("{e}"));
-        cold.push(t0.elapsed());
-    }
+    let mut cold: Vec<Duration> = (0..11)
+        .map(|k| {
+            let mut fresh = SeriesCache::new();
+            let name = format!("restart-{k:03}.csv");
+            timed(&mut store, &mut fresh, name, 200_000 + k * 100)
+        })
+        .collect();
     cold.sort();
     times.sort();
     let ms = |d: Duration| d.as_secs_f64() * 1e3;

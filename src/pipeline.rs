@@ -16,6 +16,7 @@
 /// ingest. foldhash is seeded per process like the default.
 type HashMap<K, V> = std::collections::HashMap<K, V, foldhash::fast::RandomState>;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{channel, sync_channel};
 use std::time::SystemTime;
@@ -36,8 +37,8 @@ use crate::stats::robust::{mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
 use crate::store::seal::SealScope;
 use crate::store::{
-    AuditKind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch, RecordPlacement,
-    RobustRow, SeriesRow, Store, StoreError,
+    AuditKind, Behind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch,
+    RecordPlacement, RobustRow, SeriesHeads, SeriesRow, Store, StoreError, write_behind,
 };
 use crate::window::Window;
 
@@ -771,20 +772,41 @@ fn store_file(
     at: &str,
     now_unix: i64,
 ) -> Result<Result<(FileCounts, usize), records::FileError>, PipelineError> {
+    let tx = store.begin()?;
+    // The rows are written on a second thread while this one computes the
+    // next ones; every read waits for the writes queued before it.
+    write_behind(tx, |b| {
+        store_file_behind(b, config, cache, meta, rows, at, now_unix)
+    })
+}
+
+/// [`store_file`] inside the file's transaction: `b.tx()` for the
+/// transaction itself (after the writes queued so far), `b.later` for
+/// writes nothing below reads back before the commit.
+#[allow(clippy::too_many_arguments)]
+fn store_file_behind(
+    b: &mut Behind<'_>,
+    config: &Config,
+    cache: &mut SeriesCache,
+    meta: &FileMeta<'_>,
+    rows: &mut FileRows<'_>,
+    at: &str,
+    now_unix: i64,
+) -> Result<Result<(FileCounts, usize), records::FileError>, PipelineError> {
     let FileMeta {
         name,
         sha,
         size,
         feed,
     } = *meta;
-    let tx = store.begin()?;
     // Checked inside the write transaction: no verdict can slip in between.
-    let revision = tx.revision()?;
+    let revision = b.tx()?.revision()?;
     if cache.revision != Some(revision) {
         cache.clear();
         cache.revision = Some(revision);
     }
-    let file_id = tx.insert_file(&NewFile {
+    let ids = b.tx()?.ids();
+    let file_id = b.tx()?.insert_file(&NewFile {
         name,
         sha256: sha,
         size,
@@ -798,20 +820,29 @@ fn store_file(
     let mut flagged: Vec<Flagged> = Vec::new();
     let mut plain: Vec<PlainFinding> = Vec::new();
     loop {
-        let parsed = match (rows.next)() {
+        let mut parsed = match (rows.next)() {
             Ok(Some(chunk)) => chunk,
             Ok(None) => break,
             Err(e) => return Ok(Err(e)),
         };
         counts.bad += parsed.errors.len() as u64;
-        for e in &parsed.errors {
-            tx.insert_bad_row(file_id, e)?;
+        if !parsed.errors.is_empty() {
+            let errors = parsed.errors.clone();
+            b.later(move |tx| {
+                errors
+                    .iter()
+                    .try_for_each(|e| tx.insert_bad_row(file_id, e))
+            });
         }
         // Ids stored by earlier files: those records take the slow path (same
         // record again, or a conflict); all others are written in batches.
-        let stored = tx.stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
-        let mut batch = RecordBatch::new();
-        for record in &parsed.records {
+        let stored = b
+            .tx()?
+            .stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
+        // Shared with the writing thread, which writes them in batches.
+        let records = Arc::new(std::mem::take(&mut parsed.records));
+        let mut batch = RecordBatch::new(Arc::clone(&records));
+        for (index, record) in records.iter().enumerate() {
             let key = record.series.as_str();
             if !touched.contains_key(key) {
                 let settings = config.series_settings(&record.series);
@@ -819,9 +850,9 @@ fn store_file(
                 let cached = cache.rows.remove(key);
                 let row = match cached {
                     Some(row) => row,
-                    None => match tx.series(key)? {
+                    None => match b.tx()?.series(key)? {
                         Some(row) => row,
-                        None => tx.create_series(
+                        None => b.tx()?.create_series(
                             key,
                             settings.unit.as_deref(),
                             settings.transform.name(),
@@ -833,7 +864,7 @@ fn store_file(
                 let window = match cache.windows.get(key) {
                     Some(w) => *w,
                     None => {
-                        let w = match tx.window_override(row.id)? {
+                        let w = match b.tx()?.window_override(row.id)? {
                             Some(text) if text == "all" => None,
                             // Validated when it was stored.
                             Some(text) => Window::parse(&text).ok(),
@@ -846,12 +877,12 @@ fn store_file(
                 let transform = settings.transform;
                 let window = window.map(|w| (w, w.on_fit_scale(transform)));
                 let window_points = match window {
-                    Some((_, w)) => w.select(&tx.fit_points(&row)?, |p| p.0).into(),
+                    Some((_, w)) => w.select(&b.tx()?.fit_points(&row)?, |p| p.0).into(),
                     None => std::collections::VecDeque::new(),
                 };
                 let awaiting = match cache.awaiting.remove(key) {
                     Some(a) => a,
-                    None => tx.awaiting_review(row.id)?,
+                    None => b.tx()?.awaiting_review(row.id)?,
                 };
                 let log = match cache.log.remove(key) {
                     // The ln(y) screen follows all points; a windowed fit goes
@@ -868,7 +899,7 @@ fn store_file(
                         let points = if row.moments.n() == 0 {
                             Vec::new()
                         } else {
-                            tx.fit_points(&row)?
+                            b.tx()?.fit_points(&row)?
                         };
                         log_state(&points)
                     }
@@ -907,7 +938,8 @@ fn store_file(
                 Err(reason) => {
                     // A value the fit cannot take (zero under a log): set the
                     // row aside like any refused row.
-                    tx.insert_bad_row(file_id, &refused(record, reason))?;
+                    let bad = refused(record, reason);
+                    b.later(move |tx| tx.insert_bad_row(file_id, &bad));
                     counts.bad += 1;
                     continue;
                 }
@@ -939,7 +971,8 @@ fn store_file(
                         // Validated records are finite; a transform could still
                         // overflow. Set the row aside rather than guess.
                         let reason = format!("the value cannot enter the fit: {err}");
-                        tx.insert_bad_row(file_id, &refused(record, reason))?;
+                        let bad = refused(record, reason);
+                        b.later(move |tx| tx.insert_bad_row(file_id, &bad));
                         counts.bad += 1;
                         continue;
                     }
@@ -951,14 +984,18 @@ fn store_file(
                 arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
             };
             if !stored.contains(record.record_id.as_str()) {
-                let row_id = tx.queue_current(
-                    &mut batch,
-                    record,
+                let row_id = batch.queue_current(
+                    &ids,
+                    index,
                     t.row.id,
                     file_id,
                     placement,
                     t.row.latest_record,
-                )?;
+                );
+                if batch.is_full() {
+                    let mut full = batch.take();
+                    b.later(move |tx| tx.flush_records(&mut full));
+                }
                 t.row.latest_record = Some(row_id);
                 counts.new += 1;
                 t.row.records += 1;
@@ -1103,7 +1140,8 @@ fn store_file(
                 }
                 continue;
             }
-            let Some((stored_record, max_version)) = tx.current_record(&record.record_id)? else {
+            let Some((stored_record, max_version)) = b.tx()?.current_record(&record.record_id)?
+            else {
                 unreachable!("BUG: stored_ids found a version 1, so a current version exists");
             };
             let same = stored_record.series == key
@@ -1112,14 +1150,15 @@ fn store_file(
                 && stored_record.censored == record.y.is_censored();
             if same {
                 counts.same += 1;
-            } else if !tx.has_proposal(
+            } else if !b.tx()?.has_proposal(
                 &record.record_id,
                 record.x,
                 record.y.number(),
                 record.y.is_censored(),
             )? {
                 counts.conflict += 1;
-                tx.insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+                b.tx()?
+                    .insert_proposed(record, t.row.id, file_id, max_version + 1)?;
                 plain.push(PlainFinding {
                 kind: "conflict",
                 series: key.to_string(),
@@ -1135,7 +1174,7 @@ fn store_file(
                     max_version + 1
                 ),
             });
-                tx.append_audit(
+                b.tx()?.append_audit(
                 at,
                 AuditKind::Conflict,
                 &record.record_id,
@@ -1156,8 +1195,13 @@ fn store_file(
                 counts.same += 1;
             }
         }
-        tx.flush_records(&mut batch)?;
-        drop(batch);
+        if !batch.is_empty() {
+            b.later(move |tx| tx.flush_records(&mut batch));
+        } else {
+            drop(batch);
+        }
+        // The records go when the writing thread is done with them.
+        drop(records);
         *rows.spent = Some(parsed);
     }
     // Robust slopes first: gather the series due for one, compute them on
@@ -1191,7 +1235,7 @@ fn store_file(
             std::collections::hash_map::Entry::Vacant(e) => {
                 // The points stored before this file, then this file's
                 // (taken, not copied: a large file's are megabytes).
-                let stored = tx.fit_points_with_rows(t.head_before)?;
+                let stored = b.tx()?.fit_points_with_rows(t.head_before)?;
                 let mut points = std::mem::take(&mut t.new_points);
                 if !stored.is_empty() {
                     points.splice(0..0, stored.into_iter().map(|(_, x, y)| (x, y)));
@@ -1218,6 +1262,7 @@ fn store_file(
     let mut refits = 0;
     let mut refit_list = String::new();
     let mut fits = FitBatch::new();
+    let mut heads: Vec<SeriesHeads> = Vec::with_capacity(order.len());
     let mut trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)> = Vec::new();
     for key in &order {
         let Some(t) = touched.get_mut(key) else {
@@ -1265,8 +1310,8 @@ fn store_file(
             )),
             _ => None,
         };
-        let fit_row = tx.queue_fit(
-            &mut fits,
+        let fit_row = fits.queue(
+            &ids,
             &NewFit {
                 state: &t.row,
                 trigger_file: Some(file_id),
@@ -1278,7 +1323,11 @@ fn store_file(
                 robust,
                 note,
             },
-        )?;
+        );
+        if fits.is_full() {
+            let mut full = fits.take();
+            b.later(move |tx| tx.flush_fits(&mut full));
+        }
         t.row.latest_fit = Some(fit_row);
         // The ln(y) screen resumes from here after a restart (kept only
         // where the screen runs: untransformed series without a window).
@@ -1286,7 +1335,7 @@ fn store_file(
             (None, Transform::None) => Some(t.log.map(|l| *l.moments())),
             _ => None,
         };
-        tx.save_series_heads(&t.row)?;
+        heads.push(SeriesHeads::of(&t.row));
         refit_list.push_str(&refit_detail(&t.row, fit.as_ref().ok()));
         refit_list.push('\n');
     }
@@ -1295,9 +1344,14 @@ fn store_file(
     } else {
         FileOutcome::Ingested
     };
-    tx.flush_fits(&mut fits)?;
+    if !fits.is_empty() {
+        b.later(move |tx| tx.flush_fits(&mut fits));
+    }
+    if !heads.is_empty() {
+        b.later(move |tx| heads.iter().try_for_each(|h| tx.save_heads(h)));
+    }
     let findings = raise_findings(
-        &tx,
+        b.tx()?,
         config,
         cache,
         rows.survey,
@@ -1309,6 +1363,7 @@ fn store_file(
         at,
         now_unix,
     )?;
+    let tx = b.finish()?;
     tx.finish_file(file_id, outcome, counts, None)?;
     let seal = tx.seal(SealScope::File(file_id.0))?;
     tx.append_audit(

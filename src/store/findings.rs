@@ -571,7 +571,7 @@ mod tests {
             // Ignored: the same message to the same recipient.
             tx.queue_message(&with_chart).unwrap();
             let scope = SealScope::Finding(id);
-            let read_back = seal::compute(&tx.tx, scope, tx.first).unwrap();
+            let read_back = seal::compute(tx.tx, scope, tx.first).unwrap();
             assert_eq!(tx.seal(scope).unwrap(), seal::seal_text(scope, &read_back));
             found.push((id, read_back));
         }

@@ -22,6 +22,7 @@
 //! busy timeout rides out checkpoints.
 
 mod audit;
+mod behind;
 mod check;
 mod checkpoint;
 mod findings;
@@ -30,19 +31,20 @@ mod report;
 pub mod seal;
 mod verdicts;
 
-use std::cell::Cell;
 use std::collections::HashSet;
 use std::path::{Path, PathBuf};
-use std::sync::OnceLock;
+use std::sync::atomic::{AtomicI64, Ordering};
+use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
-use rusqlite::{Connection, OptionalExtension, Transaction, params};
+use rusqlite::{Connection, OptionalExtension, params};
 use thiserror::Error;
 
 use crate::records::{Record, RecordError};
 use crate::stats::{Arrival, LineFit, Moments, MomentsParts};
 
 pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
+pub use behind::{Behind, write_behind};
 pub use check::{SeriesReplay, StoredFit, StoredPoint};
 pub use checkpoint::Checkpointer;
 pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
@@ -109,20 +111,47 @@ impl DiagnosticsRow {
     }
 }
 
-/// A record row waiting in a [`RecordBatch`].
+/// A record row waiting in a [`RecordBatch`]: the record is its batch's
+/// `source[index]`.
 #[derive(Debug)]
-struct PendingRecord<'r> {
+struct PendingRecord {
     id: i64,
-    record: &'r Record,
+    index: usize,
     version: i64,
     status: &'static str,
     series: i64,
     file: i64,
     fit_point: Option<(f64, f64)>,
+    /// The record's arrival in the fit it joined (version), from which its
+    /// diagnostics are worked out when the row is written.
+    arrival: Option<(Arrival, i64)>,
+    /// Set when the row is written (or by a test, to write odd values).
     diagnostics: Option<DiagnosticsRow>,
     prev_in_series: Option<i64>,
-    /// The record's attributes as the JSON text stored (None: none).
+    /// The record's attributes as the JSON text stored (None: none), set
+    /// when the row is written.
     attributes: Option<String>,
+}
+
+/// The row ids a writer hands out for records and fits, shared by a
+/// transaction and whoever queues its rows: the ids are taken in the order
+/// rows are queued, whichever thread writes them.
+#[derive(Debug, Default)]
+pub struct IdCounters {
+    records: AtomicI64,
+    fits: AtomicI64,
+}
+
+impl IdCounters {
+    /// The next record row id, taken.
+    pub fn record(&self) -> i64 {
+        self.records.fetch_add(1, Ordering::Relaxed)
+    }
+
+    /// The next fit row id, taken.
+    pub fn fit(&self) -> i64 {
+        self.fits.fetch_add(1, Ordering::Relaxed)
+    }
 }
 
 /// A record's attributes as the JSON object stored in `attributes`.
@@ -138,18 +167,21 @@ fn attributes_json(r: &Record) -> Option<String> {
     Some(serde_json::Value::Object(map).to_string())
 }
 
-/// Records queued for multi-row inserts within one transaction. Dropping
-/// a batch with rows still queued loses them, so the file's transaction
-/// flushes it before commit ([`Tx::flush_records`]).
-#[derive(Debug, Default)]
-pub struct RecordBatch<'r> {
-    rows: Vec<PendingRecord<'r>>,
+/// Records queued for multi-row inserts within one transaction, taken
+/// from `source` (shared, so that a batch can be written on another
+/// thread). Dropping a batch with rows still queued loses them, so the
+/// file's transaction flushes it before commit ([`Tx::flush_records`]).
+#[derive(Debug)]
+pub struct RecordBatch {
+    source: Arc<Vec<Record>>,
+    rows: Vec<PendingRecord>,
 }
 
-impl RecordBatch<'_> {
-    /// An empty batch.
-    pub fn new() -> Self {
+impl RecordBatch {
+    /// An empty batch of records from `source`.
+    pub fn new(source: Arc<Vec<Record>>) -> Self {
         RecordBatch {
+            source,
             rows: Vec::with_capacity(RECORD_CHUNK),
         }
     }
@@ -162,6 +194,53 @@ impl RecordBatch<'_> {
     /// Whether nothing is queued.
     pub fn is_empty(&self) -> bool {
         self.rows.is_empty()
+    }
+
+    /// Whether a multi-row statement's worth is queued (time to write).
+    pub fn is_full(&self) -> bool {
+        self.rows.len() >= RECORD_CHUNK
+    }
+
+    /// The rows queued so far, leaving an empty batch of the same source.
+    pub fn take(&mut self) -> RecordBatch {
+        RecordBatch {
+            source: Arc::clone(&self.source),
+            rows: std::mem::replace(&mut self.rows, Vec::with_capacity(RECORD_CHUNK)),
+        }
+    }
+
+    /// Queues `source[index]` as version 1, the current version, of its id
+    /// (the caller has checked with [`Tx::stored_ids`] that the id is new),
+    /// and returns the row id it will have. Written by
+    /// [`Tx::flush_records`].
+    pub fn queue_current(
+        &mut self,
+        ids: &IdCounters,
+        index: usize,
+        series: SeriesRowId,
+        file: FileId,
+        placement: RecordPlacement<'_>,
+        prev_in_series: Option<i64>,
+    ) -> i64 {
+        debug_assert!(
+            index < self.source.len(),
+            "BUG: record {index} is not in the batch's source"
+        );
+        let id = ids.record();
+        self.rows.push(PendingRecord {
+            id,
+            index,
+            version: 1,
+            status: "current",
+            series: series.0,
+            file: file.0,
+            fit_point: placement.fit_point,
+            arrival: placement.arrival.map(|(a, joins, _)| (*a, joins)),
+            diagnostics: None,
+            prev_in_series,
+            attributes: None,
+        });
+        id
     }
 }
 
@@ -208,6 +287,55 @@ impl FitBatch {
     /// An empty batch.
     pub fn new() -> Self {
         FitBatch::default()
+    }
+
+    /// Rows still queued.
+    pub fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    /// Whether nothing is queued.
+    pub fn is_empty(&self) -> bool {
+        self.rows.is_empty()
+    }
+
+    /// Whether a multi-row statement's worth is queued (time to write).
+    pub fn is_full(&self) -> bool {
+        self.rows.len() >= FIT_CHUNK
+    }
+
+    /// The rows queued so far, leaving an empty batch.
+    pub fn take(&mut self) -> FitBatch {
+        std::mem::take(self)
+    }
+
+    /// Queues a fit-history row with an id from `ids` and returns the id;
+    /// written by [`Tx::flush_fits`].
+    pub fn queue(&mut self, ids: &IdCounters, f: &NewFit<'_>) -> i64 {
+        let id = ids.fit();
+        let st = f.state;
+        self.rows.push(PendingFit {
+            id,
+            series: st.id.0,
+            version: st.fit_version,
+            trigger_file: f.trigger_file.map(|id| id.0),
+            created_at: f.created_at.to_string(),
+            transform: f.transform.to_string(),
+            non_detects: f.non_detects.to_string(),
+            moments: st.moments.to_parts(),
+            censored: st.censored,
+            level: f.level,
+            fit: f.fit.copied(),
+            robust: f.robust,
+            note: f.note.clone(),
+            records: st.records,
+            robust_n: st.robust_n,
+            prev_fit: st.latest_fit,
+            x_span: st.x_span,
+            significant: st.significant,
+            window: st.window.clone(),
+        });
+        id
     }
 }
 
@@ -287,9 +415,8 @@ fn fit_columns(row: &PendingFit, put: &mut dyn FnMut(&dyn Column, Goes)) {
 /// Every column of a record row once, in [`INSERT_RECORD_HEAD`] order,
 /// which is [`seal::RECORD_COLUMNS`] order with `status` (left out of the
 /// seal: a verdict changes it) in its place.
-fn record_columns(row: &PendingRecord<'_>, put: &mut dyn FnMut(&dyn Column, Goes)) {
+fn record_columns(r: &Record, row: &PendingRecord, put: &mut dyn FnMut(&dyn Column, Goes)) {
     use Goes::{Both, Insert};
-    let r = row.record;
     let (fx, fy) = row.fit_point.unzip();
     let d = row.diagnostics.as_ref();
     put(&row.id, Both);
@@ -376,9 +503,11 @@ fn bind_fit(
 fn bind_record(
     stmt: &mut rusqlite::Statement<'_>,
     base: usize,
-    row: &PendingRecord<'_>,
+    (r, row): &(&Record, &PendingRecord),
 ) -> rusqlite::Result<()> {
-    bind_columns(stmt, base, RECORD_COLUMNS, |put| record_columns(row, put))
+    bind_columns(stmt, base, RECORD_COLUMNS, |put| {
+        record_columns(r, row, put)
+    })
 }
 
 /// A `source_files` row written by this transaction, as its columns stand
@@ -469,6 +598,10 @@ pub enum StoreError {
         /// The operating system's reason.
         source: std::io::Error,
     },
+    /// The thread writing a transaction's rows stopped (it panicked);
+    /// the transaction is rolled back.
+    #[error("the store's writing thread stopped; the file's transaction was rolled back")]
+    WriterLost,
 }
 
 type Result<T> = std::result::Result<T, StoreError>;
@@ -520,6 +653,28 @@ pub struct FileCounts {
     pub conflict: u64,
     /// Rows refused by validation.
     pub bad: u64,
+}
+
+/// What [`Tx::save_heads`] writes of a series: its newest fit version,
+/// its current record and its ln(y) screen state.
+#[derive(Debug, Clone)]
+pub struct SeriesHeads {
+    id: SeriesRowId,
+    latest_fit: Option<i64>,
+    latest_record: Option<i64>,
+    log_screen: Option<Option<Moments>>,
+}
+
+impl SeriesHeads {
+    /// The heads of `row`.
+    pub fn of(row: &SeriesRow) -> Self {
+        SeriesHeads {
+            id: row.id,
+            latest_fit: row.latest_fit,
+            latest_record: row.latest_record,
+            log_screen: row.log_screen,
+        }
+    }
 }
 
 /// A series and its running state.
@@ -885,38 +1040,33 @@ impl Store {
     /// audit entries commit together or not at all.
     pub fn begin(&mut self) -> Result<Tx<'_>> {
         let path = self.path.clone();
-        let tx = self
-            .conn
-            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+        self.conn
+            .execute_batch("BEGIN IMMEDIATE")
             .map_err(|source| StoreError::Sqlite {
                 path: path.clone(),
                 source,
             })?;
-        // The newest audit entry is read inside the write transaction, never
-        // kept between transactions: the sender thread and the `review`
-        // command append entries from their own connections.
-        let last = audit::last_hash(&tx).map_err(|source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        })?;
-        let pending = std::cell::RefCell::new(last);
-        let first = seal::FirstIds::next(&tx).map_err(|source| StoreError::Sqlite {
-            path: path.clone(),
-            source,
-        })?;
-        let next_record = Cell::new(first.records);
-        let next_fit = Cell::new(first.fits);
-        Ok(Tx {
-            tx,
+        // From here on, dropping the Tx rolls back.
+        let mut tx = Tx {
+            tx: &mut self.conn,
             path,
-            pending_audit: pending,
-            next_record,
-            next_fit,
-            first,
+            pending_audit: std::cell::RefCell::new(None),
+            ids: Arc::new(IdCounters::default()),
+            first: seal::FirstIds::ALL,
             written: std::cell::RefCell::new(Vec::new()),
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
-        })
+        };
+        // The newest audit entry is read inside the write transaction, never
+        // kept between transactions: the sender thread and the `review`
+        // command append entries from their own connections.
+        let last = audit::last_hash(tx.tx).map_err(tx.wrap())?;
+        *tx.pending_audit.get_mut() = last;
+        let first = seal::FirstIds::next(tx.tx).map_err(tx.wrap())?;
+        tx.ids.records.store(first.records, Ordering::Relaxed);
+        tx.ids.fits.store(first.fits, Ordering::Relaxed);
+        tx.first = first;
+        Ok(tx)
     }
 
     /// One audit entry in its own transaction (for events outside a file's
@@ -1163,15 +1313,17 @@ pub struct Totals {
 
 /// The transaction of one file.
 pub struct Tx<'a> {
-    tx: Transaction<'a>,
+    /// The connection, inside `BEGIN IMMEDIATE` until [`Tx::commit`] or
+    /// drop (which rolls back). Held by `&mut`, so that a transaction can
+    /// move to another thread while its rows are written ([`Behind`]).
+    tx: &'a mut Connection,
     path: PathBuf,
     pending_audit: std::cell::RefCell<Option<String>>,
     /// Row ids handed out for records and fits queued in this transaction.
     /// The writer holds the write lock from `begin`, so nobody else can
     /// take these ids, and queued rows can chain to each other before they
     /// are written.
-    next_record: Cell<i64>,
-    next_fit: Cell<i64>,
+    ids: Arc<IdCounters>,
     /// The first ids this transaction can have written (bounds the seals'
     /// queries to its own rows).
     first: seal::FirstIds,
@@ -1270,7 +1422,7 @@ impl Tx<'_> {
 
     /// The series row, if it exists.
     pub fn series(&self, key: &str) -> Result<Option<SeriesRow>> {
-        series_row(&self.tx, key).map_err(self.wrap())
+        series_row(self.tx, key).map_err(self.wrap())
     }
 
     /// Creates a series with its settings.
@@ -1341,48 +1493,48 @@ impl Tx<'_> {
         Ok(found)
     }
 
-    /// Queues `record` as version 1, the current version, of its id (the
-    /// caller has checked with [`Tx::stored_ids`] that the id is new), and
-    /// returns the row id it will have. Rows are written in multi-row
-    /// statements as the batch fills and by [`Tx::flush_records`].
-    pub fn queue_current<'r>(
+    /// The counters this transaction's record and fit row ids come from,
+    /// for queuing rows while the transaction is away being written to.
+    pub fn ids(&self) -> Arc<IdCounters> {
+        Arc::clone(&self.ids)
+    }
+
+    /// Queues `batch`'s `source[index]` with an id of this transaction
+    /// ([`RecordBatch::queue_current`]) and writes the batch when full.
+    pub fn queue_current(
         &self,
-        batch: &mut RecordBatch<'r>,
-        record: &'r Record,
+        batch: &mut RecordBatch,
+        index: usize,
         series: SeriesRowId,
         file: FileId,
         placement: RecordPlacement<'_>,
         prev_in_series: Option<i64>,
     ) -> Result<i64> {
-        let id = self.next_record.get();
-        self.next_record.set(id + 1);
-        batch.rows.push(PendingRecord {
-            id,
-            record,
-            version: 1,
-            status: "current",
-            series: series.0,
-            file: file.0,
-            fit_point: placement.fit_point,
-            diagnostics: placement
-                .arrival
-                .map(|(a, joins, _)| DiagnosticsRow::of(a, joins)),
-            prev_in_series,
-            attributes: attributes_json(record),
-        });
-        if batch.rows.len() >= RECORD_CHUNK {
+        let id = batch.queue_current(&self.ids, index, series, file, placement, prev_in_series);
+        if batch.is_full() {
             self.flush_records(batch)?;
         }
         Ok(id)
     }
 
     /// Writes every queued record.
-    pub fn flush_records(&self, batch: &mut RecordBatch<'_>) -> Result<()> {
+    pub fn flush_records(&self, batch: &mut RecordBatch) -> Result<()> {
+        let source = &batch.source;
+        // Worked out here, where the rows are written (possibly on the
+        // writing thread), not where they were queued.
+        for row in &mut batch.rows {
+            if row.diagnostics.is_none() {
+                row.diagnostics = row.arrival.map(|(a, joins)| DiagnosticsRow::of(&a, joins));
+            }
+            row.attributes = attributes_json(&source[row.index]);
+        }
         self.note_written(
             &batch.rows,
             |r| Some(r.file),
             |w, r| {
-                seal_columns(&mut w.records, r.id, |put| record_columns(r, put));
+                seal_columns(&mut w.records, r.id, |put| {
+                    record_columns(&source[r.index], r, put)
+                });
             },
         );
         static SQL: OnceLock<(String, String)> = OnceLock::new();
@@ -1392,13 +1544,10 @@ impl Tx<'_> {
                 multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, 1),
             )
         });
-        self.write_chunked(
-            batch.rows.drain(..),
-            sql,
-            RECORD_CHUNK,
-            RECORD_COLUMNS,
-            bind_record,
-        )
+        let rows = batch.rows.iter().map(|r| (&source[r.index], r));
+        let written = self.write_chunked(rows, sql, RECORD_CHUNK, RECORD_COLUMNS, bind_record);
+        batch.rows.clear();
+        written
     }
 
     /// Encodes, for the seal of their file, those of `rows` that belong to
@@ -1467,20 +1616,21 @@ impl Tx<'_> {
         file: FileId,
         version: i64,
     ) -> Result<i64> {
-        let id = self.next_record.get();
-        self.next_record.set(id + 1);
-        let mut batch = RecordBatch::new();
+        let id = self.ids.record();
+        // A rare path (a resubmission): one copy of the record is cheap.
+        let mut batch = RecordBatch::new(Arc::new(vec![record.clone()]));
         batch.rows.push(PendingRecord {
             id,
-            record,
+            index: 0,
             version,
             status: "proposed",
             series: series.0,
             file: file.0,
             fit_point: None,
+            arrival: None,
             diagnostics: None,
             prev_in_series: None,
-            attributes: attributes_json(record),
+            attributes: None,
         });
         self.flush_records(&mut batch)?;
         Ok(id)
@@ -1578,30 +1728,7 @@ impl Tx<'_> {
     /// are written in multi-row statements as the batch fills and by
     /// [`Tx::flush_fits`].
     pub fn queue_fit(&self, batch: &mut FitBatch, f: &NewFit<'_>) -> Result<i64> {
-        let id = self.next_fit.get();
-        self.next_fit.set(id + 1);
-        let st = f.state;
-        batch.rows.push(PendingFit {
-            id,
-            series: st.id.0,
-            version: st.fit_version,
-            trigger_file: f.trigger_file.map(|id| id.0),
-            created_at: f.created_at.to_string(),
-            transform: f.transform.to_string(),
-            non_detects: f.non_detects.to_string(),
-            moments: st.moments.to_parts(),
-            censored: st.censored,
-            level: f.level,
-            fit: f.fit.copied(),
-            robust: f.robust,
-            note: f.note.clone(),
-            records: st.records,
-            robust_n: st.robust_n,
-            prev_fit: st.latest_fit,
-            x_span: st.x_span,
-            significant: st.significant,
-            window: st.window.clone(),
-        });
+        let id = batch.queue(&self.ids, f);
         if batch.rows.len() >= FIT_CHUNK {
             self.flush_fits(batch)?;
         }
@@ -1631,12 +1758,17 @@ impl Tx<'_> {
     /// order, walking back from `row.latest_record` (which may be ahead of
     /// the stored head inside this transaction).
     pub fn fit_points(&self, row: &SeriesRow) -> Result<Vec<(f64, f64)>> {
-        let points = chain_points(&self.tx, row.latest_record).map_err(self.wrap())?;
+        let points = chain_points(self.tx, row.latest_record).map_err(self.wrap())?;
         Ok(points.into_iter().map(|(_, x, y)| (x, y)).collect())
     }
 
     /// Points the series at its newest fit version and current record.
     pub fn save_series_heads(&self, row: &SeriesRow) -> Result<()> {
+        self.save_heads(&SeriesHeads::of(row))
+    }
+
+    /// [`Tx::save_series_heads`] from the heads alone.
+    pub fn save_heads(&self, row: &SeriesHeads) -> Result<()> {
         self.tx
             .prepare_cached(
                 "UPDATE series SET latest_fit = ?2, latest_record = ?3, log_screen = ?4 WHERE id = ?1",
@@ -1662,7 +1794,7 @@ impl Tx<'_> {
         detail: &str,
     ) -> Result<()> {
         let prev = self.pending_audit.borrow().clone();
-        let hash = audit::append(&self.tx, prev.as_deref(), at, kind, subject, detail)
+        let hash = audit::append(self.tx, prev.as_deref(), at, kind, subject, detail)
             .map_err(self.wrap())?;
         *self.pending_audit.borrow_mut() = Some(hash);
         Ok(())
@@ -1689,7 +1821,7 @@ impl Tx<'_> {
                         let hash = w.rows.seal(&mut w.own_row());
                         if cfg!(debug_assertions) {
                             let read_back =
-                                seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+                                seal::compute(self.tx, scope, self.first).map_err(self.wrap())?;
                             debug_assert_eq!(
                                 hash, read_back,
                                 "BUG: the seal of file {id} from the values written differs from the rows read back"
@@ -1698,7 +1830,7 @@ impl Tx<'_> {
                         hash
                     }
                     // Not written here, or too large to keep: read back.
-                    _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+                    _ => seal::compute(self.tx, scope, self.first).map_err(self.wrap())?,
                 }
             }
             seal::SealScope::Finding(id) => {
@@ -1712,7 +1844,7 @@ impl Tx<'_> {
                         let hash = rows.seal();
                         if cfg!(debug_assertions) {
                             let read_back =
-                                seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?;
+                                seal::compute(self.tx, scope, self.first).map_err(self.wrap())?;
                             debug_assert_eq!(
                                 hash, read_back,
                                 "BUG: the seal of finding {id} from the values written differs from the rows read back"
@@ -1720,19 +1852,27 @@ impl Tx<'_> {
                         }
                         hash
                     }
-                    None => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+                    None => seal::compute(self.tx, scope, self.first).map_err(self.wrap())?,
                 }
             }
-            _ => seal::compute(&self.tx, scope, self.first).map_err(self.wrap())?,
+            _ => seal::compute(self.tx, scope, self.first).map_err(self.wrap())?,
         };
         Ok(seal::seal_text(scope, &hash))
     }
 
     /// Commits: everything of the file is durable when this returns.
     pub fn commit(self) -> Result<()> {
-        let Tx { tx, path, .. } = self;
-        tx.commit()
-            .map_err(|source| StoreError::Sqlite { path, source })
+        // A failed COMMIT leaves the transaction open; the drop rolls it back.
+        self.tx.execute_batch("COMMIT").map_err(self.wrap())
+    }
+}
+
+impl Drop for Tx<'_> {
+    fn drop(&mut self) {
+        if !self.tx.is_autocommit() {
+            // Nothing of a file's transaction is kept unless it commits.
+            let _ = self.tx.execute_batch("ROLLBACK");
+        }
     }
 }
 
@@ -1964,7 +2104,7 @@ mod tests {
     /// rows read back in the transaction; returns the hash.
     fn seal_checked(tx: &Tx<'_>, id: FileId) -> String {
         let scope = SealScope::File(id.0);
-        let read_back = seal::compute(&tx.tx, scope, tx.first).unwrap();
+        let read_back = seal::compute(tx.tx, scope, tx.first).unwrap();
         let text = tx.seal(scope).unwrap();
         assert_eq!(text, seal::seal_text(scope, &read_back));
         read_back
@@ -2029,7 +2169,8 @@ mod tests {
             }
             owned.push(r);
         }
-        let mut batch = RecordBatch::new();
+        let owned = Arc::new(owned);
+        let mut batch = RecordBatch::new(Arc::clone(&owned));
         let mut prev = None;
         for (i, r) in owned.iter().enumerate() {
             if i % 9 == 4 {
@@ -2059,11 +2200,11 @@ mod tests {
             };
             if i % 11 == 3 {
                 // Diagnostics no measure yields today, written as bound.
-                let id = tx.next_record.get();
-                tx.next_record.set(id + 1);
+                let id = tx.ids.record();
                 batch.rows.push(PendingRecord {
                     id,
-                    record: r,
+                    index: i,
+                    arrival: None,
                     version: 1,
                     status: "current",
                     series: row.id.0,
@@ -2091,7 +2232,7 @@ mod tests {
                 continue;
             }
             prev = Some(
-                tx.queue_current(&mut batch, r, row.id, file, placement, prev)
+                tx.queue_current(&mut batch, i, row.id, file, placement, prev)
                     .unwrap(),
             );
         }
@@ -2159,8 +2300,9 @@ mod tests {
         let records: Vec<Record> = (0..5)
             .map(|i| record(&format!("X{i}"), f64::from(i), Measure::Detected(1.0), 1))
             .collect();
-        let mut batch = RecordBatch::new();
-        for (i, r) in records.iter().enumerate() {
+        let records = Arc::new(records);
+        let mut batch = RecordBatch::new(Arc::clone(&records));
+        for (i, _) in records.iter().enumerate() {
             let file = if i % 2 == 0 { a } else { b };
             tx.insert_bad_row(file, &bad_row(i as u64, None, "x"))
                 .unwrap();
@@ -2168,7 +2310,7 @@ mod tests {
                 fit_point: None,
                 arrival: None,
             };
-            tx.queue_current(&mut batch, r, row.id, file, placement, None)
+            tx.queue_current(&mut batch, i, row.id, file, placement, None)
                 .unwrap();
         }
         tx.flush_records(&mut batch).unwrap();
@@ -2209,13 +2351,14 @@ mod tests {
         let records: Vec<Record> = (0..2_000)
             .map(|i| record(&format!("B{i:05}"), f64::from(i), Measure::Detected(2.5), 1))
             .collect();
-        let mut batch = RecordBatch::new();
-        for r in &records {
+        let records = Arc::new(records);
+        let mut batch = RecordBatch::new(Arc::clone(&records));
+        for i in 0..records.len() {
             let placement = RecordPlacement {
                 fit_point: None,
                 arrival: None,
             };
-            tx.queue_current(&mut batch, r, row.id, file, placement, None)
+            tx.queue_current(&mut batch, i, row.id, file, placement, None)
                 .unwrap();
         }
         tx.flush_records(&mut batch).unwrap();

@@ -179,7 +179,7 @@ impl Tx<'_> {
 
     /// The verdicts of a finding, oldest first.
     pub fn verdicts_of(&self, finding: i64) -> Result<Vec<VerdictRow>> {
-        verdicts_of(&self.tx, Some(finding)).map_err(self.wrap())
+        verdicts_of(self.tx, Some(finding)).map_err(self.wrap())
     }
 
     /// A record row's state.
@@ -231,8 +231,7 @@ impl Tx<'_> {
         prev_in_series: Option<i64>,
         note: &str,
     ) -> Result<i64> {
-        let id = self.next_record.get();
-        self.next_record.set(id + 1);
+        let id = self.ids.record();
         let (fx, fy) = fit_point.unzip();
         self.tx
             .prepare_cached(
@@ -383,12 +382,12 @@ impl Tx<'_> {
 
     /// A series' row by key (for a verdict, outside the ingest cache).
     pub fn series_for_review(&self, key: &str) -> Result<Option<SeriesRow>> {
-        series_row(&self.tx, key).map_err(self.wrap())
+        series_row(self.tx, key).map_err(self.wrap())
     }
 
     /// The in-fit points of a series with their record rows, oldest row
     /// first, walking its chain from `head`.
     pub fn fit_points_with_rows(&self, head: Option<i64>) -> Result<Vec<(i64, f64, f64)>> {
-        super::chain_rows(&self.tx, head).map_err(self.wrap())
+        super::chain_rows(self.tx, head).map_err(self.wrap())
     }
 }

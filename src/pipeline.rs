@@ -258,6 +258,10 @@ pub fn process_in_order(
     stop: &AtomicBool,
     mut each: impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
 ) {
+    if let Err(e) = store.for_ingest() {
+        // Only a speed setting: ingest works without it.
+        tracing::warn!(error = %e, "cannot keep statement journals in memory");
+    }
     if files.len() <= 1 {
         // Nothing to overlap.
         for (i, (config, file)) in files.iter().enumerate() {

@@ -26,6 +26,7 @@ use tracing::{debug, info, info_span, warn};
 
 use crate::clock;
 use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
+use crate::findings::causes::Candidate;
 use crate::findings::rules::{
     CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with,
     judge_trend,
@@ -1354,6 +1355,9 @@ fn store_file_behind(
     if !heads.is_empty() {
         b.later(move |tx| heads.iter().try_for_each(|h| tx.save_heads(h)));
     }
+    // Before the transaction is taken back: the rows still being written
+    // meanwhile.
+    let causes = rank_flagged(config, cache, &touched, &flagged, name);
     let findings = raise_findings(
         b.tx()?,
         config,
@@ -1361,6 +1365,7 @@ fn store_file_behind(
         rows.survey,
         &touched,
         &flagged,
+        &causes,
         &plain,
         &trends,
         (file_id, name),
@@ -1460,6 +1465,74 @@ impl<'a> Neighbours<'a> {
     }
 }
 
+/// The likely entry errors of each flagged record (in `flagged` order):
+/// pure, so worked out while the file's rows are still being written.
+fn rank_flagged(
+    config: &Config,
+    cache: &mut SeriesCache,
+    touched: &HashMap<String, Touched>,
+    flagged: &[Flagged],
+    file_name: &str,
+) -> Vec<Vec<Candidate>> {
+    if flagged.is_empty() {
+        return Vec::new();
+    }
+    let quantiles = cache.quantiles(config.level);
+    let mut quantiles = std::mem::replace(quantiles, TQuantiles::new(config.level));
+    let mut neighbours = Neighbours::of(touched, &cache.rows);
+    let ranked = flagged
+        .iter()
+        .map(|f| {
+            let key = f.record.series.as_str();
+            let Some(t) = touched.get(key) else {
+                return Vec::new();
+            };
+            // "Belongs to another series": the series that share its site or
+            // its parameter (the key's part before or after the first '/')
+            // and its scale: those of this file, and those met earlier.
+            let (site, parameter) = key.split_once('/').unwrap_or((key, ""));
+            let scale = t.settings.transform.name();
+            let related = neighbours
+                .by_site
+                .get(site)
+                .into_iter()
+                .chain(
+                    (!parameter.is_empty())
+                        .then(|| neighbours.by_parameter.get(parameter))
+                        .flatten(),
+                )
+                .flatten()
+                .copied();
+            let mut mine: Vec<(&str, LineFit)> = Vec::new();
+            for i in related {
+                let Some(&(k, other_scale, m)) = neighbours.series.get(i) else {
+                    continue;
+                };
+                if k == key || other_scale != scale {
+                    continue;
+                }
+                let fit = neighbours.fits[i].get_or_insert_with(|| {
+                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df)).ok()
+                });
+                if let Some(fit) = fit {
+                    mine.push((k, *fit));
+                }
+            }
+            raise::likely_causes(
+                config,
+                &f.record,
+                &f.arrival,
+                t.settings.transform,
+                Some(f.span_before),
+                &mine,
+                file_name,
+            )
+        })
+        .collect();
+    *cache.quantiles(config.level) = quantiles;
+    ranked
+}
+
 /// Raises the file's findings (records flagged by the rules, conflicts,
 /// refused rows, trend changes) in its transaction. Returns how many.
 #[allow(clippy::too_many_arguments)]
@@ -1470,6 +1543,7 @@ fn raise_findings(
     survey: &Survey,
     touched: &HashMap<String, Touched>,
     flagged: &[Flagged],
+    causes: &[Vec<Candidate>],
     plain: &[PlainFinding],
     trends: &[(String, TrendChange, Option<LineFit>, LineFit)],
     file: (crate::store::FileId, &str),
@@ -1479,10 +1553,7 @@ fn raise_findings(
     let mut raised = 0;
     let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::default();
     if !flagged.is_empty() {
-        let quantiles = cache.quantiles(config.level);
-        let mut quantiles = std::mem::replace(quantiles, TQuantiles::new(config.level));
-        let mut neighbours = Neighbours::of(touched, &cache.rows);
-        for f in flagged {
+        for (f, causes) in flagged.iter().zip(causes) {
             let record = &f.record;
             let key = record.series.as_str();
             let Some(t) = touched.get(key) else {
@@ -1519,37 +1590,6 @@ fn raise_findings(
             } else {
                 &[]
             };
-            // "Belongs to another series": the series that share its site or
-            // its parameter (the key's part before or after the first '/')
-            // and its scale: those of this file, and those met earlier.
-            let (site, parameter) = key.split_once('/').unwrap_or((key, ""));
-            let scale = t.settings.transform.name();
-            let related = neighbours
-                .by_site
-                .get(site)
-                .into_iter()
-                .chain(
-                    (!parameter.is_empty())
-                        .then(|| neighbours.by_parameter.get(parameter))
-                        .flatten(),
-                )
-                .flatten()
-                .copied();
-            let mut mine: Vec<(&str, LineFit)> = Vec::new();
-            for i in related {
-                let Some(&(k, other_scale, m)) = neighbours.series.get(i) else {
-                    continue;
-                };
-                if k == key || other_scale != scale {
-                    continue;
-                }
-                let fit = neighbours.fits[i].get_or_insert_with(|| {
-                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df)).ok()
-                });
-                if let Some(fit) = fit {
-                    mine.push((k, *fit));
-                }
-            }
             let robust = cache.robust.get(key).copied();
             raise::record_finding(
                 tx,
@@ -1565,7 +1605,7 @@ fn raise_findings(
                     fit_point: f.fit_point,
                     points,
                     awaiting: &t.awaiting,
-                    others: &mine,
+                    causes,
                     robust,
                     draw_chart,
                     span_before: Some(f.span_before),
@@ -1576,7 +1616,6 @@ fn raise_findings(
             )?;
             raised += 1;
         }
-        *cache.quantiles(config.level) = quantiles;
     }
     for p in plain {
         let series = touched.get(&p.series).map(|t| &t.row);

@@ -10,7 +10,7 @@ use serde_json::json;
 
 use crate::config::Config;
 use crate::findings::advice::{AdviceInput, advise};
-use crate::findings::causes::{CauseInput, XKind, rank_causes};
+use crate::findings::causes::{Candidate, CauseInput, XKind, rank_causes};
 use crate::findings::rules::{Measured, RecordJudgement, TrendChange};
 use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
@@ -46,14 +46,74 @@ pub struct RecordCase<'a> {
     pub points: &'a [(f64, f64)],
     /// Points awaiting review (fitted scale).
     pub awaiting: &'a [(f64, f64)],
-    /// Fits of other series in the same file, for "belongs to another series".
-    pub others: &'a [(&'a str, LineFit)],
+    /// Its likely entry errors, best first ([`likely_causes`]).
+    pub causes: &'a [Candidate],
     /// Robust slope of the series, if known.
     pub robust: Option<(f64, f64, f64)>,
     /// Whether to draw the chart (not for a message held for a digest).
     pub draw_chart: bool,
     /// The series' x range (fitted scale) before the record.
     pub span_before: Option<(f64, f64)>,
+}
+
+/// What x measures for a record of `file_name`: decimal years when the
+/// feed takes x from a date column, or when the series' surveyed x range
+/// lies in calendar years; never guessed from the record itself, whose x
+/// may be the typo.
+fn x_kind_of(
+    config: &Config,
+    file_name: &str,
+    transform: Transform,
+    span_before: Option<(f64, f64)>,
+) -> XKind {
+    let from_date = matches!(
+        config.feed_for(std::path::Path::new(file_name)).1.x,
+        crate::records::XSource::Date { .. }
+    );
+    let span_in_years = span_before.is_some_and(|(lo, hi)| {
+        transform == Transform::None
+            && (1800.0..=2200.0).contains(&lo)
+            && (1800.0..=2200.0).contains(&hi)
+    });
+    if from_date || span_in_years {
+        XKind::DecimalYear
+    } else {
+        XKind::Distance
+    }
+}
+
+/// The likely entry errors of a flagged record, best first (at most four),
+/// scored against the series' fit without it; `others` are the fits of the
+/// series it could belong to instead. Pure, so that a file's findings can
+/// rank their causes while its rows are still being written.
+pub fn likely_causes(
+    config: &Config,
+    record: &Record,
+    arrival: &Arrival,
+    transform: Transform,
+    span_before: Option<(f64, f64)>,
+    others: &[(&str, LineFit)],
+    file_name: &str,
+) -> Vec<Candidate> {
+    let Ok(fit) = arrival.fit_without(config.level) else {
+        return Vec::new();
+    };
+    let others: Vec<(&str, &LineFit)> = others.iter().map(|(k, f)| (*k, f)).collect();
+    let x_raw = format!("{}", record.x);
+    let y_raw = format!("{}", record.y.number());
+    rank_causes(&CauseInput {
+        fit_without: &fit,
+        transform,
+        x: record.x,
+        y: record.y.number(),
+        x_raw: &x_raw,
+        y_raw: &y_raw,
+        x_kind: x_kind_of(config, file_name, transform, span_before),
+        unit: record.unit.as_deref(),
+        others: &others,
+        max: 4,
+    })
+    .candidates
 }
 
 /// Raises a record-level finding; returns its id.
@@ -85,45 +145,10 @@ pub fn record_finding(
         )
     };
 
-    // Likely entry errors, scored against the fit without the record.
-    let others: Vec<(&str, &LineFit)> = case.others.iter().map(|(k, f)| (*k, f)).collect();
-    // Decimal years when the feed takes x from a date column, or when the
-    // series' surveyed x range lies in calendar years; never guessed from
-    // the record itself, whose x may be the typo.
-    let from_date = matches!(
-        config.feed_for(std::path::Path::new(file.1)).1.x,
-        crate::records::XSource::Date { .. }
-    );
-    let span_in_years = case.span_before.is_some_and(|(lo, hi)| {
-        case.transform == Transform::None
-            && (1800.0..=2200.0).contains(&lo)
-            && (1800.0..=2200.0).contains(&hi)
-    });
-    let x_kind = if from_date || span_in_years {
-        XKind::DecimalYear
-    } else {
-        XKind::Distance
-    };
+    let x_kind = x_kind_of(config, file.1, case.transform, case.span_before);
     let x_raw = format!("{}", r.x);
     let y_raw = format!("{}", r.y.number());
-    let causes = without
-        .as_ref()
-        .map(|fit| {
-            rank_causes(&CauseInput {
-                fit_without: fit,
-                transform: case.transform,
-                x: r.x,
-                y: r.y.number(),
-                x_raw: &x_raw,
-                y_raw: &y_raw,
-                x_kind,
-                unit: r.unit.as_deref(),
-                others: &others,
-                max: 4,
-            })
-            .candidates
-        })
-        .unwrap_or_default();
+    let causes = case.causes;
     let advice = if case
         .judgement
         .kinds

@@ -997,7 +997,7 @@ fn store_file_behind(
                     placement,
                     t.row.latest_record,
                 );
-                if batch.is_full() {
+                if batch.is_worth_handing() {
                     let mut full = batch.take();
                     b.later(move |tx| tx.flush_records(&mut full));
                 }
@@ -1329,7 +1329,7 @@ fn store_file_behind(
                 note,
             },
         );
-        if fits.is_full() {
+        if fits.is_worth_handing() {
             let mut full = fits.take();
             b.later(move |tx| tx.flush_fits(&mut full));
         }

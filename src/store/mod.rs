@@ -65,6 +65,8 @@ const RECORD_COLUMNS: usize = 33;
 /// Records per multi-row INSERT: per-statement overhead dominates small
 /// inserts, and 32 × 33 parameters stay far below SQLite's limit.
 const RECORD_CHUNK: usize = 32;
+/// Multi-row statements per batch handed to a writing thread.
+const HAND_STATEMENTS: usize = 8;
 
 /// `head` followed by `rows` groups of `columns` placeholders.
 fn multi_row_insert(head: &str, columns: usize, rows: usize) -> String {
@@ -201,6 +203,13 @@ impl RecordBatch {
         self.rows.len() >= RECORD_CHUNK
     }
 
+    /// Whether enough is queued to hand to a writing thread: several whole
+    /// statements (each hand-over wakes the thread, which costs more than
+    /// a statement on a virtual machine), and no short remainder.
+    pub fn is_worth_handing(&self) -> bool {
+        self.rows.len() >= HAND_STATEMENTS * RECORD_CHUNK
+    }
+
     /// The rows queued so far, leaving an empty batch of the same source.
     pub fn take(&mut self) -> RecordBatch {
         RecordBatch {
@@ -302,6 +311,11 @@ impl FitBatch {
     /// Whether a multi-row statement's worth is queued (time to write).
     pub fn is_full(&self) -> bool {
         self.rows.len() >= FIT_CHUNK
+    }
+
+    /// As [`RecordBatch::is_worth_handing`].
+    pub fn is_worth_handing(&self) -> bool {
+        self.rows.len() >= HAND_STATEMENTS * FIT_CHUNK
     }
 
     /// The rows queued so far, leaving an empty batch.

@@ -124,14 +124,9 @@ struct PendingRecord {
     series: i64,
     file: i64,
     fit_point: Option<(f64, f64)>,
-    /// The record's arrival in the fit it joined (version), from which its
-    /// diagnostics are worked out when the row is written.
-    arrival: Option<(Arrival, i64)>,
-    /// Set when the row is written (or by a test, to write odd values).
     diagnostics: Option<DiagnosticsRow>,
     prev_in_series: Option<i64>,
-    /// The record's attributes as the JSON text stored (None: none), set
-    /// when the row is written.
+    /// The record's attributes as the JSON text stored (None: none).
     attributes: Option<String>,
 }
 
@@ -236,6 +231,9 @@ impl RecordBatch {
             "BUG: record {index} is not in the batch's source"
         );
         let id = ids.record();
+        // Worked out here, on the thread that queues: the writing thread is
+        // the busier one while a file's rows are written.
+        let attributes = attributes_json(&self.source[index]);
         self.rows.push(PendingRecord {
             id,
             index,
@@ -244,10 +242,11 @@ impl RecordBatch {
             series: series.0,
             file: file.0,
             fit_point: placement.fit_point,
-            arrival: placement.arrival.map(|(a, joins, _)| (*a, joins)),
-            diagnostics: None,
+            diagnostics: placement
+                .arrival
+                .map(|(a, joins, _)| DiagnosticsRow::of(a, joins)),
             prev_in_series,
-            attributes: None,
+            attributes,
         });
         id
     }
@@ -1548,14 +1547,6 @@ impl Tx<'_> {
     /// Writes every queued record.
     pub fn flush_records(&self, batch: &mut RecordBatch) -> Result<()> {
         let source = &batch.source;
-        // Worked out here, where the rows are written (possibly on the
-        // writing thread), not where they were queued.
-        for row in &mut batch.rows {
-            if row.diagnostics.is_none() {
-                row.diagnostics = row.arrival.map(|(a, joins)| DiagnosticsRow::of(&a, joins));
-            }
-            row.attributes = attributes_json(&source[row.index]);
-        }
         self.note_written(
             &batch.rows,
             |r| Some(r.file),
@@ -1655,10 +1646,9 @@ impl Tx<'_> {
             series: series.0,
             file: file.0,
             fit_point: None,
-            arrival: None,
             diagnostics: None,
             prev_in_series: None,
-            attributes: None,
+            attributes: attributes_json(record),
         });
         self.flush_records(&mut batch)?;
         Ok(id)
@@ -2232,7 +2222,6 @@ mod tests {
                 batch.rows.push(PendingRecord {
                     id,
                     index: i,
-                    arrival: None,
                     version: 1,
                     status: "current",
                     series: row.id.0,

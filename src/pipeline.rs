@@ -841,6 +841,8 @@ fn store_file_behind(
         }
         // Ids stored by earlier files: those records take the slow path (same
         // record again, or a conflict); all others are written in batches.
+        // Taking the transaction back here also bounds memory: the writing
+        // thread is never more than one chunk of records behind.
         let stored = b
             .tx()?
             .stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;

@@ -20,6 +20,21 @@ SHARED=${SHARED:-../shared}
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
 
+# CPU time the hypervisor gave to others while a phase ran (steal, from
+# /proc/stat): on a shared VM it swings wall-clock figures by tens of
+# percent, so each figure is printed with it.
+cpu_line() { head -1 /proc/stat; }
+steal_since() {
+  python3 - "$1" "$(cpu_line)" <<'STEAL'
+import sys
+a = [int(v) for v in sys.argv[1].split()[1:]]
+b = [int(v) for v in sys.argv[2].split()[1:]]
+d = [y - x for x, y in zip(a, b)]
+total = sum(d[:8]) or 1
+print(f"{100 * d[7] / total:.0f} %")
+STEAL
+}
+
 python3 "$SHARED/bench/make_workload.py" --out "$work/w" --series "$SERIES" \
   --points-per-series "$POINTS" --batch "$BATCH" --seed 3 \
   ${ERRORS:+--error-rate "$ERRORS" --extreme-rate "$ERRORS"} >/dev/null
@@ -30,8 +45,9 @@ cargo build --release --quiet
 cargo bench --bench bare_insert --no-run --quiet 2>/dev/null || true
 bare_bin=$(ls -t target/release/deps/bare_insert-* | grep -v '\.d$' | head -1)
 
+t0=$(cpu_line)
 bare_out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
-echo "$bare_out"
+echo "$bare_out (steal $(steal_since "$t0"))"
 bare_s=$(echo "$bare_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
 # The same rows in the shape of slopewarden's records table, nothing
 # computed: what the row shape alone costs against the bare insert.
@@ -53,13 +69,16 @@ database = "sw.sqlite3"
 [watch]
 keep_files = true
 TOML
+t0=$(cpu_line)
 /usr/bin/time -v target/release/slopewarden ingest --config "$work/sw.toml" "$work/w/inbox" \
   >"$work/sw.out" 2>"$work/sw.err" &
 wait $! || { cat "$work/sw.err" | tail -20; exit 1; }
+sw_steal=$(steal_since "$t0")
 sw_s=$(grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }')
 rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
+echo "steal time during slopewarden ingest: $sw_steal"
 python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" "$lean_s" <<'PY'
 import sys
 records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])

@@ -13,7 +13,9 @@
 //! A failed job poisons the transaction: the jobs after it are dropped, and
 //! the next [`Behind::tx`] (at the latest the one before commit) returns
 //! its error, so the caller returns and the transaction rolls back. No
-//! commit can happen with a job lost.
+//! commit can happen with a job lost. When no thread can be started (out
+//! of threads or memory), the jobs run at once on the calling thread under
+//! the same rules.
 
 use std::sync::mpsc::{Receiver, Sender, channel};
 
@@ -35,34 +37,37 @@ enum ToWriter<'t> {
 pub struct Behind<'t> {
     /// The transaction, while this thread holds it.
     held: Option<Tx<'t>>,
-    to_writer: Sender<ToWriter<'t>>,
-    from_writer: Receiver<(Tx<'t>, Option<StoreError>)>,
+    /// The writing thread's channels; `None` when it could not be started,
+    /// and jobs run at once on this thread instead.
+    writer: Option<Channels<'t>>,
+    /// Without a writing thread: the error of the first job that failed.
+    failed: Option<StoreError>,
 }
+
+type Channels<'t> = (Sender<ToWriter<'t>>, Receiver<(Tx<'t>, Option<StoreError>)>);
 
 /// Runs `body` with `tx` and a writing thread for it. `body` must take the
 /// transaction back with [`Behind::finish`] to commit it; otherwise it is
 /// dropped (rolled back) when `body` returns.
 pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) -> R {
-    let path = tx.path.clone();
     std::thread::scope(|scope| {
         let (to_writer, jobs) = channel::<ToWriter<'t>>();
         let (back, from_writer) = channel();
-        std::thread::Builder::new()
+        let writer = match std::thread::Builder::new()
             .name("store-writer".into())
             .spawn_scoped(scope, move || writer(jobs, back))
-            .unwrap_or_else(|e| {
-                // Without a second thread the jobs cannot run; this is a
-                // resource failure of the machine, reported as a panic as
-                // std::thread::spawn would.
-                panic!(
-                    "cannot start the store's writing thread for {}: {e}",
-                    path.display()
-                )
-            });
+        {
+            Ok(_) => Some((to_writer, from_writer)),
+            Err(e) => {
+                // Out of threads or memory: the same jobs, on this thread.
+                tracing::warn!(error = %e, "cannot start the store's writing thread; writing on this one");
+                None
+            }
+        };
         let mut behind = Behind {
             held: Some(tx),
-            to_writer,
-            from_writer,
+            writer,
+            failed: None,
         };
         body(&mut behind)
         // Dropping `behind` ends the writer (dropping any transaction it
@@ -99,22 +104,37 @@ impl<'t> Behind<'t> {
     /// Runs `job` on the writing thread after the jobs before it; the
     /// computing thread goes on at once.
     pub fn later(&mut self, job: impl FnOnce(&Tx<'t>) -> Result<()> + Send + 't) {
+        let Some((to_writer, _)) = &self.writer else {
+            if self.failed.is_none()
+                && let Some(tx) = &self.held
+                && let Err(e) = job(tx)
+            {
+                self.failed = Some(e);
+            }
+            return;
+        };
         if let Some(tx) = self.held.take() {
             // A send fails only when the writer is gone (it panicked); the
             // next `tx` reports that.
-            let _ = self.to_writer.send(ToWriter::Hand(tx));
+            let _ = to_writer.send(ToWriter::Hand(tx));
         }
-        let _ = self.to_writer.send(ToWriter::Run(Box::new(job)));
+        let _ = to_writer.send(ToWriter::Run(Box::new(job)));
     }
 
     /// The transaction, once every job handed over has run; the error of
     /// the first job that failed, if one did (the transaction must then be
     /// given up).
     pub fn tx(&mut self) -> Result<&Tx<'t>> {
+        if let Some(e) = self.failed.take() {
+            // Dropped here: rolled back.
+            self.held = None;
+            return Err(e);
+        }
         if self.held.is_none() {
             let lost = || StoreError::WriterLost;
-            self.to_writer.send(ToWriter::Return).map_err(|_| lost())?;
-            let (tx, failed) = self.from_writer.recv().map_err(|_| lost())?;
+            let (to_writer, from_writer) = self.writer.as_ref().ok_or_else(lost)?;
+            to_writer.send(ToWriter::Return).map_err(|_| lost())?;
+            let (tx, failed) = from_writer.recv().map_err(|_| lost())?;
             if let Some(e) = failed {
                 // Dropped here: rolled back.
                 drop(tx);
@@ -237,6 +257,42 @@ mod tests {
         .unwrap();
         tx.commit().unwrap();
         assert_eq!(audit_count(&store), 1);
+    }
+
+    #[test]
+    fn without_a_writing_thread_jobs_run_at_once_with_the_same_failure_rule() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let mut b = Behind {
+            held: Some(tx),
+            writer: None,
+            failed: None,
+        };
+        b.later(|tx| {
+            tx.append_audit(
+                "2026-01-01T00:00:00Z",
+                crate::store::AuditKind::Conflict,
+                "a",
+                "d",
+            )
+        });
+        let n: i64 = b
+            .tx()
+            .unwrap()
+            .tx
+            .query_row("SELECT count(*) FROM audit_log", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(n, 1);
+        b.later(|tx| {
+            tx.tx
+                .execute_batch("INSERT INTO no_such_table VALUES (1)")
+                .map_err(tx.wrap())
+        });
+        b.later(|_| panic!("a job after a failed one must not run"));
+        let err = b.finish().err().expect("the failed job must surface");
+        assert!(err.to_string().contains("no_such_table"), "{err}");
+        drop(b);
+        assert_eq!(audit_count(&store), 0, "nothing of the transaction is kept");
     }
 
     #[test]

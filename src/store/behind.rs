@@ -159,8 +159,30 @@ impl<'t> Behind<'t> {
 mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
-    use crate::store::Store;
+    use crate::store::{AuditKind, Store};
 
+    /// A job appending an audit entry about `subject`.
+    fn entry<'t>(subject: String) -> impl FnOnce(&Tx<'t>) -> Result<()> + Send + 't {
+        move |tx| tx.append_audit("2026-01-01T00:00:00Z", AuditKind::Conflict, &subject, "d")
+    }
+
+    /// A job SQLite refuses.
+    fn failing<'t>() -> impl FnOnce(&Tx<'t>) -> Result<()> + Send + 't {
+        |tx| {
+            tx.tx
+                .execute_batch("INSERT INTO no_such_table VALUES (1)")
+                .map_err(tx.wrap())
+        }
+    }
+
+    /// Audit entries as the transaction sees them.
+    fn entries_in(tx: &Tx<'_>) -> i64 {
+        tx.tx
+            .query_row("SELECT count(*) FROM audit_log", [], |r| r.get(0))
+            .unwrap()
+    }
+
+    /// Audit entries committed.
     fn audit_count(store: &Store) -> i64 {
         store
             .conn
@@ -174,21 +196,9 @@ mod tests {
         let tx = store.begin().unwrap();
         let seen = write_behind(tx, |b| {
             for i in 0..50 {
-                b.later(move |tx| {
-                    tx.append_audit(
-                        "2026-01-01T00:00:00Z",
-                        crate::store::AuditKind::Conflict,
-                        &format!("r{i}"),
-                        "d",
-                    )
-                });
+                b.later(entry(format!("r{i}")));
             }
-            let n: i64 = b
-                .tx()
-                .unwrap()
-                .tx
-                .query_row("SELECT count(*) FROM audit_log", [], |r| r.get(0))
-                .unwrap();
+            let n = entries_in(b.tx().unwrap());
             let subjects: Vec<String> = {
                 let tx = b.tx().unwrap();
                 let mut stmt = tx
@@ -217,44 +227,17 @@ mod tests {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
         let result = write_behind(tx, |b| {
-            b.later(|tx| {
-                tx.append_audit(
-                    "2026-01-01T00:00:00Z",
-                    crate::store::AuditKind::Conflict,
-                    "kept?",
-                    "d",
-                )
-            });
-            b.later(|tx| {
-                tx.tx
-                    .execute_batch("INSERT INTO no_such_table VALUES (1)")
-                    .map_err(tx.wrap())
-            });
-            b.later(|tx| {
-                tx.append_audit(
-                    "2026-01-01T00:00:00Z",
-                    crate::store::AuditKind::Conflict,
-                    "after",
-                    "d",
-                )
-            });
-            match b.finish() {
-                Ok(tx) => tx.commit().map(|_| "committed"),
-                Err(e) => Err(e),
-            }
+            b.later(entry("kept?".into()));
+            b.later(failing());
+            b.later(|_| panic!("a job after a failed one must not run"));
+            b.finish().and_then(|tx| tx.commit())
         });
         let err = result.expect_err("the failed job must surface");
         assert!(err.to_string().contains("no_such_table"), "{err}");
         assert_eq!(audit_count(&store), 0, "nothing of the transaction is kept");
         // The store takes the next transaction normally.
         let tx = store.begin().unwrap();
-        tx.append_audit(
-            "2026-01-01T00:00:00Z",
-            crate::store::AuditKind::Conflict,
-            "next",
-            "d",
-        )
-        .unwrap();
+        entry("next".into())(&tx).unwrap();
         tx.commit().unwrap();
         assert_eq!(audit_count(&store), 1);
     }
@@ -268,26 +251,9 @@ mod tests {
             writer: None,
             failed: None,
         };
-        b.later(|tx| {
-            tx.append_audit(
-                "2026-01-01T00:00:00Z",
-                crate::store::AuditKind::Conflict,
-                "a",
-                "d",
-            )
-        });
-        let n: i64 = b
-            .tx()
-            .unwrap()
-            .tx
-            .query_row("SELECT count(*) FROM audit_log", [], |r| r.get(0))
-            .unwrap();
-        assert_eq!(n, 1);
-        b.later(|tx| {
-            tx.tx
-                .execute_batch("INSERT INTO no_such_table VALUES (1)")
-                .map_err(tx.wrap())
-        });
+        b.later(entry("a".into()));
+        assert_eq!(entries_in(b.tx().unwrap()), 1);
+        b.later(failing());
         b.later(|_| panic!("a job after a failed one must not run"));
         let err = b.finish().err().expect("the failed job must surface");
         assert!(err.to_string().contains("no_such_table"), "{err}");
@@ -300,14 +266,7 @@ mod tests {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
         write_behind(tx, |b| {
-            b.later(|tx| {
-                tx.append_audit(
-                    "2026-01-01T00:00:00Z",
-                    crate::store::AuditKind::Conflict,
-                    "lost",
-                    "d",
-                )
-            });
+            b.later(entry("lost".into()));
             // The body returns without finishing (an early error return).
         });
         assert_eq!(audit_count(&store), 0);

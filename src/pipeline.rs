@@ -1204,8 +1204,6 @@ fn store_file_behind(
         }
         if !batch.is_empty() {
             b.later(move |tx| tx.flush_records(&mut batch));
-        } else {
-            drop(batch);
         }
         // The records go when the writing thread is done with them.
         drop(records);

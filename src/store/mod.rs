@@ -297,11 +297,6 @@ impl FitBatch {
         FitBatch::default()
     }
 
-    /// Rows still queued.
-    pub fn len(&self) -> usize {
-        self.rows.len()
-    }
-
     /// Whether nothing is queued.
     pub fn is_empty(&self) -> bool {
         self.rows.is_empty()
@@ -1747,7 +1742,7 @@ impl Tx<'_> {
     /// [`Tx::flush_fits`].
     pub fn queue_fit(&self, batch: &mut FitBatch, f: &NewFit<'_>) -> Result<i64> {
         let id = batch.queue(&self.ids, f);
-        if batch.rows.len() >= FIT_CHUNK {
+        if batch.is_full() {
             self.flush_fits(batch)?;
         }
         Ok(id)

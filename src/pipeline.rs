@@ -177,6 +177,8 @@ pub struct Prepared {
     /// `None` for a large file, parsed in chunks as it is stored.
     parsed: Option<Result<records::ParsedFile, records::FileError>>,
     now: SystemTime,
+    /// The last chunk's records once stored, freed with the rest.
+    stored: Option<Arc<Vec<Record>>>,
 }
 
 /// The folder a file was listed in: its path without its listed relative
@@ -202,7 +204,12 @@ pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
             let rules = |id: &SeriesId| config.series_settings(id).rules();
             records::parse_file(bytes, layout, &rules, today_of(now))
         });
-    Prepared { read, parsed, now }
+    Prepared {
+        read,
+        parsed,
+        now,
+        stored: None,
+    }
 }
 
 fn today_of(now: SystemTime) -> Today {
@@ -425,7 +432,7 @@ fn process_file_inner(
         }
     };
     // Small files come in one piece, large ones chunk by chunk.
-    let mut handed: Option<records::ParsedFile> = None;
+    let mut handed = Spent::default();
     let mut next_chunk = || -> Result<Option<records::ParsedFile>, records::FileError> {
         match stream.as_mut() {
             Some(s) => s.next_chunk(CHUNK_ROWS),
@@ -451,7 +458,8 @@ fn process_file_inner(
         clock::unix_seconds(now),
     );
     // Handed back for freeing off this thread.
-    prepared.parsed = handed.map(Ok);
+    prepared.parsed = handed.parsed.map(Ok);
+    prepared.stored = handed.records;
     let (counts, refits) = match result? {
         Ok(done) => done,
         Err(e) => {
@@ -762,7 +770,17 @@ struct FileRows<'a> {
     next: &'a mut dyn FnMut() -> Result<Option<records::ParsedFile>, records::FileError>,
     survey: &'a Survey,
     /// The last chunk, handed back to be freed off the writer's thread.
-    spent: &'a mut Option<records::ParsedFile>,
+    spent: &'a mut Spent,
+}
+
+/// What a file's last chunk leaves behind, freed by the reading thread
+/// once the file is done: neither the writer (the busier thread while rows
+/// are written) nor the computing one pays for a million small frees.
+#[derive(Default)]
+struct Spent {
+    parsed: Option<records::ParsedFile>,
+    /// Shared with the writer's batches until they are written.
+    records: Option<Arc<Vec<Record>>>,
 }
 
 /// Stores a file in its one transaction. The outer error is the store's;
@@ -1205,9 +1223,11 @@ fn store_file_behind(
         if !batch.is_empty() {
             b.later(move |tx| tx.flush_records(&mut batch));
         }
-        // The records go when the writing thread is done with them.
-        drop(records);
-        *rows.spent = Some(parsed);
+        // The records go when the writing thread is done with them; the
+        // previous chunk's here (the writer finished it before this chunk's
+        // ids were read), the last one's on the reading thread.
+        rows.spent.records = Some(records);
+        rows.spent.parsed = Some(parsed);
     }
     // Robust slopes first: gather the series due for one, compute them on
     // a second thread while the file's last records are written, then

@@ -22,31 +22,61 @@ pub fn t_two_sided_p(t: f64, df: f64) -> f64 {
 ///
 /// `prob` must lie in (0, 1) and `df` be positive; callers guarantee both.
 ///
-/// statrs' inverse is the starting point; at large df it is off by about
-/// 2e-8 relative (df = 1e5 against R's `qt`), so two Newton steps on the
-/// tail function polish it to the tail's own accuracy.
+/// From df = 3 on, the start is the Cornish-Fisher expansion of t in the
+/// normal quantile to the fourth power of 1/df (Abramowitz & Stegun 1964,
+/// 26.7.5), and Newton steps on the tail function itself polish it until a
+/// step changes it by less than about 1e-14 relative: the tail's own
+/// accuracy, as before, at a few incomplete-beta evaluations instead of
+/// statrs' inverse (about 0.1 ms each, thousands of times in a backlog's
+/// Bonferroni cutoffs). Below df = 3, or if the polish does not settle, the
+/// start is statrs' inverse, which is off by about 2e-8 relative at large
+/// df (df = 1e5 against R's `qt`), polished by two Newton steps.
 pub fn t_quantile(prob: f64, df: f64) -> f64 {
     if prob < 0.5 {
         return -t_quantile(1.0 - prob, df);
+    }
+    let upper = 1.0 - prob;
+    let ln_norm =
+        ln_gamma((df + 1.0) / 2.0) - ln_gamma(df / 2.0) - 0.5 * (df * std::f64::consts::PI).ln();
+    // One Newton step on P(T > q) = upper; None where it cannot be taken.
+    let step = |q: f64| -> Option<f64> {
+        let density = (ln_norm - (df + 1.0) / 2.0 * (q * q / df).ln_1p()).exp();
+        if !(density.is_finite() && density > 0.0) || q <= 0.0 {
+            return None;
+        }
+        let s = (0.5 * t_two_sided_p(q, df) - upper) / density;
+        s.is_finite().then_some(s)
+    };
+    if df >= 3.0 && upper > 0.0 {
+        let z = normal_quantile(prob);
+        let (z2, v) = (z * z, df);
+        let g1 = (z2 + 1.0) * z / 4.0;
+        let g2 = ((5.0 * z2 + 16.0) * z2 + 3.0) * z / 96.0;
+        let g3 = (((3.0 * z2 + 19.0) * z2 + 17.0) * z2 - 15.0) * z / 384.0;
+        let g4 = ((((79.0 * z2 + 776.0) * z2 + 1482.0) * z2 - 1920.0) * z2 - 945.0) * z / 92160.0;
+        let mut q = z + (g1 + (g2 + (g3 + g4 / v) / v) / v) / v;
+        for _ in 0..8 {
+            match step(q) {
+                Some(s) if q + s > 0.0 => {
+                    q += s;
+                    if s.abs() <= 1e-14 * q {
+                        return q;
+                    }
+                }
+                _ => break,
+            }
+        }
     }
     let mut q = match StudentsT::new(0.0, 1.0, df) {
         Ok(dist) => dist.inverse_cdf(prob),
         // BUG: df > 0 and finite is checked by every caller.
         Err(_) => unreachable!("BUG: Student t with df = {df}"),
     };
-    let upper = 1.0 - prob;
-    let ln_norm =
-        ln_gamma((df + 1.0) / 2.0) - ln_gamma(df / 2.0) - 0.5 * (df * std::f64::consts::PI).ln();
     for _ in 0..2 {
-        let density = (ln_norm - (df + 1.0) / 2.0 * (q * q / df).ln_1p()).exp();
-        if !(density.is_finite() && density > 0.0) || q <= 0.0 {
-            break;
+        match step(q) {
+            Some(s) => q += s,
+            None => break,
         }
-        let step = (0.5 * t_two_sided_p(q, df) - upper) / density;
-        if !step.is_finite() {
-            break;
-        }
-        q += step;
     }
     q
 }

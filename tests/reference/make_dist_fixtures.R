@@ -56,8 +56,12 @@ for (df in df_grid) for (t in t_grid) {
                    obj(c("t", "df", "p_two_sided"),
                        c(num(t), num(df), num(2 * pt(-abs(t), df)))))
 }
+# The outlier rule's Bonferroni critical values, t(1 - alpha/2k, df), for
+# alpha 0.001 and 0.05 and k up to a few hundred records of one series in
+# one file, at more df in the range series actually reach.
+bonferroni_grid <- 1 - as.vector(outer(c(0.001, 0.05), 2 * c(1, 6, 50, 156, 400), "/"))
 t_quantile <- character(0)
-for (df in df_grid) for (p in prob_grid) {
+for (df in sort(c(df_grid, 4, 7, 250, 998))) for (p in c(prob_grid, bonferroni_grid)) {
   t_quantile <- c(t_quantile,
                   obj(c("prob", "df", "quantile"),
                       c(num(p), num(df), num(qt(p, df)))))

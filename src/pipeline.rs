@@ -29,7 +29,7 @@ use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
 use crate::findings::causes::Candidate;
 use crate::findings::rules::{
     CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with,
-    judge_trend,
+    judge_trend, outlier_measure,
 };
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
@@ -1096,26 +1096,25 @@ fn store_file_behind(
                         ),
                         _ => None,
                     };
-                    if let (Some(j), Some(lj), Some((lo, hi))) =
+                    // The ln(y) screen asks only whether the record is an
+                    // outlier there.
+                    if let (Some(j), Some(lj), Some(_)) =
                         (judgement.as_mut(), log_judged, t.row.x_span)
                         && !j.kinds.contains(&RecordKind::Outlier)
-                        && let Some(l) = judge_record_with(
+                        && let Some(m) = outlier_measure(
                             &lj,
-                            Span { min: lo, max: hi },
                             t.in_file,
                             &t.settings.findings,
                             &mut cache.cutoffs,
                         )
-                        && l.kinds.contains(&RecordKind::Outlier)
+                        && m.crossed
                     {
                         j.kinds.push(RecordKind::Outlier);
                         j.kinds.sort();
-                        if let Some(m) = l.measures.into_iter().find(|m| m.kind == "outlier") {
-                            j.measures.push(Measured {
+                        j.measures.push(Measured {
                             measure: "prediction t on the ln(y) scale (second screen for multiplicative slips)",
                             ..m
                         });
-                        }
                     }
                     if let (Some(j), Some((lo, hi))) = (judgement, t.row.x_span)
                         && !j.kinds.is_empty()

@@ -221,6 +221,48 @@ pub struct CutoffCache {
     median_f: std::collections::HashMap<usize, f64>,
 }
 
+/// The outlier rule alone: the record's prediction t against the
+/// Bonferroni critical value, as [`judge_record_with`] measures it (and
+/// `None` where that would judge nothing, or has no prediction t). A second
+/// screen that only asks whether a record is an outlier (the ln(y) fit)
+/// needs no leverage or influence measures.
+pub fn outlier_measure(
+    judged: &Arrival,
+    k: usize,
+    t: &Thresholds,
+    cache: &mut CutoffCache,
+) -> Option<Measured> {
+    let n_before = judged.before.n() as usize;
+    if n_before < t.min_n_record.max(3) {
+        return None;
+    }
+    let pred = judged.prediction?;
+    let tv = pred.t?;
+    if pred.df < 1 {
+        return None;
+    }
+    let kk = k.max(1);
+    // |t| beyond the Bonferroni critical value t(1 − alpha/2k, df): the
+    // very cutoff the finding shows, memoised per (df, k), so a backlog
+    // pays one quantile per distinct pair instead of one per record.
+    let cutoff = *cache
+        .outlier_t
+        .entry((pred.df, kk, t.outlier_alpha.to_bits()))
+        .or_insert_with(|| t_quantile(1.0 - t.outlier_alpha / (2.0 * kk as f64), pred.df as f64));
+    Some(Measured {
+        kind: "outlier",
+        measure: "prediction t (externally studentized residual)",
+        value: tv,
+        cutoff,
+        crossed: tv.abs() > cutoff,
+        source: CutoffSource::Outlier {
+            alpha: t.outlier_alpha,
+            df: pred.df,
+            k: kk,
+        },
+    })
+}
+
 /// [`judge_record`] with a cache of critical values.
 pub fn judge_record_with(
     judged: &Arrival,
@@ -242,37 +284,11 @@ pub fn judge_record_with(
     let mut measures = Vec::with_capacity(5);
 
     // Outlier: prediction t against the fit before the record.
-    if let Some(pred) = judged.prediction
-        && let Some(tv) = pred.t
-        && pred.df >= 1
-    {
-        let kk = k.max(1);
-        // |t| beyond the Bonferroni critical value t(1 − alpha/2k, df):
-        // the very cutoff the finding shows, memoised per (df, k), so a
-        // backlog pays a few thousand quantiles instead of a t tail for
-        // every record.
-        let cutoff = *cache
-            .outlier_t
-            .entry((pred.df, kk, t.outlier_alpha.to_bits()))
-            .or_insert_with(|| {
-                t_quantile(1.0 - t.outlier_alpha / (2.0 * kk as f64), pred.df as f64)
-            });
-        let crossed = tv.abs() > cutoff;
-        if crossed {
+    if let Some(m) = outlier_measure(judged, k, t, cache) {
+        if m.crossed {
             kinds.push(RecordKind::Outlier);
         }
-        measures.push(Measured {
-            kind: "outlier",
-            measure: "prediction t (externally studentized residual)",
-            value: tv,
-            cutoff,
-            crossed,
-            source: CutoffSource::Outlier {
-                alpha: t.outlier_alpha,
-                df: pred.df,
-                k: kk,
-            },
-        });
+        measures.push(m);
     }
 
     // Leverage, against the cutoff and against the usual spacing.
@@ -526,6 +542,58 @@ mod tests {
         // The newest point's leverage is near 4/n, twice the average
         // 2/n; it is expected there.
         assert!(j.leverage > 3.5 / 31.0, "{}", j.leverage);
+    }
+
+    /// The outlier rule on its own (the ln(y) screen's) is the very measure
+    /// the whole judgement holds: same value, cutoff and verdict, for a
+    /// clean newcomer, a slipped one, every k, and a series too short.
+    #[test]
+    fn the_outlier_rule_alone_matches_the_whole_judgement() {
+        let base = quarterly(24);
+        let t = Thresholds::default();
+        for (newcomer, points) in [
+            ((2016.1, 6.3), &base[..]),
+            ((2016.1, 63.0), &base[..]),
+            ((2016.1, 0.63), &base[..]),
+            ((2010.9, 5.2), &base[..3]),
+        ] {
+            let mut s = SeriesState::new();
+            for &(x, y) in points {
+                s.add(x, y).unwrap();
+            }
+            let a = s.add(newcomer.0, newcomer.1).unwrap();
+            let span = Span {
+                min: 2010.0,
+                max: 2016.0,
+            };
+            for k in [1, 2, 50] {
+                let mut cache = CutoffCache::default();
+                let alone = outlier_measure(&a, k, &t, &mut cache);
+                let whole = judge_record(&a, span, k, &t)
+                    .and_then(|j| j.measures.into_iter().find(|m| m.kind == "outlier"));
+                assert_eq!(alone, whole, "newcomer {newcomer:?}, k = {k}");
+            }
+        }
+        // The slipped value is caught, the clean one is not.
+        let mut s = SeriesState::new();
+        for &(x, y) in &base {
+            s.add(x, y).unwrap();
+        }
+        let mut slipped = s;
+        let slipped = slipped.add(2016.1, 63.0).unwrap();
+        let clean = s.add(2016.1, 6.3).unwrap();
+        let mut cache = CutoffCache::default();
+        assert!(
+            outlier_measure(&slipped, 1, &t, &mut cache)
+                .unwrap()
+                .crossed
+        );
+        assert!(!outlier_measure(&clean, 1, &t, &mut cache).unwrap().crossed);
+        // Too short to judge: nothing, as for the whole judgement.
+        let mut short = SeriesState::new();
+        short.add(2010.0, 5.0).unwrap();
+        let a = short.add(2010.25, 5.1).unwrap();
+        assert_eq!(outlier_measure(&a, 1, &t, &mut cache), None);
     }
 
     #[test]

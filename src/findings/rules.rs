@@ -221,6 +221,13 @@ pub struct CutoffCache {
     median_f: std::collections::HashMap<usize, f64>,
 }
 
+/// The points of the fit a record is judged against, when there are
+/// enough to judge it at all (`min_n_record`, and never fewer than 3).
+fn judged_points(judged: &Arrival, t: &Thresholds) -> Option<usize> {
+    let n_before = judged.before.n() as usize;
+    (n_before >= t.min_n_record.max(3)).then_some(n_before)
+}
+
 /// The outlier rule alone: the record's prediction t against the
 /// Bonferroni critical value, as [`judge_record_with`] measures it (and
 /// `None` where that would judge nothing, or has no prediction t). A second
@@ -232,10 +239,7 @@ pub fn outlier_measure(
     t: &Thresholds,
     cache: &mut CutoffCache,
 ) -> Option<Measured> {
-    let n_before = judged.before.n() as usize;
-    if n_before < t.min_n_record.max(3) {
-        return None;
-    }
+    judged_points(judged, t)?;
     let pred = judged.prediction?;
     let tv = pred.t?;
     if pred.df < 1 {
@@ -271,10 +275,7 @@ pub fn judge_record_with(
     t: &Thresholds,
     cache: &mut CutoffCache,
 ) -> Option<RecordJudgement> {
-    let n_before = judged.before.n() as usize;
-    if n_before < t.min_n_record.max(3) {
-        return None;
-    }
+    let n_before = judged_points(judged, t)?;
     let n = n_before + 1;
     let nf = n as f64;
     let pf = P as f64;

@@ -15,6 +15,7 @@
 /// record; SipHash (the standard default) cost a few percent of a large
 /// ingest. foldhash is seeded per process like the default.
 type HashMap<K, V> = std::collections::HashMap<K, V, foldhash::fast::RandomState>;
+use std::collections::VecDeque;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -283,7 +284,8 @@ pub fn process_in_order(
         }
         return;
     }
-    // One file ahead at most: memory stays at two files' worth.
+    // One file ahead at most: memory stays at two files' worth (three
+    // while a file commits as the next one is computed).
     let (ready_tx, ready_rx) = sync_channel::<Option<Prepared>>(1);
     let (spent_tx, spent_rx) = channel::<Prepared>();
     std::thread::scope(|scope| {
@@ -303,23 +305,424 @@ pub fn process_in_order(
                 }
             }
         });
-        for (i, (config, file)) in files.iter().enumerate() {
-            if stop.load(Ordering::SeqCst) {
-                break;
-            }
-            let Ok(prepared) = ready_rx.recv() else {
+        let mut files_in = Taken {
+            files,
+            ready: &ready_rx,
+            again: VecDeque::new(),
+        };
+        let mut next = 0;
+        let mut plain = false;
+        while next < files.len() && !stop.load(Ordering::SeqCst) {
+            let (config, file) = &files[next];
+            let Some(prepared) = files_in.take(next) else {
                 break;
             };
-            let prepared = prepared.unwrap_or_else(|| prepare(config, file, SystemTime::now()));
+            // A run of small files, each computed while the one before it
+            // commits; the first file that cannot be goes the plain way.
+            // (When no transaction can begin, the plain way meets the same
+            // error and reports it.)
+            if !std::mem::take(&mut plain)
+                && overlappable(config, &prepared)
+                && let Some(tx) = store.begin().ok()
+            {
+                files_in.again.push_front(prepared);
+                let run = write_behind(tx, |b| {
+                    run_ahead(b, &mut files_in, next, cache, stop, &spent_tx, &mut each)
+                });
+                next = run.next;
+                plain = run.plain;
+                if run.stopped {
+                    break;
+                }
+                continue;
+            }
             let (result, spent) = process_prepared(config, store, cache, file, prepared);
             let _ = spent_tx.send(spent);
-            if each(i, file, result) == Flow::Stop {
+            next += 1;
+            if each(next - 1, file, result) == Flow::Stop {
                 break;
             }
         }
         // Dropping the receiver ends the reader at its next send.
+        drop(files_in);
         drop(ready_rx);
     });
+}
+
+/// The files of [`process_in_order`] as they come from the reading thread,
+/// with those to be taken again first (prepared again, in order).
+struct Taken<'f, 'c> {
+    files: &'f [(&'c Config, ReadyFile)],
+    ready: &'f std::sync::mpsc::Receiver<Option<Prepared>>,
+    /// Files `index`, `index + 1`, ... to be taken before the reader's next.
+    again: VecDeque<Prepared>,
+}
+
+impl Taken<'_, '_> {
+    /// File `index`, the next one in order.
+    fn take(&mut self, index: usize) -> Option<Prepared> {
+        if let Some(p) = self.again.pop_front() {
+            return Some(p);
+        }
+        let (config, file) = self.files.get(index)?;
+        let p = self.ready.recv().ok()?;
+        Some(p.unwrap_or_else(|| prepare(config, file, SystemTime::now())))
+    }
+
+    /// File `index` read and parsed again (its records went to a
+    /// transaction that was rolled back), to be taken next.
+    fn again(&mut self, index: usize) {
+        if let Some((config, file)) = self.files.get(index) {
+            self.again
+                .push_front(prepare(config, file, SystemTime::now()));
+        }
+    }
+}
+
+/// Whether a prepared file can be computed while the one before it
+/// commits: a small file read and parsed whole, not to be rejected whole.
+/// Others (large, unreadable, quarantined whole) take the plain way.
+fn overlappable(config: &Config, p: &Prepared) -> bool {
+    p.read.is_ok()
+        && match &p.parsed {
+            Some(Ok(parsed)) => parsed.errors.is_empty() || config.bad_rows != BadRows::RejectFile,
+            _ => false,
+        }
+}
+
+/// Where [`run_ahead`] stopped.
+struct Run {
+    /// The next file to take.
+    next: usize,
+    /// The caller's `each` said stop.
+    stopped: bool,
+    /// The next file must take the plain way.
+    plain: bool,
+}
+
+/// A file whose transaction was ended (to commit) and not yet settled.
+struct InFlight {
+    index: usize,
+    prepared: Prepared,
+    queued: Queued,
+}
+
+/// Stores files from `first` on, each in its own transaction, computing
+/// each while the one before it commits (see [`Start::Assumed`]), until a
+/// file must take the plain way, the files run out, a stop is asked, or a
+/// transaction fails. A file is reported to `each` and moved only once its
+/// commit is known; a file computed on assumptions that turned out wrong
+/// (the file before it failed, or the store was not as assumed) is rolled
+/// back and taken again.
+#[allow(clippy::too_many_arguments)]
+fn run_ahead<'t, 'c: 't>(
+    b: &mut Behind<'t>,
+    files_in: &mut Taken<'_, 'c>,
+    first: usize,
+    cache: &mut SeriesCache,
+    stop: &AtomicBool,
+    spent: &std::sync::mpsc::Sender<Prepared>,
+    each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
+) -> Run {
+    let files = files_in.files;
+    let mut index = first;
+    let mut in_flight: Option<InFlight> = None;
+    let mut start = Start::Read;
+    loop {
+        let current = if index < files.len() && !stop.load(Ordering::SeqCst) {
+            files_in.take(index)
+        } else {
+            None
+        };
+        let Some(mut prepared) = current else {
+            // Done (or stopping): settle the file in flight.
+            return match in_flight.take() {
+                None => Run {
+                    next: index,
+                    stopped: false,
+                    plain: false,
+                },
+                Some(f) => match settle(b, files, f, cache, spent, each) {
+                    Settled::Done(flow) | Settled::Failed(flow) => Run {
+                        next: index,
+                        stopped: flow == Flow::Stop,
+                        plain: false,
+                    },
+                    Settled::Again(at) => {
+                        files_in.again(at);
+                        Run {
+                            next: at,
+                            stopped: false,
+                            plain: false,
+                        }
+                    }
+                },
+            };
+        };
+        let (config, file) = &files[index];
+        if !overlappable(config, &prepared) {
+            files_in.again.push_front(prepared);
+            return match in_flight
+                .take()
+                .map(|f| settle(b, files, f, cache, spent, each))
+            {
+                None | Some(Settled::Done(Flow::Continue) | Settled::Failed(Flow::Continue)) => {
+                    Run {
+                        next: index,
+                        stopped: false,
+                        plain: false,
+                    }
+                }
+                Some(Settled::Done(Flow::Stop) | Settled::Failed(Flow::Stop)) => Run {
+                    next: index,
+                    stopped: true,
+                    plain: false,
+                },
+                Some(Settled::Again(at)) => {
+                    // This file was not touched: it stays first in line
+                    // after the one taken again.
+                    files_in.again(at);
+                    Run {
+                        next: at,
+                        stopped: false,
+                        plain: false,
+                    }
+                }
+            };
+        }
+        let computed = compute_ahead(b, config, cache, file, &mut prepared, &start);
+        // This file's transaction is still open: the one before it is
+        // settled first.
+        if let Some(f) = in_flight.take() {
+            match settle(b, files, f, cache, spent, each) {
+                Settled::Done(Flow::Continue) => {}
+                Settled::Failed(Flow::Continue) => {
+                    // Computed on the one before it, which failed: again.
+                    b.end(false);
+                    let _ = b.outcome();
+                    files_in.again(index);
+                    return Run {
+                        next: index,
+                        stopped: false,
+                        plain: false,
+                    };
+                }
+                Settled::Done(Flow::Stop) | Settled::Failed(Flow::Stop) => {
+                    // Not this file: rolled back, it stays in the inbox.
+                    b.end(false);
+                    let _ = b.outcome();
+                    cache.clear();
+                    return Run {
+                        next: index,
+                        stopped: true,
+                        plain: false,
+                    };
+                }
+                Settled::Again(at) => {
+                    // Computed on the one before it: both again.
+                    b.end(false);
+                    let _ = b.outcome();
+                    cache.clear();
+                    files_in.again(index);
+                    files_in.again(at);
+                    return Run {
+                        next: at,
+                        stopped: false,
+                        plain: false,
+                    };
+                }
+            }
+        }
+        match computed {
+            Ok(Some(queued)) => {
+                b.end(true);
+                start = match cache.revision {
+                    Some(revision) => Start::Assumed {
+                        revision,
+                        next_ids: queued.next_ids,
+                        file_id: crate::store::FileId(queued.file_id.0 + 1),
+                    },
+                    None => Start::Read,
+                };
+                in_flight = Some(InFlight {
+                    index,
+                    prepared,
+                    queued,
+                });
+                index += 1;
+            }
+            Ok(None) => {
+                // The plain way (same content stored already, or a file
+                // that changed its mind part way).
+                b.end(false);
+                let _ = b.outcome();
+                files_in.again(index);
+                return Run {
+                    next: index,
+                    stopped: false,
+                    plain: true,
+                };
+            }
+            Err(e) => {
+                b.end(false);
+                let _ = b.outcome();
+                cache.clear();
+                if matches!(e, PipelineError::Store(StoreError::NotAsAssumed { .. })) {
+                    debug!(file = %file.relative.display(), error = %e, "computed again");
+                    files_in.again(index);
+                    return Run {
+                        next: index,
+                        stopped: false,
+                        plain: false,
+                    };
+                }
+                let _ = spent.send(prepared);
+                index += 1;
+                start = Start::Read;
+                if each(index - 1, file, Err(e)) == Flow::Stop {
+                    return Run {
+                        next: index,
+                        stopped: true,
+                        plain: false,
+                    };
+                }
+            }
+        }
+    }
+}
+
+/// What became of a file in flight.
+enum Settled {
+    /// Committed and reported to `each`, which said this.
+    Done(Flow),
+    /// Failed and reported to `each`, which said this.
+    Failed(Flow),
+    /// Rolled back, to be taken again from this index.
+    Again(usize),
+}
+
+/// Waits for the commit of the file in flight, then moves it and reports it.
+fn settle(
+    b: &mut Behind<'_>,
+    files: &[(&Config, ReadyFile)],
+    f: InFlight,
+    cache: &mut SeriesCache,
+    spent: &std::sync::mpsc::Sender<Prepared>,
+    each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
+) -> Settled {
+    let Some((config, file)) = files.get(f.index) else {
+        unreachable!("BUG: a file in flight is one of the files");
+    };
+    match b.outcome() {
+        Ok(()) => {
+            let _span = info_span!("file", file = %file.relative.display()).entered();
+            let result = committed(config, file, &f.prepared, f.queued.counts, f.queued.refits);
+            let _ = spent.send(f.prepared);
+            Settled::Done(each(f.index, file, result))
+        }
+        Err(StoreError::NotAsAssumed { what }) => {
+            debug!(file = %file.relative.display(), %what, "not as assumed; computed again");
+            cache.clear();
+            Settled::Again(f.index)
+        }
+        Err(e) => {
+            cache.clear();
+            let _ = spent.send(f.prepared);
+            Settled::Failed(each(f.index, file, Err(e.into())))
+        }
+    }
+}
+
+/// After a file's commit: logs it, moves it out of the inbox.
+fn committed(
+    config: &Config,
+    file: &ReadyFile,
+    prepared: &Prepared,
+    counts: FileCounts,
+    refits: usize,
+) -> Result<Outcome, PipelineError> {
+    info!(
+        new = counts.new,
+        same = counts.same,
+        conflict = counts.conflict,
+        bad = counts.bad,
+        refits,
+        "file committed"
+    );
+    crash_point("after-commit");
+    let moved_to = move_done(
+        config,
+        file,
+        prepared.now,
+        prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
+    )?;
+    Ok(Outcome::Ingested {
+        counts,
+        refits,
+        moved_to,
+    })
+}
+
+/// Computes a small file read and parsed whole into the current
+/// transaction (see [`store_file_behind`]); `None` when it must take the
+/// plain way instead (its content stored already, or unreadable after
+/// all), its transaction to be rolled back.
+fn compute_ahead<'t, 'c: 't>(
+    b: &mut Behind<'t>,
+    config: &'c Config,
+    cache: &mut SeriesCache,
+    file: &ReadyFile,
+    prepared: &mut Prepared,
+    start: &Start,
+) -> Result<Option<Queued>, PipelineError> {
+    let _span = info_span!("file", file = %file.relative.display()).entered();
+    let now = prepared.now;
+    let at = clock::rfc3339(now);
+    let name = file.relative.to_string_lossy().into_owned();
+    let (sha, size) = match &prepared.read {
+        Ok((sha, size, _)) => (sha.clone(), *size),
+        Err(_) => return Ok(None),
+    };
+    // A file computed ahead has this checked by its transaction.
+    if matches!(start, Start::Read) && b.tx()?.file_by_hash(&sha)?.is_some() {
+        return Ok(None);
+    }
+    let (feed, _) = config.feed_for(&file.relative);
+    let whole = match prepared.parsed.take() {
+        Some(Ok(p)) => p,
+        other => {
+            prepared.parsed = other;
+            return Ok(None);
+        }
+    };
+    let survey = Survey::of(&whole);
+    let mut whole = Some(whole);
+    let mut handed = Spent::default();
+    let mut next_chunk =
+        || -> Result<Option<records::ParsedFile>, records::FileError> { Ok(whole.take()) };
+    let result = store_file_behind(
+        b,
+        config,
+        cache,
+        &FileMeta {
+            name: &name,
+            sha: &sha,
+            size,
+            feed,
+        },
+        &mut FileRows {
+            next: &mut next_chunk,
+            survey: &survey,
+            spent: &mut handed,
+        },
+        &at,
+        clock::unix_seconds(now),
+        start,
+    );
+    // Handed back for freeing off this thread.
+    prepared.parsed = handed.parsed.map(Ok);
+    prepared.stored = handed.records;
+    Ok(result?.ok())
 }
 
 fn process_file_inner(
@@ -469,26 +872,7 @@ fn process_file_inner(
             return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
         }
     };
-    info!(
-        new = counts.new,
-        same = counts.same,
-        conflict = counts.conflict,
-        bad = counts.bad,
-        refits,
-        "file committed"
-    );
-    crash_point("after-commit");
-    let moved_to = move_done(
-        config,
-        file,
-        now,
-        prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
-    )?;
-    Ok(Outcome::Ingested {
-        counts,
-        refits,
-        moved_to,
-    })
+    committed(config, file, prepared, counts, refits)
 }
 
 /// Fault injection for the fault suite (tests/faults.rs): when the
@@ -799,43 +1183,128 @@ fn store_file(
     // The rows are written on a second thread while this one computes the
     // next ones; every read waits for the writes queued before it.
     write_behind(tx, |b| {
-        store_file_behind(b, config, cache, meta, rows, at, now_unix)
+        match store_file_behind(b, config, cache, meta, rows, at, now_unix, &Start::Read)? {
+            Ok(done) => {
+                b.commit()?;
+                Ok(Ok((done.counts, done.refits)))
+            }
+            // Dropped unended: rolled back.
+            Err(e) => Ok(Err(e)),
+        }
     })
+}
+
+/// How a file's transaction learns what the store holds before it.
+#[derive(Debug, Clone, Copy)]
+enum Start {
+    /// Read from the store (the first file of a run, or any file whose
+    /// transaction begins only once the one before has committed).
+    Read,
+    /// Assumed from the file before it, still being committed, so that
+    /// this one is computed meanwhile: the store revision, the next row
+    /// ids and the file's id. The transaction's first job checks them,
+    /// with the file's content and record ids not stored yet; if any is
+    /// not as assumed, the transaction fails with
+    /// [`StoreError::NotAsAssumed`] and the file is computed again.
+    Assumed {
+        revision: i64,
+        next_ids: (i64, i64),
+        file_id: crate::store::FileId,
+    },
+}
+
+/// A file whose rows are all queued and whose transaction can end.
+#[derive(Debug, Clone, Copy)]
+struct Queued {
+    counts: FileCounts,
+    refits: usize,
+    file_id: crate::store::FileId,
+    /// The next record and fit row ids after this file's.
+    next_ids: (i64, i64),
 }
 
 /// [`store_file`] inside the file's transaction: `b.tx()` for the
 /// transaction itself (after the writes queued so far), `b.later` for
 /// writes nothing below reads back before the commit.
 #[allow(clippy::too_many_arguments)]
-fn store_file_behind(
-    b: &mut Behind<'_>,
-    config: &Config,
+fn store_file_behind<'t, 'c: 't>(
+    b: &mut Behind<'t>,
+    config: &'c Config,
     cache: &mut SeriesCache,
     meta: &FileMeta<'_>,
     rows: &mut FileRows<'_>,
     at: &str,
     now_unix: i64,
-) -> Result<Result<(FileCounts, usize), records::FileError>, PipelineError> {
+    start: &Start,
+) -> Result<Result<Queued, records::FileError>, PipelineError> {
     let FileMeta {
         name,
         sha,
         size,
         feed,
     } = *meta;
-    // Checked inside the write transaction: no verdict can slip in between.
-    let revision = b.tx()?.revision()?;
-    if cache.revision != Some(revision) {
-        cache.clear();
-        cache.revision = Some(revision);
-    }
-    let ids = b.tx()?.ids();
-    let file_id = b.tx()?.insert_file(&NewFile {
-        name,
-        sha256: sha,
-        size,
-        arrived_at: at,
-        feed,
-    })?;
+    let (ids, file_id) = match *start {
+        Start::Read => {
+            // Checked inside the write transaction: no verdict can slip in between.
+            let revision = b.tx()?.revision()?;
+            if cache.revision != Some(revision) {
+                cache.clear();
+                cache.revision = Some(revision);
+            }
+            let ids = b.tx()?.ids();
+            let file_id = b.tx()?.insert_file(&NewFile {
+                name,
+                sha256: sha,
+                size,
+                arrived_at: at,
+                feed,
+            })?;
+            (ids, file_id)
+        }
+        Start::Assumed {
+            revision,
+            next_ids,
+            file_id,
+        } => {
+            let ids = crate::store::IdCounters::starting_at(next_ids);
+            let shared = Arc::clone(&ids);
+            let (name, sha, at, feed) = (
+                name.to_string(),
+                sha.to_string(),
+                at.to_string(),
+                feed.to_string(),
+            );
+            b.later(move |tx| {
+                let differs = |what: String| Err(StoreError::NotAsAssumed { what });
+                let now = tx.revision()?;
+                if now != revision {
+                    return differs(format!("store revision {now}, not {revision}"));
+                }
+                if tx.first_ids() != next_ids {
+                    return differs(format!(
+                        "next row ids {:?}, not {next_ids:?}",
+                        tx.first_ids()
+                    ));
+                }
+                if let Some(first) = tx.file_by_hash(&sha)? {
+                    return differs(format!("the same content is stored as {}", first.name));
+                }
+                let id = tx.insert_file(&NewFile {
+                    name: &name,
+                    sha256: &sha,
+                    size,
+                    arrived_at: &at,
+                    feed: &feed,
+                })?;
+                if id != file_id {
+                    return differs(format!("file id {}, not {}", id.0, file_id.0));
+                }
+                tx.adopt_ids(shared);
+                Ok(())
+            });
+            (ids, file_id)
+        }
+    };
     let mut counts = FileCounts::default();
     let mut touched: HashMap<String, Touched> = HashMap::default();
     let mut order: Vec<String> = Vec::new();
@@ -857,15 +1326,35 @@ fn store_file_behind(
                     .try_for_each(|e| tx.insert_bad_row(file_id, e))
             });
         }
+        // Shared with the writing thread, which writes them in batches.
+        let records = Arc::new(std::mem::take(&mut parsed.records));
         // Ids stored by earlier files: those records take the slow path (same
         // record again, or a conflict); all others are written in batches.
         // Taking the transaction back here also bounds memory: the writing
-        // thread is never more than one chunk of records behind.
-        let stored = b
-            .tx()?
-            .stored_ids(parsed.records.iter().map(|r| r.record_id.as_str()))?;
-        // Shared with the writing thread, which writes them in batches.
-        let records = Arc::new(std::mem::take(&mut parsed.records));
+        // thread is never more than one chunk of records behind. A file
+        // computed ahead (a whole small one) assumes none, and its
+        // transaction checks that.
+        let stored = match start {
+            Start::Read => b
+                .tx()?
+                .stored_ids(records.iter().map(|r| r.record_id.as_str()))?,
+            Start::Assumed { .. } => {
+                let ours = Arc::clone(&records);
+                b.later(move |tx| {
+                    let found = tx.stored_ids(ours.iter().map(|r| r.record_id.as_str()))?;
+                    match found.iter().next() {
+                        None => Ok(()),
+                        Some(one) => Err(StoreError::NotAsAssumed {
+                            what: format!(
+                                "{} of its record ids are stored already, {one} among them",
+                                found.len()
+                            ),
+                        }),
+                    }
+                });
+                Default::default()
+            }
+        };
         let mut batch = RecordBatch::new(Arc::clone(&records));
         for (index, record) in records.iter().enumerate() {
             let key = record.series.as_str();
@@ -1374,36 +1863,45 @@ fn store_file_behind(
     if !heads.is_empty() {
         b.later(move |tx| heads.iter().try_for_each(|h| tx.save_heads(h)));
     }
-    // Before the transaction is taken back: the rows still being written
-    // meanwhile.
+    // While the rows are still being written.
     let causes = rank_flagged(config, cache, &touched, &flagged, name);
-    let findings = raise_findings(
-        b.tx()?,
-        config,
-        cache,
-        rows.survey,
-        &touched,
-        &flagged,
-        &causes,
-        &plain,
-        &trends,
-        (file_id, name),
-        at,
-        now_unix,
-    )?;
-    let tx = b.finish()?;
-    tx.finish_file(file_id, outcome, counts, None)?;
-    let seal = tx.seal(SealScope::File(file_id.0))?;
-    tx.append_audit(
-        at,
-        AuditKind::FileIngested,
-        name,
-        &format!(
-            "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted:\n{refit_list}{seal}",
-            counts.new, counts.same, counts.conflict, counts.bad
-        ),
-    )?;
-    tx.commit()?;
+    let work = FindingsWork::gather(cache, &touched, rows.survey, flagged, causes, plain, trends);
+    // The findings, the file's row and its seal and audit entry are written
+    // last, on the writing thread, in the file's transaction; the caller
+    // ends it.
+    {
+        let (name, sha, feed, at) = (
+            name.to_string(),
+            sha.to_string(),
+            feed.to_string(),
+            at.to_string(),
+        );
+        b.later(move |tx| {
+            let findings = if work.is_empty() {
+                0
+            } else {
+                raise_findings(tx, config, &work, (file_id, &name), &at, now_unix)?
+            };
+            tx.finish_file(file_id, outcome, counts, None)?;
+            let seal = tx.seal(SealScope::File(file_id.0))?;
+            tx.append_audit(
+                &at,
+                AuditKind::FileIngested,
+                &name,
+                &format!(
+                    "sha256 {sha}; feed {feed}; {} new, {} already stored, {} conflicts, {} rows set aside; {refits} series refitted:\n{refit_list}{seal}",
+                    counts.new, counts.same, counts.conflict, counts.bad
+                ),
+            )?;
+            if findings > 0 {
+                info!(file = %name, findings, "findings raised");
+            }
+            Ok(())
+        });
+    }
+    let next_ids = ids.next();
+    // The cache moves on as if the transaction commits: if it does not,
+    // the caller clears the cache.
     for (key, mut t) in touched {
         if let Some(p) = cache.points.get_mut(&key) {
             p.append(&mut t.new_points);
@@ -1415,10 +1913,12 @@ fn store_file_behind(
     if cache.points.values().map(Vec::len).sum::<usize>() > POINTS_KEPT_MAX {
         cache.points = HashMap::default();
     }
-    if findings > 0 {
-        info!(findings, "findings raised");
-    }
-    Ok(Ok((counts, refits)))
+    Ok(Ok(Queued {
+        counts,
+        refits,
+        file_id,
+        next_ids,
+    }))
 }
 
 /// The ln(y)-on-x state of a series' points, when every y is positive.
@@ -1552,92 +2052,168 @@ fn rank_flagged(
     ranked
 }
 
-/// Raises the file's findings (records flagged by the rules, conflicts,
-/// refused rows, trend changes) in its transaction. Returns how many.
-#[allow(clippy::too_many_arguments)]
-fn raise_findings(
-    tx: &crate::store::Tx<'_>,
-    config: &Config,
-    cache: &mut SeriesCache,
-    survey: &Survey,
-    touched: &HashMap<String, Touched>,
-    flagged: &[Flagged],
-    causes: &[Vec<Candidate>],
-    plain: &[PlainFinding],
-    trends: &[(String, TrendChange, Option<LineFit>, LineFit)],
-    file: (crate::store::FileId, &str),
-    at: &str,
-    now_unix: i64,
-) -> Result<usize, PipelineError> {
-    let mut raised = 0;
-    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::default();
-    if !flagged.is_empty() {
-        for (f, causes) in flagged.iter().zip(causes) {
-            let record = &f.record;
-            let key = record.series.as_str();
+/// What a file's findings need of its series, taken out of the computing
+/// state so that they can be raised on the writing thread while the
+/// computing one goes on with the next file.
+struct SeriesView {
+    row: SeriesRow,
+    transform: Transform,
+    awaiting: Vec<(f64, f64)>,
+    /// The series' fit points when kept in memory (else walked from the
+    /// store when a chart or the sampling advice needs them).
+    points: Option<Vec<(f64, f64)>>,
+    robust: Option<(f64, f64, f64)>,
+    /// The id of the file's last record of the series.
+    last_id: Option<String>,
+}
+
+/// A file's findings, owned: raised by [`raise_findings`] inside the
+/// file's transaction.
+struct FindingsWork {
+    series: HashMap<String, SeriesView>,
+    flagged: Vec<Flagged>,
+    causes: Vec<Vec<Candidate>>,
+    plain: Vec<PlainFinding>,
+    trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)>,
+    errors: usize,
+    first_errors: Vec<RecordError>,
+}
+
+impl FindingsWork {
+    fn gather(
+        cache: &SeriesCache,
+        touched: &HashMap<String, Touched>,
+        survey: &Survey,
+        flagged: Vec<Flagged>,
+        causes: Vec<Vec<Candidate>>,
+        plain: Vec<PlainFinding>,
+        trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)>,
+    ) -> FindingsWork {
+        let mut series: HashMap<String, SeriesView> = HashMap::default();
+        let keys = flagged
+            .iter()
+            .map(|f| f.record.series.as_str())
+            .chain(plain.iter().map(|p| p.series.as_str()))
+            .chain(trends.iter().map(|t| t.0.as_str()));
+        for key in keys {
+            if series.contains_key(key) {
+                continue;
+            }
             let Some(t) = touched.get(key) else {
                 continue;
             };
-            // Points feed the chart and the sampling advice; a message held
-            // for a digest has no chart.
-            let high_leverage = f.judgement.kinds.contains(&RecordKind::HighLeverage);
-            let draw_chart = !raise::all_held(tx, config, Some(key), now_unix)?;
-            // Read once per series and file: a backlog file can flag dozens
-            // of records of one long series.
-            let points: &[(f64, f64)] = if high_leverage || draw_chart {
-                if !series_points.contains_key(key) {
-                    // From the points kept for the robust slope when there
-                    // are (those before this file, then this file's),
-                    // else walked from the store.
-                    let points = match cache.points.get(key) {
-                        Some(before) => {
-                            let mut all = Vec::with_capacity(before.len() + t.new_points.len());
-                            all.extend_from_slice(before);
-                            all.extend_from_slice(&t.new_points);
-                            #[cfg(debug_assertions)]
-                            {
-                                let stored = tx.fit_points(&t.row)?;
-                                debug_assert_eq!(all, stored, "kept points of {key}");
-                            }
-                            all
-                        }
-                        None => tx.fit_points(&t.row)?,
-                    };
-                    series_points.insert(key, points);
-                }
-                series_points.get(key).map_or(&[], Vec::as_slice)
-            } else {
-                &[]
-            };
-            let robust = cache.robust.get(key).copied();
-            raise::record_finding(
-                tx,
-                config,
-                &raise::RecordCase {
-                    record,
-                    row_id: f.row_id,
-                    series: &t.row,
+            // The points kept for the robust slope (those before this file,
+            // then this file's), when there are.
+            let points = cache.points.get(key).map(|before| {
+                let mut all = Vec::with_capacity(before.len() + t.new_points.len());
+                all.extend_from_slice(before);
+                all.extend_from_slice(&t.new_points);
+                all
+            });
+            series.insert(
+                key.to_string(),
+                SeriesView {
+                    row: t.row.clone(),
                     transform: t.settings.transform,
-                    arrival: &f.arrival,
-                    judgement: &f.judgement,
-                    left_out: f.left_out,
-                    fit_point: f.fit_point,
+                    awaiting: t.awaiting.clone(),
                     points,
-                    awaiting: &t.awaiting,
-                    causes,
-                    robust,
-                    draw_chart,
-                    span_before: Some(f.span_before),
+                    robust: cache.robust.get(key).copied(),
+                    last_id: t.last.as_ref().map(|(_, id)| id.clone()),
                 },
-                file,
-                at,
-                now_unix,
-            )?;
-            raised += 1;
+            );
+        }
+        FindingsWork {
+            series,
+            flagged,
+            causes,
+            plain,
+            trends,
+            errors: survey.errors,
+            first_errors: if survey.errors > 0 {
+                survey.first_errors.clone()
+            } else {
+                Vec::new()
+            },
         }
     }
-    for p in plain {
-        let series = touched.get(&p.series).map(|t| &t.row);
+
+    fn is_empty(&self) -> bool {
+        self.flagged.is_empty()
+            && self.plain.is_empty()
+            && self.trends.is_empty()
+            && self.errors == 0
+    }
+}
+
+/// Raises a file's findings inside its transaction; returns how many.
+fn raise_findings(
+    tx: &crate::store::Tx<'_>,
+    config: &Config,
+    work: &FindingsWork,
+    file: (crate::store::FileId, &str),
+    at: &str,
+    now_unix: i64,
+) -> Result<usize, StoreError> {
+    let mut raised = 0;
+    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::default();
+    for (f, causes) in work.flagged.iter().zip(&work.causes) {
+        let record = &f.record;
+        let key = record.series.as_str();
+        let Some(t) = work.series.get(key) else {
+            continue;
+        };
+        // Points feed the chart and the sampling advice; a message held
+        // for a digest has no chart.
+        let high_leverage = f.judgement.kinds.contains(&RecordKind::HighLeverage);
+        let draw_chart = !raise::all_held(tx, config, Some(key), now_unix)?;
+        // Read once per series and file: a backlog file can flag dozens
+        // of records of one long series.
+        let points: &[(f64, f64)] = if high_leverage || draw_chart {
+            if !series_points.contains_key(key) {
+                let points = match &t.points {
+                    Some(all) => {
+                        #[cfg(debug_assertions)]
+                        {
+                            let stored = tx.fit_points(&t.row)?;
+                            debug_assert_eq!(all, &stored, "kept points of {key}");
+                        }
+                        all.clone()
+                    }
+                    None => tx.fit_points(&t.row)?,
+                };
+                series_points.insert(key, points);
+            }
+            series_points.get(key).map_or(&[], Vec::as_slice)
+        } else {
+            &[]
+        };
+        raise::record_finding(
+            tx,
+            config,
+            &raise::RecordCase {
+                record,
+                row_id: f.row_id,
+                series: &t.row,
+                transform: t.transform,
+                arrival: &f.arrival,
+                judgement: &f.judgement,
+                left_out: f.left_out,
+                fit_point: f.fit_point,
+                points,
+                awaiting: &t.awaiting,
+                causes,
+                robust: t.robust,
+                draw_chart,
+                span_before: Some(f.span_before),
+            },
+            file,
+            at,
+            now_unix,
+        )?;
+        raised += 1;
+    }
+    for p in &work.plain {
+        let series = work.series.get(&p.series).map(|t| &t.row);
         raise::plain_finding(
             tx,
             config,
@@ -1653,8 +2229,8 @@ fn raise_findings(
         )?;
         raised += 1;
     }
-    if survey.errors > 0 {
-        let listed = &survey.first_errors;
+    if work.errors > 0 {
+        let listed = &work.first_errors;
         let ids: Vec<String> = listed.iter().filter_map(|e| e.record_id.clone()).collect();
         let rows: Vec<serde_json::Value> = listed
             .iter()
@@ -1664,7 +2240,7 @@ fn raise_findings(
             })
             .collect();
         let first = listed.first().map(|e| e.to_string()).unwrap_or_default();
-        let more = if survey.errors > listed.len() {
+        let more = if work.errors > listed.len() {
             format!(
                 " ({} listed here; all are in the store's quarantined rows)",
                 listed.len()
@@ -1674,7 +2250,7 @@ fn raise_findings(
         };
         let summary = format!(
             "{} row(s) of {} set aside by validation; the rest of the file was stored{more}. First: {first}",
-            survey.errors, file.1
+            work.errors, file.1
         );
         raise::plain_finding(
             tx,
@@ -1692,8 +2268,8 @@ fn raise_findings(
         )?;
         raised += 1;
     }
-    for (key, change, before, after) in trends {
-        let Some(t) = touched.get(key) else {
+    for (key, change, before, after) in &work.trends {
+        let Some(t) = work.series.get(key) else {
             continue;
         };
         raise::trend_finding(
@@ -1704,7 +2280,7 @@ fn raise_findings(
             file,
             before.as_ref(),
             after,
-            t.last.as_ref().map(|(_, id)| id.as_str()),
+            t.last_id.as_deref(),
             at,
             now_unix,
         )?;
@@ -1837,4 +2413,188 @@ pub fn relative_to(inbox: &Path, path: &Path) -> PathBuf {
     path.strip_prefix(inbox)
         .map(Path::to_path_buf)
         .unwrap_or_else(|_| path.to_path_buf())
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    //! A file computed while the one before it commits checks, inside its
+    //! own transaction, everything it assumed; each wrong assumption rolls
+    //! it back whole.
+    use super::*;
+
+    fn deliver(inbox: &Path, name: &str, first_id: usize, n: usize, shift: f64) -> ReadyFile {
+        let mut text = String::from("record_id,series,x,y\n");
+        for i in 0..n {
+            let x = 2000.0 + (first_id + i) as f64 * 0.25;
+            let y = 5.0 + 0.1 * x.sin() + shift;
+            text.push_str(&format!("W{:04},MW-7/nitrate,{x},{y}\n", first_id + i));
+        }
+        let path = inbox.join(name);
+        std::fs::write(&path, text).unwrap();
+        ReadyFile {
+            size: std::fs::metadata(&path).unwrap().len(),
+            path,
+            relative: name.into(),
+            modified: SystemTime::UNIX_EPOCH,
+        }
+    }
+
+    /// A number read through a connection of its own (committed rows).
+    fn count(db: &Path, sql: &str) -> i64 {
+        rusqlite::Connection::open(db)
+            .unwrap()
+            .query_row(sql, [], |r| r.get(0))
+            .unwrap()
+    }
+
+    /// What a second file may assume after the first one committed.
+    fn assumed(db: &Path, cache: &SeriesCache) -> Start {
+        Start::Assumed {
+            revision: cache.revision.unwrap(),
+            next_ids: (
+                count(db, "SELECT MAX(id) + 1 FROM records"),
+                count(db, "SELECT MAX(id) + 1 FROM fits"),
+            ),
+            file_id: crate::store::FileId(count(db, "SELECT MAX(id) + 1 FROM source_files")),
+        }
+    }
+
+    /// Computes `file` ahead on `start` and commits; the commit's outcome.
+    fn ahead(
+        config: &Config,
+        store: &mut Store,
+        cache: &mut SeriesCache,
+        file: &ReadyFile,
+        start: &Start,
+    ) -> Result<(), StoreError> {
+        let mut prepared = prepare(config, file, SystemTime::now());
+        let tx = store.begin().unwrap();
+        // A read while computing (the cache lacks the series) already
+        // meets a wrong assumption; otherwise the commit does.
+        write_behind(tx, |b| {
+            match compute_ahead(b, config, cache, file, &mut prepared, start) {
+                Ok(Some(_)) => b.commit(),
+                Ok(None) => panic!("the file should not take the plain way"),
+                // Left unended: rolled back.
+                Err(PipelineError::Store(e)) => Err(e),
+                Err(e) => panic!("{e}"),
+            }
+        })
+    }
+
+    /// A store holding the first file, and the second file to come.
+    fn setup() -> (tempfile::TempDir, Config, Store, SeriesCache) {
+        let dir = tempfile::tempdir().unwrap();
+        let config = Config::defaults_in(dir.path());
+        std::fs::create_dir_all(&config.inbox).unwrap();
+        let mut store = Store::open(&config.database).unwrap();
+        let mut cache = SeriesCache::new();
+        let first = deliver(&config.inbox, "a.csv", 1, 12, 0.0);
+        let done = process_file(&config, &mut store, &mut cache, &first, SystemTime::now());
+        assert!(matches!(done, Ok(Outcome::Ingested { .. })), "{done:?}");
+        (dir, config, store, cache)
+    }
+
+    fn refused_whole(db: &Path, outcome: Result<(), StoreError>, what: &str) {
+        match outcome {
+            Err(StoreError::NotAsAssumed { what: said }) => {
+                assert!(said.contains(what), "{said} should say {what}")
+            }
+            other => panic!("expected a wrong assumption about {what}, got {other:?}"),
+        }
+        assert_eq!(count(db, "SELECT COUNT(*) FROM records"), 12);
+        assert_eq!(count(db, "SELECT COUNT(*) FROM source_files"), 1);
+        assert_eq!(count(db, "SELECT COUNT(*) FROM fits"), 1);
+    }
+
+    #[test]
+    fn right_assumptions_commit_the_same_rows_as_reading_them() {
+        let (_dir, config, mut store, mut cache) = setup();
+        let start = assumed(&config.database, &cache);
+        let next = deliver(&config.inbox, "b.csv", 13, 6, 0.0);
+        ahead(&config, &mut store, &mut cache, &next, &start).unwrap();
+        assert_eq!(count(&config.database, "SELECT COUNT(*) FROM records"), 18);
+        assert_eq!(count(&config.database, "SELECT MAX(id) FROM records"), 18);
+        assert_eq!(
+            count(
+                &config.database,
+                "SELECT COUNT(*) FROM records WHERE file_id = 2"
+            ),
+            6
+        );
+        assert_eq!(count(&config.database, "SELECT MAX(version) FROM fits"), 2);
+        assert!(crate::verify::verify(&store).unwrap().ok());
+    }
+
+    #[test]
+    fn a_verdict_given_meanwhile_is_caught_by_the_store_revision() {
+        let (_dir, config, mut store, mut cache) = setup();
+        let start = assumed(&config.database, &cache);
+        let tx = store.begin().unwrap();
+        tx.bump_revision().unwrap();
+        tx.commit().unwrap();
+        let next = deliver(&config.inbox, "b.csv", 13, 6, 0.0);
+        let outcome = ahead(&config, &mut store, &mut cache, &next, &start);
+        refused_whole(&config.database, outcome, "store revision");
+    }
+
+    #[test]
+    fn rows_written_meanwhile_are_caught_by_the_next_ids() {
+        let (_dir, config, mut store, mut cache) = setup();
+        let Start::Assumed {
+            revision, file_id, ..
+        } = assumed(&config.database, &cache)
+        else {
+            unreachable!()
+        };
+        let next = deliver(&config.inbox, "b.csv", 13, 6, 0.0);
+        // As if the file before had written one record fewer.
+        let start = Start::Assumed {
+            revision,
+            next_ids: (12, 2),
+            file_id,
+        };
+        let outcome = ahead(&config, &mut store, &mut cache, &next, &start);
+        refused_whole(&config.database, outcome, "next row ids");
+        // As if it had taken another file id.
+        let mut cache = SeriesCache::new();
+        let start = Start::Assumed {
+            revision,
+            next_ids: (13, 2),
+            file_id: crate::store::FileId(file_id.0 + 1),
+        };
+        let outcome = {
+            let tx = store.begin().unwrap();
+            let revision_read = tx.revision().unwrap();
+            drop(tx);
+            cache.revision = Some(revision_read);
+            ahead(&config, &mut store, &mut cache, &next, &start)
+        };
+        refused_whole(&config.database, outcome, "file id");
+    }
+
+    #[test]
+    fn records_or_content_stored_already_are_caught() {
+        let (_dir, config, mut store, mut cache) = setup();
+        let start = assumed(&config.database, &cache);
+        // W0012 again, then new ones: the file takes the way of a
+        // resubmission instead.
+        let overlapping = deliver(&config.inbox, "b.csv", 12, 6, 0.0);
+        let outcome = ahead(&config, &mut store, &mut cache, &overlapping, &start);
+        refused_whole(
+            &config.database,
+            outcome,
+            "record ids are stored already, W0012",
+        );
+        // The first file's bytes under another name.
+        let mut cache = SeriesCache::new();
+        cache.revision = match start {
+            Start::Assumed { revision, .. } => Some(revision),
+            Start::Read => None,
+        };
+        let again = deliver(&config.inbox, "c.csv", 1, 12, 0.0);
+        let outcome = ahead(&config, &mut store, &mut cache, &again, &start);
+        refused_whole(&config.database, outcome, "same content is stored as a.csv");
+    }
 }

@@ -1,22 +1,30 @@
-//! Writing a transaction's rows on a second thread while the first goes on
+//! Writing transactions' rows on a second thread while the first goes on
 //! computing ("write-behind").
 //!
 //! A file's transaction stays one transaction on one connection; only who
 //! executes its statements changes. [`write_behind`] starts a writing
-//! thread for the span of one transaction. The computing thread hands it
-//! write jobs ([`Behind::later`]: owned rows, a closure over the [`Tx`]),
-//! which it runs in the order given, and takes the transaction back
-//! whenever it must read or write itself ([`Behind::tx`]): that call waits
-//! until every job handed over before it has run, so each statement sees
-//! exactly what it would have seen had everything run on one thread.
+//! thread that keeps the connection for a run of transactions, one after
+//! the other. The computing thread hands it write jobs ([`Behind::later`]:
+//! owned rows, a closure over the [`Tx`]), which it runs in the order
+//! given, and takes the transaction back whenever it must read or write
+//! itself ([`Behind::tx`]): that call waits until every job handed over
+//! before it has run, so each statement sees exactly what it would have
+//! seen had everything run on one thread.
 //!
-//! A failed job poisons the transaction: the jobs after it are dropped, and
-//! the next [`Behind::tx`] (at the latest the one before commit) returns
-//! its error, so the caller returns and the transaction rolls back. No
-//! commit can happen with a job lost. When no thread can be started (out
-//! of threads or memory), the jobs run at once on the calling thread under
-//! the same rules.
+//! [`Behind::end`] ends the current transaction once the jobs before it
+//! have run (commit, or rollback) without waiting for it; its outcome is
+//! taken later, in order, with [`Behind::outcome`]. The first job or read
+//! after an end begins the next transaction. So the computing thread can
+//! go on with the next file while the previous one commits.
+//!
+//! A failed job poisons its transaction: the jobs after it in the same
+//! transaction are dropped, [`Behind::tx`] returns the error, and the end
+//! rolls the transaction back and reports an error as its outcome. No
+//! commit can happen with a job lost. The transaction after it starts
+//! clean. When no thread can be started (out of threads or memory), the
+//! jobs run at once on the calling thread under the same rules.
 
+use std::collections::VecDeque;
 use std::sync::mpsc::{Receiver, Sender, channel};
 
 use super::{Result, StoreError, Tx};
@@ -24,40 +32,125 @@ use super::{Result, StoreError, Tx};
 /// A write to run on the writing thread, in order.
 pub type Job<'t> = Box<dyn FnOnce(&Tx<'t>) -> Result<()> + Send + 't>;
 
+/// The connection with the state of its current transaction; it moves
+/// between the two threads as a whole.
+struct Slot<'t> {
+    tx: Tx<'t>,
+    /// Whether a transaction is open (after an end, the next use begins one).
+    open: bool,
+    health: Health,
+}
+
+enum Health {
+    Fine,
+    /// A job failed; its error not reported yet.
+    Failed(StoreError),
+    /// A job failed and its error was reported.
+    Reported,
+}
+
+impl<'t> Slot<'t> {
+    /// Begins the next transaction when the last one ended.
+    fn ready(&mut self) {
+        if !self.open && matches!(self.health, Health::Fine) {
+            match self.tx.renew() {
+                Ok(()) => self.open = true,
+                Err(e) => self.health = Health::Failed(e),
+            }
+        }
+    }
+
+    fn run(&mut self, job: Job<'t>) {
+        self.ready();
+        if matches!(self.health, Health::Fine)
+            && let Err(e) = job(&self.tx)
+        {
+            self.health = Health::Failed(e);
+        }
+    }
+
+    /// Whether the transaction is sound; a failure's error is returned
+    /// once, then [`StoreError::Abandoned`].
+    fn check(&mut self) -> Result<()> {
+        self.ready();
+        match std::mem::replace(&mut self.health, Health::Reported) {
+            Health::Fine => {
+                self.health = Health::Fine;
+                Ok(())
+            }
+            Health::Failed(e) => Err(e),
+            Health::Reported => Err(StoreError::Abandoned),
+        }
+    }
+
+    fn end(&mut self, commit: bool) -> Result<()> {
+        let health = std::mem::replace(&mut self.health, Health::Fine);
+        let open = std::mem::replace(&mut self.open, false);
+        let failed = match health {
+            Health::Fine => None,
+            Health::Failed(e) => Some(e),
+            Health::Reported => Some(StoreError::Abandoned),
+        };
+        match failed {
+            None if open => self.tx.end(commit),
+            // Nothing was begun: nothing to end.
+            None => Ok(()),
+            Some(e) => {
+                if open {
+                    let _ = self.tx.end(false);
+                }
+                Err(e)
+            }
+        }
+    }
+}
+
 enum ToWriter<'t> {
     /// The transaction, to run the jobs that follow on.
-    Hand(Tx<'t>),
+    Hand(Box<Slot<'t>>),
     /// A job.
     Run(Job<'t>),
     /// Send the transaction back (after the jobs before this).
     Return,
+    /// End the transaction (after the jobs before this); the outcome goes
+    /// back on the outcome channel.
+    End { commit: bool },
 }
 
 /// The computing thread's side of [`write_behind`].
 pub struct Behind<'t> {
     /// The transaction, while this thread holds it.
-    held: Option<Tx<'t>>,
+    held: Option<Slot<'t>>,
     /// The writing thread's channels; `None` when it could not be started,
     /// and jobs run at once on this thread instead.
     writer: Option<Channels<'t>>,
-    /// Without a writing thread: the error of the first job that failed.
-    failed: Option<StoreError>,
+    /// Without a writing thread: the outcomes of the ends not yet taken.
+    ended: VecDeque<Result<()>>,
 }
 
-type Channels<'t> = (Sender<ToWriter<'t>>, Receiver<(Tx<'t>, Option<StoreError>)>);
+struct Channels<'t> {
+    to_writer: Sender<ToWriter<'t>>,
+    back: Receiver<Slot<'t>>,
+    outcomes: Receiver<Result<()>>,
+}
 
-/// Runs `body` with `tx` and a writing thread for it. `body` must take the
-/// transaction back with [`Behind::finish`] to commit it; otherwise it is
-/// dropped (rolled back) when `body` returns.
+/// Runs `body` with `tx` (begun) and a writing thread for it and the
+/// transactions after it. What `body` leaves unended when it returns is
+/// rolled back.
 pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) -> R {
     std::thread::scope(|scope| {
         let (to_writer, jobs) = channel::<ToWriter<'t>>();
-        let (back, from_writer) = channel();
+        let (back_tx, back) = channel();
+        let (outcome_tx, outcomes) = channel();
         let writer = match std::thread::Builder::new()
             .name("store-writer".into())
-            .spawn_scoped(scope, move || writer(jobs, back))
+            .spawn_scoped(scope, move || writer(jobs, back_tx, outcome_tx))
         {
-            Ok(_) => Some((to_writer, from_writer)),
+            Ok(_) => Some(Channels {
+                to_writer,
+                back,
+                outcomes,
+            }),
             Err(e) => {
                 // Out of threads or memory: the same jobs, on this thread.
                 tracing::warn!(error = %e, "cannot start the store's writing thread; writing on this one");
@@ -65,36 +158,43 @@ pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) 
             }
         };
         let mut behind = Behind {
-            held: Some(tx),
+            held: Some(Slot {
+                tx,
+                open: true,
+                health: Health::Fine,
+            }),
             writer,
-            failed: None,
+            ended: VecDeque::new(),
         };
         body(&mut behind)
-        // Dropping `behind` ends the writer (dropping any transaction it
-        // holds: rolled back); the scope waits for it.
+        // Dropping `behind` ends the writer (dropping the transaction it
+        // holds: an open one rolls back); the scope waits for it.
     })
 }
 
-fn writer<'t>(jobs: Receiver<ToWriter<'t>>, back: Sender<(Tx<'t>, Option<StoreError>)>) {
-    let mut held: Option<Tx<'t>> = None;
-    let mut failed: Option<StoreError> = None;
+fn writer<'t>(jobs: Receiver<ToWriter<'t>>, back: Sender<Slot<'t>>, outcomes: Sender<Result<()>>) {
+    let mut held: Option<Slot<'t>> = None;
     for message in jobs {
         match message {
-            ToWriter::Hand(tx) => held = Some(tx),
+            ToWriter::Hand(slot) => held = Some(*slot),
             ToWriter::Run(job) => {
-                if failed.is_none()
-                    && let Some(tx) = held.as_ref()
-                    && let Err(e) = job(tx)
-                {
-                    failed = Some(e);
+                if let Some(slot) = held.as_mut() {
+                    slot.run(job);
                 }
             }
             ToWriter::Return => {
-                if let Some(tx) = held.take() {
+                if let Some(slot) = held.take() {
                     // The computing thread waits for this; if it is gone,
                     // the transaction drops here and rolls back.
-                    let _ = back.send((tx, failed.take()));
+                    let _ = back.send(slot);
                 }
+            }
+            ToWriter::End { commit } => {
+                let outcome = match held.as_mut() {
+                    Some(slot) => slot.end(commit),
+                    None => Err(StoreError::WriterLost),
+                };
+                let _ = outcomes.send(outcome);
             }
         }
     }
@@ -104,54 +204,78 @@ impl<'t> Behind<'t> {
     /// Runs `job` on the writing thread after the jobs before it; the
     /// computing thread goes on at once.
     pub fn later(&mut self, job: impl FnOnce(&Tx<'t>) -> Result<()> + Send + 't) {
-        let Some((to_writer, _)) = &self.writer else {
-            if self.failed.is_none()
-                && let Some(tx) = &self.held
-                && let Err(e) = job(tx)
-            {
-                self.failed = Some(e);
+        match &self.writer {
+            None => {
+                if let Some(slot) = self.held.as_mut() {
+                    slot.run(Box::new(job));
+                }
             }
-            return;
-        };
-        if let Some(tx) = self.held.take() {
-            // A send fails only when the writer is gone (it panicked); the
-            // next `tx` reports that.
-            let _ = to_writer.send(ToWriter::Hand(tx));
+            Some(w) => {
+                if let Some(slot) = self.held.take() {
+                    // A send fails only when the writer is gone (it
+                    // panicked); the next `tx` or `outcome` reports that.
+                    let _ = w.to_writer.send(ToWriter::Hand(Box::new(slot)));
+                }
+                let _ = w.to_writer.send(ToWriter::Run(Box::new(job)));
+            }
         }
-        let _ = to_writer.send(ToWriter::Run(Box::new(job)));
     }
 
     /// The transaction, once every job handed over has run; the error of
     /// the first job that failed, if one did (the transaction must then be
-    /// given up).
+    /// given up: its end rolls it back).
     pub fn tx(&mut self) -> Result<&Tx<'t>> {
-        if let Some(e) = self.failed.take() {
-            // Dropped here: rolled back.
-            self.held = None;
-            return Err(e);
-        }
         if self.held.is_none() {
-            let lost = || StoreError::WriterLost;
-            let (to_writer, from_writer) = self.writer.as_ref().ok_or_else(lost)?;
-            to_writer.send(ToWriter::Return).map_err(|_| lost())?;
-            let (tx, failed) = from_writer.recv().map_err(|_| lost())?;
-            if let Some(e) = failed {
-                // Dropped here: rolled back.
-                drop(tx);
-                return Err(e);
-            }
-            self.held = Some(tx);
+            let w = self.writer.as_ref().ok_or(StoreError::WriterLost)?;
+            w.to_writer
+                .send(ToWriter::Return)
+                .map_err(|_| StoreError::WriterLost)?;
+            let slot = w.back.recv().map_err(|_| StoreError::WriterLost)?;
+            self.held = Some(slot);
         }
-        match self.held.as_ref() {
-            Some(tx) => Ok(tx),
-            None => unreachable!("BUG: the transaction was taken back just above"),
+        let slot = self.held.as_mut().ok_or(StoreError::WriterLost)?;
+        slot.check()?;
+        Ok(&slot.tx)
+    }
+
+    /// Ends the current transaction once every job handed over before has
+    /// run: commits it, or rolls it back when `commit` is false or a job
+    /// failed. Does not wait; [`Behind::outcome`] gives the result.
+    pub fn end(&mut self, commit: bool) {
+        match &self.writer {
+            None => {
+                let outcome = match self.held.as_mut() {
+                    Some(slot) => slot.end(commit),
+                    None => Err(StoreError::WriterLost),
+                };
+                self.ended.push_back(outcome);
+            }
+            Some(w) => {
+                if let Some(slot) = self.held.take() {
+                    let _ = w.to_writer.send(ToWriter::Hand(Box::new(slot)));
+                }
+                // A failed send shows as a lost writer in `outcome`.
+                let _ = w.to_writer.send(ToWriter::End { commit });
+            }
         }
     }
 
-    /// The transaction back, every job run, to commit.
-    pub fn finish(&mut self) -> Result<Tx<'t>> {
-        self.tx()?;
-        self.held.take().ok_or(StoreError::WriterLost)
+    /// The outcome of the oldest end not yet taken (waits for it): `Ok`
+    /// when it committed (or rolled back as asked).
+    pub fn outcome(&mut self) -> Result<()> {
+        match &self.writer {
+            None => self
+                .ended
+                .pop_front()
+                .unwrap_or(Err(StoreError::WriterLost)),
+            Some(w) => w.outcomes.recv().unwrap_or(Err(StoreError::WriterLost)),
+        }
+    }
+
+    /// Commits the current transaction and waits for it.
+    pub fn commit(&mut self) -> Result<()> {
+        self.end(true);
+        self.outcome()
     }
 }
 
@@ -210,7 +334,7 @@ mod tests {
                     .map(|r| r.unwrap())
                     .collect()
             };
-            b.finish().unwrap().commit().unwrap();
+            b.commit().unwrap();
             (n, subjects)
         });
         assert_eq!(seen.0, 50);
@@ -230,7 +354,7 @@ mod tests {
             b.later(entry("kept?".into()));
             b.later(failing());
             b.later(|_| panic!("a job after a failed one must not run"));
-            b.finish().and_then(|tx| tx.commit())
+            b.commit()
         });
         let err = result.expect_err("the failed job must surface");
         assert!(err.to_string().contains("no_such_table"), "{err}");
@@ -247,18 +371,52 @@ mod tests {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
         let mut b = Behind {
-            held: Some(tx),
+            held: Some(Slot {
+                tx,
+                open: true,
+                health: Health::Fine,
+            }),
             writer: None,
-            failed: None,
+            ended: VecDeque::new(),
         };
         b.later(entry("a".into()));
         assert_eq!(entries_in(b.tx().unwrap()), 1);
         b.later(failing());
         b.later(|_| panic!("a job after a failed one must not run"));
-        let err = b.finish().err().expect("the failed job must surface");
+        let err = b.commit().expect_err("the failed job must surface");
         assert!(err.to_string().contains("no_such_table"), "{err}");
         drop(b);
         assert_eq!(audit_count(&store), 0, "nothing of the transaction is kept");
+    }
+
+    #[test]
+    fn transactions_follow_one_another_and_a_failed_one_takes_only_itself_down() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let (outcomes, seen) = write_behind(tx, |b| {
+            b.later(entry("first".into()));
+            b.end(true);
+            // Queued before the first commit is known: a transaction of its own.
+            b.later(entry("second".into()));
+            b.later(failing());
+            b.later(|_| panic!("a job after a failed one must not run"));
+            b.end(true);
+            b.later(entry("third".into()));
+            // A read waits for the jobs before it: it sees the first and
+            // the third entries, and none of the failed transaction's.
+            let seen = entries_in(b.tx().unwrap());
+            b.end(true);
+            b.later(entry("rolled back on purpose".into()));
+            b.end(false);
+            let outcomes: Vec<bool> = (0..4).map(|_| b.outcome().is_ok()).collect();
+            (outcomes, seen)
+        });
+        assert_eq!(outcomes, vec![true, false, true, true]);
+        assert_eq!(seen, 2);
+        assert_eq!(audit_count(&store), 2);
+        let entries = store.audit_entries().unwrap();
+        assert!(crate::store::verify_chain(&entries).is_ok());
+        assert!(store.conn.is_autocommit());
     }
 
     #[test]

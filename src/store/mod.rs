@@ -149,6 +149,23 @@ impl IdCounters {
     pub fn fit(&self) -> i64 {
         self.fits.fetch_add(1, Ordering::Relaxed)
     }
+
+    /// The next record and fit row ids, not taken.
+    pub fn next(&self) -> (i64, i64) {
+        (
+            self.records.load(Ordering::Relaxed),
+            self.fits.load(Ordering::Relaxed),
+        )
+    }
+
+    /// Counters whose next ids are `next` (records, fits): for the rows of
+    /// a transaction that is to follow the current one.
+    pub fn starting_at(next: (i64, i64)) -> Arc<IdCounters> {
+        Arc::new(IdCounters {
+            records: AtomicI64::new(next.0),
+            fits: AtomicI64::new(next.1),
+        })
+    }
 }
 
 /// A record's attributes as the JSON object stored in `attributes`.
@@ -610,6 +627,21 @@ pub enum StoreError {
     /// the transaction is rolled back.
     #[error("the store's writing thread stopped; the file's transaction was rolled back")]
     WriterLost,
+    /// A write of the transaction failed earlier (its error already
+    /// reported); the transaction was rolled back.
+    #[error("an earlier write of this transaction failed; it was rolled back")]
+    Abandoned,
+    /// A file computed while the one before it was committing assumed a
+    /// store that is not the one it met (the file before failed, another
+    /// process changed the store, or the file's content or records were
+    /// stored already). Nothing of it was kept; it is computed again.
+    #[error(
+        "the store was not as assumed when the file was computed ({what}); its transaction was rolled back"
+    )]
+    NotAsAssumed {
+        /// What differed.
+        what: String,
+    },
 }
 
 type Result<T> = std::result::Result<T, StoreError>;
@@ -1061,33 +1093,17 @@ impl Store {
     /// Starts the one transaction in which a file's records, refits and
     /// audit entries commit together or not at all.
     pub fn begin(&mut self) -> Result<Tx<'_>> {
-        let path = self.path.clone();
-        self.conn
-            .execute_batch("BEGIN IMMEDIATE")
-            .map_err(|source| StoreError::Sqlite {
-                path: path.clone(),
-                source,
-            })?;
-        // From here on, dropping the Tx rolls back.
         let mut tx = Tx {
             tx: &mut self.conn,
-            path,
+            path: self.path.clone(),
             pending_audit: std::cell::RefCell::new(None),
-            ids: Arc::new(IdCounters::default()),
+            ids: std::cell::RefCell::new(Arc::new(IdCounters::default())),
             first: seal::FirstIds::ALL,
             written: std::cell::RefCell::new(Vec::new()),
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
         };
-        // The newest audit entry is read inside the write transaction, never
-        // kept between transactions: the sender thread and the `review`
-        // command append entries from their own connections.
-        let last = audit::last_hash(tx.tx).map_err(tx.wrap())?;
-        *tx.pending_audit.get_mut() = last;
-        let first = seal::FirstIds::next(tx.tx).map_err(tx.wrap())?;
-        tx.ids.records.store(first.records, Ordering::Relaxed);
-        tx.ids.fits.store(first.fits, Ordering::Relaxed);
-        tx.first = first;
+        tx.renew()?;
         Ok(tx)
     }
 
@@ -1345,7 +1361,7 @@ pub struct Tx<'a> {
     /// The writer holds the write lock from `begin`, so nobody else can
     /// take these ids, and queued rows can chain to each other before they
     /// are written.
-    ids: Arc<IdCounters>,
+    ids: std::cell::RefCell<Arc<IdCounters>>,
     /// The first ids this transaction can have written (bounds the seals'
     /// queries to its own rows).
     first: seal::FirstIds,
@@ -1518,7 +1534,20 @@ impl Tx<'_> {
     /// The counters this transaction's record and fit row ids come from,
     /// for queuing rows while the transaction is away being written to.
     pub fn ids(&self) -> Arc<IdCounters> {
-        Arc::clone(&self.ids)
+        Arc::clone(&self.ids.borrow())
+    }
+
+    /// Takes `ids` as this transaction's counters: rows queued with them
+    /// ahead of the transaction (a file computed while the one before it
+    /// was committing) and rows queued here then share one sequence. The
+    /// caller has checked that they start at [`Tx::first_ids`].
+    pub fn adopt_ids(&self, ids: Arc<IdCounters>) {
+        *self.ids.borrow_mut() = ids;
+    }
+
+    /// The first record and fit row ids this transaction can write.
+    pub fn first_ids(&self) -> (i64, i64) {
+        (self.first.records, self.first.fits)
     }
 
     /// Queues `batch`'s `source[index]` with an id of this transaction
@@ -1532,7 +1561,14 @@ impl Tx<'_> {
         placement: RecordPlacement<'_>,
         prev_in_series: Option<i64>,
     ) -> Result<i64> {
-        let id = batch.queue_current(&self.ids, index, series, file, placement, prev_in_series);
+        let id = batch.queue_current(
+            &self.ids.borrow(),
+            index,
+            series,
+            file,
+            placement,
+            prev_in_series,
+        );
         if batch.is_full() {
             self.flush_records(batch)?;
         }
@@ -1630,7 +1666,7 @@ impl Tx<'_> {
         file: FileId,
         version: i64,
     ) -> Result<i64> {
-        let id = self.ids.record();
+        let id = self.ids.borrow().record();
         // A rare path (a resubmission): one copy of the record is cheap.
         let mut batch = RecordBatch::new(Arc::new(vec![record.clone()]));
         batch.rows.push(PendingRecord {
@@ -1741,7 +1777,7 @@ impl Tx<'_> {
     /// are written in multi-row statements as the batch fills and by
     /// [`Tx::flush_fits`].
     pub fn queue_fit(&self, batch: &mut FitBatch, f: &NewFit<'_>) -> Result<i64> {
-        let id = batch.queue(&self.ids, f);
+        let id = batch.queue(&self.ids.borrow(), f);
         if batch.is_full() {
             self.flush_fits(batch)?;
         }
@@ -1877,6 +1913,69 @@ impl Tx<'_> {
     pub fn commit(self) -> Result<()> {
         // A failed COMMIT leaves the transaction open; the drop rolls it back.
         self.tx.execute_batch("COMMIT").map_err(self.wrap())
+    }
+
+    /// Begins the next transaction on this connection (after [`Tx::end`]),
+    /// as [`Store::begin`] does: the write lock, the newest audit hash and
+    /// the first free row ids read afresh.
+    pub fn renew(&mut self) -> Result<()> {
+        self.tx
+            .execute_batch("BEGIN IMMEDIATE")
+            .map_err(self.wrap())?;
+        // The newest audit entry is read inside the write transaction, never
+        // kept between transactions: the sender thread and the `review`
+        // command append entries from their own connections.
+        let last = audit::last_hash(self.tx).map_err(self.wrap())?;
+        *self.pending_audit.get_mut() = last;
+        let first = seal::FirstIds::next(self.tx).map_err(self.wrap())?;
+        let ids = IdCounters::default();
+        ids.records.store(first.records, Ordering::Relaxed);
+        ids.fits.store(first.fits, Ordering::Relaxed);
+        *self.ids.get_mut() = Arc::new(ids);
+        self.first = first;
+        self.written.get_mut().clear();
+        self.recent.get_mut().clear();
+        self.findings_written.get_mut().clear();
+        Ok(())
+    }
+
+    /// Ends the transaction and keeps the connection for [`Tx::renew`]:
+    /// commits it, or rolls it back when `commit` is false. A failed
+    /// COMMIT is rolled back before its error is returned.
+    pub fn end(&mut self, commit: bool) -> Result<()> {
+        if self.tx.is_autocommit() {
+            return Ok(());
+        }
+        if commit {
+            let done = self.tx.execute_batch("COMMIT").map_err(self.wrap());
+            if done.is_err() && !self.tx.is_autocommit() {
+                let _ = self.tx.execute_batch("ROLLBACK");
+            }
+            done
+        } else {
+            self.tx.execute_batch("ROLLBACK").map_err(self.wrap())
+        }
+    }
+
+    /// The file already ingested with this content, if any (as
+    /// [`Store::file_by_hash`], inside the transaction).
+    pub fn file_by_hash(&self, sha256: &str) -> Result<Option<FileRow>> {
+        self.tx
+            .prepare_cached(
+                "SELECT id, name, arrived_at, outcome FROM source_files WHERE sha256 = ?1",
+            )
+            .and_then(|mut s| {
+                s.query_row([sha256], |r| {
+                    Ok(FileRow {
+                        id: FileId(r.get(0)?),
+                        name: r.get(1)?,
+                        arrived_at: r.get(2)?,
+                        outcome: r.get(3)?,
+                    })
+                })
+                .optional()
+            })
+            .map_err(self.wrap())
     }
 }
 
@@ -2213,7 +2312,7 @@ mod tests {
             };
             if i % 11 == 3 {
                 // Diagnostics no measure yields today, written as bound.
-                let id = tx.ids.record();
+                let id = tx.ids.borrow().record();
                 batch.rows.push(PendingRecord {
                     id,
                     index: i,

@@ -231,7 +231,7 @@ impl Tx<'_> {
         prev_in_series: Option<i64>,
         note: &str,
     ) -> Result<i64> {
-        let id = self.ids.record();
+        let id = self.ids.borrow().record();
         let (fx, fy) = fit_point.unzip();
         self.tx
             .prepare_cached(

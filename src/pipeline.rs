@@ -1213,6 +1213,25 @@ enum Start {
     },
 }
 
+/// The outcome of writing record rows of a file computed ahead: such a
+/// file assumed none of its record ids stored, so a row refused by the
+/// unique index on (record id, version 1) means the assumption was wrong
+/// (the file is computed again, and the record then takes the way of a
+/// resubmission), not that the store failed.
+fn written_as_assumed(written: Result<(), StoreError>, assumed: bool) -> Result<(), StoreError> {
+    match written {
+        Err(StoreError::Sqlite {
+            source: rusqlite::Error::SqliteFailure(e, _),
+            ..
+        }) if assumed && e.code == rusqlite::ErrorCode::ConstraintViolation => {
+            Err(StoreError::NotAsAssumed {
+                what: "one of its record ids is stored already".into(),
+            })
+        }
+        other => other,
+    }
+}
+
 /// A file whose rows are all queued and whose transaction can end.
 #[derive(Debug, Clone, Copy)]
 struct Queued {
@@ -1243,6 +1262,7 @@ fn store_file_behind<'t, 'c: 't>(
         size,
         feed,
     } = *meta;
+    let assumed = matches!(start, Start::Assumed { .. });
     let (ids, file_id) = match *start {
         Start::Read => {
             // Checked inside the write transaction: no verdict can slip in between.
@@ -1338,22 +1358,9 @@ fn store_file_behind<'t, 'c: 't>(
             Start::Read => b
                 .tx()?
                 .stored_ids(records.iter().map(|r| r.record_id.as_str()))?,
-            Start::Assumed { .. } => {
-                let ours = Arc::clone(&records);
-                b.later(move |tx| {
-                    let found = tx.stored_ids(ours.iter().map(|r| r.record_id.as_str()))?;
-                    match found.iter().next() {
-                        None => Ok(()),
-                        Some(one) => Err(StoreError::NotAsAssumed {
-                            what: format!(
-                                "{} of its record ids are stored already, {one} among them",
-                                found.len()
-                            ),
-                        }),
-                    }
-                });
-                Default::default()
-            }
+            // The unique index on (record id, version) checks it as the
+            // rows are written (see `written_as_assumed`).
+            Start::Assumed { .. } => Default::default(),
         };
         let mut batch = RecordBatch::new(Arc::clone(&records));
         for (index, record) in records.iter().enumerate() {
@@ -1419,6 +1426,13 @@ fn store_file_behind<'t, 'c: 't>(
                     }
                 };
                 let head_before = row.latest_record;
+                // A series with no point yet has all its points seen here:
+                // they are kept from the start, so that its first robust
+                // slope needs no walk through the store (a wait for the
+                // writing thread).
+                if row.moments.n() == 0 && window.is_none() && !cache.points.contains_key(key) {
+                    cache.points.insert(key.to_string(), Vec::new());
+                }
                 let in_file = per_series.get(key).copied().unwrap_or(1);
                 touched.insert(
                     key.to_string(),
@@ -1508,7 +1522,7 @@ fn store_file_behind<'t, 'c: 't>(
                 );
                 if batch.is_worth_handing() {
                     let mut full = batch.take();
-                    b.later(move |tx| tx.flush_records(&mut full));
+                    b.later(move |tx| written_as_assumed(tx.flush_records(&mut full), assumed));
                 }
                 t.row.latest_record = Some(row_id);
                 counts.new += 1;
@@ -1709,7 +1723,8 @@ fn store_file_behind<'t, 'c: 't>(
             }
         }
         if !batch.is_empty() {
-            b.later(move |tx| tx.flush_records(&mut batch));
+            batch.encode_seal();
+            b.later(move |tx| written_as_assumed(tx.flush_records(&mut batch), assumed));
         }
         // The records go when the writing thread is done with them; the
         // previous chunk's here (the writer finished it before this chunk's
@@ -1858,6 +1873,7 @@ fn store_file_behind<'t, 'c: 't>(
         FileOutcome::Ingested
     };
     if !fits.is_empty() {
+        fits.encode_seal();
         b.later(move |tx| tx.flush_fits(&mut fits));
     }
     if !heads.is_empty() {
@@ -2582,11 +2598,7 @@ mod tests {
         // resubmission instead.
         let overlapping = deliver(&config.inbox, "b.csv", 12, 6, 0.0);
         let outcome = ahead(&config, &mut store, &mut cache, &overlapping, &start);
-        refused_whole(
-            &config.database,
-            outcome,
-            "record ids are stored already, W0012",
-        );
+        refused_whole(&config.database, outcome, "record ids is stored already");
         // The first file's bytes under another name.
         let mut cache = SeriesCache::new();
         cache.revision = match start {

@@ -189,6 +189,9 @@ fn attributes_json(r: &Record) -> Option<String> {
 pub struct RecordBatch {
     source: Arc<Vec<Record>>,
     rows: Vec<PendingRecord>,
+    /// The rows encoded for their file's seal ahead of the write
+    /// ([`RecordBatch::encode_seal`]), with the file they belong to.
+    encoded: Option<(i64, seal::SealRows)>,
 }
 
 impl RecordBatch {
@@ -197,6 +200,7 @@ impl RecordBatch {
         RecordBatch {
             source,
             rows: Vec::with_capacity(RECORD_CHUNK),
+            encoded: None,
         }
     }
 
@@ -222,12 +226,37 @@ impl RecordBatch {
         self.rows.len() >= HAND_STATEMENTS * RECORD_CHUNK
     }
 
-    /// The rows queued so far, leaving an empty batch of the same source.
+    /// The rows queued so far, leaving an empty batch of the same source;
+    /// encoded for their file's seal here ([`RecordBatch::encode_seal`]).
     pub fn take(&mut self) -> RecordBatch {
-        RecordBatch {
+        let mut taken = RecordBatch {
             source: Arc::clone(&self.source),
             rows: std::mem::replace(&mut self.rows, Vec::with_capacity(RECORD_CHUNK)),
+            encoded: None,
+        };
+        taken.encode_seal();
+        taken
+    }
+
+    /// Encodes the queued rows for their file's seal now, on the thread
+    /// that queued them, so that the writing thread only binds them: the
+    /// same bytes [`Tx::flush_records`] would encode (the same columns of
+    /// the same values), appended to the file's by it. Rows of more than
+    /// one file are left to the write.
+    pub fn encode_seal(&mut self) {
+        let Some(file) = self.rows.first().map(|r| r.file) else {
+            return;
+        };
+        if self.encoded.is_some() || self.rows.iter().any(|r| r.file != file) {
+            return;
         }
+        let mut out = seal::SealRows::default();
+        for r in &self.rows {
+            seal_columns(&mut out, r.id, |put| {
+                record_columns(&self.source[r.index], r, put)
+            });
+        }
+        self.encoded = Some((file, out));
     }
 
     /// Queues `source[index]` as version 1, the current version, of its id
@@ -306,6 +335,8 @@ struct PendingFit {
 #[derive(Debug, Default)]
 pub struct FitBatch {
     rows: Vec<PendingFit>,
+    /// The rows encoded for their file's seal ahead of the write.
+    encoded: Option<(i64, seal::SealRows)>,
 }
 
 impl FitBatch {
@@ -329,9 +360,29 @@ impl FitBatch {
         self.rows.len() >= HAND_STATEMENTS * FIT_CHUNK
     }
 
-    /// The rows queued so far, leaving an empty batch.
+    /// The rows queued so far, leaving an empty batch; encoded for their
+    /// file's seal here ([`FitBatch::encode_seal`]).
     pub fn take(&mut self) -> FitBatch {
-        std::mem::take(self)
+        let mut taken = std::mem::take(self);
+        taken.encode_seal();
+        taken
+    }
+
+    /// Encodes the queued rows for their file's seal now, on the thread
+    /// that queued them (as [`RecordBatch::encode_seal`]). Rows of more
+    /// than one file, or of none, are left to the write.
+    pub fn encode_seal(&mut self) {
+        let Some(Some(file)) = self.rows.first().map(|f| f.trigger_file) else {
+            return;
+        };
+        if self.encoded.is_some() || self.rows.iter().any(|f| f.trigger_file != Some(file)) {
+            return;
+        }
+        let mut out = seal::SealRows::default();
+        for f in &self.rows {
+            seal_columns(&mut out, f.id, |put| fit_columns(f, put));
+        }
+        self.encoded = Some((file, out));
     }
 
     /// Queues a fit-history row with an id from `ids` and returns the id;
@@ -1578,15 +1629,26 @@ impl Tx<'_> {
     /// Writes every queued record.
     pub fn flush_records(&self, batch: &mut RecordBatch) -> Result<()> {
         let source = &batch.source;
-        self.note_written(
-            &batch.rows,
-            |r| Some(r.file),
-            |w, r| {
-                seal_columns(&mut w.records, r.id, |put| {
-                    record_columns(&source[r.index], r, put)
-                });
-            },
-        );
+        match batch.encoded.take() {
+            Some((file, encoded)) => {
+                let mut written = self.written.borrow_mut();
+                if let Some(w) = written.iter_mut().find(|w| w.id == file)
+                    && w.rows.keeping()
+                {
+                    w.rows.records.append(encoded);
+                    w.rows.check_budget();
+                }
+            }
+            None => self.note_written(
+                &batch.rows,
+                |r| Some(r.file),
+                |w, r| {
+                    seal_columns(&mut w.records, r.id, |put| {
+                        record_columns(&source[r.index], r, put)
+                    });
+                },
+            ),
+        }
         static SQL: OnceLock<(String, String)> = OnceLock::new();
         let sql = SQL.get_or_init(|| {
             (
@@ -1786,13 +1848,24 @@ impl Tx<'_> {
 
     /// Writes every queued fit row.
     pub fn flush_fits(&self, batch: &mut FitBatch) -> Result<()> {
-        self.note_written(
-            &batch.rows,
-            |f| f.trigger_file,
-            |w, f| {
-                seal_columns(&mut w.fits, f.id, |put| fit_columns(f, put));
-            },
-        );
+        match batch.encoded.take() {
+            Some((file, encoded)) => {
+                let mut written = self.written.borrow_mut();
+                if let Some(w) = written.iter_mut().find(|w| w.id == file)
+                    && w.rows.keeping()
+                {
+                    w.rows.fits.append(encoded);
+                    w.rows.check_budget();
+                }
+            }
+            None => self.note_written(
+                &batch.rows,
+                |f| f.trigger_file,
+                |w, f| {
+                    seal_columns(&mut w.fits, f.id, |put| fit_columns(f, put));
+                },
+            ),
+        }
         static SQL: OnceLock<(String, String)> = OnceLock::new();
         let sql = SQL.get_or_init(|| {
             (

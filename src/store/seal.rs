@@ -466,6 +466,14 @@ impl SealRows {
         self.rows.len()
     }
 
+    /// Appends `other`'s rows after these.
+    pub(crate) fn append(&mut self, other: SealRows) {
+        let shift = self.bytes.len();
+        self.rows
+            .extend(other.rows.into_iter().map(|(id, at)| (id, at + shift)));
+        self.bytes.extend_from_slice(&other.bytes);
+    }
+
     /// Feeds the section to the hash, rows in id order (as the section's
     /// `ORDER BY id`), and empties it.
     fn feed(&mut self, h: &mut Sha256) {

@@ -83,7 +83,9 @@ pub struct SeriesCache {
     rows: HashMap<String, SeriesRow>,
     /// The fit points (fitted scale) of series whose robust slope has been
     /// computed once, so that later checkpoints need not read them back.
-    points: HashMap<String, Vec<(f64, f64)>>,
+    /// Shared with the findings of a file still being written (a series'
+    /// next points then go to a copy).
+    points: HashMap<String, Arc<Vec<(f64, f64)>>>,
     /// Points of records awaiting review, per series.
     awaiting: HashMap<String, Vec<(f64, f64)>>,
     /// Critical values of the finding rules.
@@ -714,6 +716,7 @@ fn compute_ahead<'t, 'c: 't>(
             next: &mut next_chunk,
             survey: &survey,
             spent: &mut handed,
+            whole: true,
         },
         &at,
         clock::unix_seconds(now),
@@ -835,6 +838,7 @@ fn process_file_inner(
         }
     };
     // Small files come in one piece, large ones chunk by chunk.
+    let in_one_piece = stream.is_none();
     let mut handed = Spent::default();
     let mut next_chunk = || -> Result<Option<records::ParsedFile>, records::FileError> {
         match stream.as_mut() {
@@ -856,6 +860,7 @@ fn process_file_inner(
             next: &mut next_chunk,
             survey: &survey,
             spent: &mut handed,
+            whole: in_one_piece,
         },
         &at,
         clock::unix_seconds(now),
@@ -1155,6 +1160,9 @@ struct FileRows<'a> {
     survey: &'a Survey,
     /// The last chunk, handed back to be freed off the writer's thread.
     spent: &'a mut Spent,
+    /// The file comes in one piece (small): its rows are encoded for its
+    /// seal as they are handed to the writer.
+    whole: bool,
 }
 
 /// What a file's last chunk leaves behind, freed by the reading thread
@@ -1431,7 +1439,7 @@ fn store_file_behind<'t, 'c: 't>(
                 // slope needs no walk through the store (a wait for the
                 // writing thread).
                 if row.moments.n() == 0 && window.is_none() && !cache.points.contains_key(key) {
-                    cache.points.insert(key.to_string(), Vec::new());
+                    cache.points.insert(key.to_string(), Arc::default());
                 }
                 let in_file = per_series.get(key).copied().unwrap_or(1);
                 touched.insert(
@@ -1522,6 +1530,9 @@ fn store_file_behind<'t, 'c: 't>(
                 );
                 if batch.is_worth_handing() {
                     let mut full = batch.take();
+                    if rows.whole {
+                        full.encode_seal();
+                    }
                     b.later(move |tx| written_as_assumed(tx.flush_records(&mut full), assumed));
                 }
                 t.row.latest_record = Some(row_id);
@@ -1723,7 +1734,9 @@ fn store_file_behind<'t, 'c: 't>(
             }
         }
         if !batch.is_empty() {
-            batch.encode_seal();
+            if rows.whole {
+                batch.encode_seal();
+            }
             b.later(move |tx| written_as_assumed(tx.flush_records(&mut batch), assumed));
         }
         // The records go when the writing thread is done with them; the
@@ -1758,7 +1771,7 @@ fn store_file_behind<'t, 'c: 't>(
         }
         match cache.points.entry(key.clone()) {
             std::collections::hash_map::Entry::Occupied(e) => {
-                e.into_mut().append(&mut t.new_points);
+                join_points(e.into_mut(), &mut t.new_points);
             }
             std::collections::hash_map::Entry::Vacant(e) => {
                 // The points stored before this file, then this file's
@@ -1768,7 +1781,7 @@ fn store_file_behind<'t, 'c: 't>(
                 if !stored.is_empty() {
                     points.splice(0..0, stored.into_iter().map(|(_, x, y)| (x, y)));
                 }
-                e.insert(points);
+                e.insert(Arc::new(points));
             }
         }
         due.push(key);
@@ -1854,6 +1867,9 @@ fn store_file_behind<'t, 'c: 't>(
         );
         if fits.is_worth_handing() {
             let mut full = fits.take();
+            if rows.whole {
+                full.encode_seal();
+            }
             b.later(move |tx| tx.flush_fits(&mut full));
         }
         t.row.latest_fit = Some(fit_row);
@@ -1873,7 +1889,9 @@ fn store_file_behind<'t, 'c: 't>(
         FileOutcome::Ingested
     };
     if !fits.is_empty() {
-        fits.encode_seal();
+        if rows.whole {
+            fits.encode_seal();
+        }
         b.later(move |tx| tx.flush_fits(&mut fits));
     }
     if !heads.is_empty() {
@@ -1881,6 +1899,13 @@ fn store_file_behind<'t, 'c: 't>(
     }
     // While the rows are still being written.
     let causes = rank_flagged(config, cache, &touched, &flagged, name);
+    // The series' kept points take this file's now; the findings share
+    // them instead of copying them.
+    for (key, t) in touched.iter_mut() {
+        if let Some(p) = cache.points.get_mut(key) {
+            join_points(p, &mut t.new_points);
+        }
+    }
     let work = FindingsWork::gather(cache, &touched, rows.survey, flagged, causes, plain, trends);
     // The findings, the file's row and its seal and audit entry are written
     // last, on the writing thread, in the file's transaction; the caller
@@ -1918,15 +1943,12 @@ fn store_file_behind<'t, 'c: 't>(
     let next_ids = ids.next();
     // The cache moves on as if the transaction commits: if it does not,
     // the caller clears the cache.
-    for (key, mut t) in touched {
-        if let Some(p) = cache.points.get_mut(&key) {
-            p.append(&mut t.new_points);
-        }
+    for (key, t) in touched {
         cache.awaiting.insert(key.clone(), t.awaiting);
         cache.log.insert(key.clone(), t.log);
         cache.rows.insert(key, t.row);
     }
-    if cache.points.values().map(Vec::len).sum::<usize>() > POINTS_KEPT_MAX {
+    if cache.points.values().map(|p| p.len()).sum::<usize>() > POINTS_KEPT_MAX {
         cache.points = HashMap::default();
     }
     Ok(Ok(Queued {
@@ -1935,6 +1957,19 @@ fn store_file_behind<'t, 'c: 't>(
         file_id,
         next_ids,
     }))
+}
+
+/// Appends a file's new points to a series' kept ones, leaving `new`
+/// without its buffer: taken whole when nothing was kept yet (a large
+/// file's points are megabytes), copied only when the kept ones are still
+/// shared with findings being written.
+fn join_points(kept: &mut Arc<Vec<(f64, f64)>>, new: &mut Vec<(f64, f64)>) {
+    if kept.is_empty() {
+        *kept = Arc::new(std::mem::take(new));
+    } else {
+        Arc::make_mut(kept).append(new);
+        *new = Vec::new();
+    }
 }
 
 /// The ln(y)-on-x state of a series' points, when every y is positive.
@@ -2075,9 +2110,10 @@ struct SeriesView {
     row: SeriesRow,
     transform: Transform,
     awaiting: Vec<(f64, f64)>,
-    /// The series' fit points when kept in memory (else walked from the
-    /// store when a chart or the sampling advice needs them).
-    points: Option<Vec<(f64, f64)>>,
+    /// The series' fit points when kept in memory, shared with the cache
+    /// (else walked from the store when a chart or the sampling advice
+    /// needs them).
+    points: Option<Arc<Vec<(f64, f64)>>>,
     robust: Option<(f64, f64, f64)>,
     /// The id of the file's last record of the series.
     last_id: Option<String>,
@@ -2118,14 +2154,8 @@ impl FindingsWork {
             let Some(t) = touched.get(key) else {
                 continue;
             };
-            // The points kept for the robust slope (those before this file,
-            // then this file's), when there are.
-            let points = cache.points.get(key).map(|before| {
-                let mut all = Vec::with_capacity(before.len() + t.new_points.len());
-                all.extend_from_slice(before);
-                all.extend_from_slice(&t.new_points);
-                all
-            });
+            // The series' points when kept (this file's among them).
+            let points = cache.points.get(key).map(Arc::clone);
             series.insert(
                 key.to_string(),
                 SeriesView {
@@ -2171,7 +2201,7 @@ fn raise_findings(
     now_unix: i64,
 ) -> Result<usize, StoreError> {
     let mut raised = 0;
-    let mut series_points: HashMap<&str, Vec<(f64, f64)>> = HashMap::default();
+    let mut series_points: HashMap<&str, Arc<Vec<(f64, f64)>>> = HashMap::default();
     for (f, causes) in work.flagged.iter().zip(&work.causes) {
         let record = &f.record;
         let key = record.series.as_str();
@@ -2191,15 +2221,15 @@ fn raise_findings(
                         #[cfg(debug_assertions)]
                         {
                             let stored = tx.fit_points(&t.row)?;
-                            debug_assert_eq!(all, &stored, "kept points of {key}");
+                            debug_assert_eq!(**all, stored, "kept points of {key}");
                         }
-                        all.clone()
+                        Arc::clone(all)
                     }
-                    None => tx.fit_points(&t.row)?,
+                    None => Arc::new(tx.fit_points(&t.row)?),
                 };
                 series_points.insert(key, points);
             }
-            series_points.get(key).map_or(&[], Vec::as_slice)
+            series_points.get(key).map_or(&[], |p| p.as_slice())
         } else {
             &[]
         };

@@ -226,23 +226,23 @@ impl RecordBatch {
         self.rows.len() >= HAND_STATEMENTS * RECORD_CHUNK
     }
 
-    /// The rows queued so far, leaving an empty batch of the same source;
-    /// encoded for their file's seal here ([`RecordBatch::encode_seal`]).
+    /// The rows queued so far, leaving an empty batch of the same source.
     pub fn take(&mut self) -> RecordBatch {
-        let mut taken = RecordBatch {
+        RecordBatch {
             source: Arc::clone(&self.source),
             rows: std::mem::replace(&mut self.rows, Vec::with_capacity(RECORD_CHUNK)),
             encoded: None,
-        };
-        taken.encode_seal();
-        taken
+        }
     }
 
     /// Encodes the queued rows for their file's seal now, on the thread
     /// that queued them, so that the writing thread only binds them: the
     /// same bytes [`Tx::flush_records`] would encode (the same columns of
     /// the same values), appended to the file's by it. Rows of more than
-    /// one file are left to the write.
+    /// one file are left to the write. For a file small enough for its
+    /// rows to be kept for its seal: a large one's are dropped past the
+    /// budget, and encoded batches waiting for the writer would only add
+    /// to its memory.
     pub fn encode_seal(&mut self) {
         let Some(file) = self.rows.first().map(|r| r.file) else {
             return;
@@ -360,12 +360,9 @@ impl FitBatch {
         self.rows.len() >= HAND_STATEMENTS * FIT_CHUNK
     }
 
-    /// The rows queued so far, leaving an empty batch; encoded for their
-    /// file's seal here ([`FitBatch::encode_seal`]).
+    /// The rows queued so far, leaving an empty batch.
     pub fn take(&mut self) -> FitBatch {
-        let mut taken = std::mem::take(self);
-        taken.encode_seal();
-        taken
+        std::mem::take(self)
     }
 
     /// Encodes the queued rows for their file's seal now, on the thread

@@ -19,38 +19,15 @@ use slopewarden::inbox::ReadyFile;
 use slopewarden::pipeline::{Flow, Outcome, SeriesCache, process_file, process_in_order};
 use slopewarden::store::Store;
 
-fn norris() -> Vec<(String, String)> {
-    let path = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/tests/fixtures/nist/norris.csv"
-    );
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .skip(1)
-        .map(|l| {
-            let (x, y) = l.split_once(',').unwrap();
-            (x.trim().to_string(), y.trim().to_string())
-        })
-        .collect()
-}
-
-fn certified(name: &str) -> f64 {
-    let path = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/tests/fixtures/nist/norris.certified.json"
-    );
-    let v: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
-    v["parameters"][name]["estimate"].as_f64().unwrap()
-}
+#[path = "support/norris.rs"]
+mod norris;
 
 /// The backlog's files, in name order: Norris in six files; after the
 /// second, a resubmission of two of its records (one unchanged, one with
 /// another value); after the fourth, the first file's bytes again under
 /// another name.
 fn backlog() -> Vec<(String, String)> {
-    let points = norris();
+    let points = norris::points();
     let file = |k: usize, ids: std::ops::Range<usize>, y_of: &dyn Fn(usize) -> String| {
         let mut text = String::from("record_id,series,x,y\n");
         for i in ids {
@@ -215,7 +192,10 @@ fn a_backlog_computed_ahead_of_each_commit_stores_what_one_file_at_a_time_stores
             |r| Ok((r.get(0)?, r.get(1)?)),
         )
         .unwrap();
-    for (got, want) in [(slope, certified("B1")), (intercept, certified("B0"))] {
+    for (got, want) in [
+        (slope, norris::certified("B1")),
+        (intercept, norris::certified("B0")),
+    ] {
         assert!(((got - want) / want).abs() < 1e-9, "{got} vs NIST {want}");
     }
     // All files left the inbox.

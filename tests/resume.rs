@@ -16,21 +16,8 @@ use slopewarden::inbox::ReadyFile;
 use slopewarden::pipeline::{SeriesCache, process_file};
 use slopewarden::store::Store;
 
-fn norris() -> Vec<(String, String)> {
-    let path = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/tests/fixtures/nist/norris.csv"
-    );
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .skip(1)
-        .map(|l| {
-            let (x, y) = l.split_once(',').unwrap();
-            (x.trim().to_string(), y.trim().to_string())
-        })
-        .collect()
-}
+#[path = "support/norris.rs"]
+mod norris;
 
 fn deliver(inbox: &Path, k: usize, rows: &[(String, String)]) -> ReadyFile {
     let mut text = String::from("record_id,series,x,y\n");
@@ -54,7 +41,7 @@ fn ingest(restart: bool) -> (tempfile::TempDir, Vec<u8>) {
     let dir = tempfile::tempdir().unwrap();
     let config = Config::defaults_in(dir.path());
     std::fs::create_dir_all(&config.inbox).unwrap();
-    let points = norris();
+    let points = norris::points();
     assert_eq!(points.len(), 36);
     let mut store = Store::open(&config.database).unwrap();
     let mut cache = SeriesCache::new();

@@ -622,6 +622,20 @@ impl WrittenFile {
     }
 }
 
+/// The file stored with this content, if any.
+fn file_by_hash(conn: &Connection, sha256: &str) -> rusqlite::Result<Option<FileRow>> {
+    conn.prepare_cached("SELECT id, name, arrived_at, outcome FROM source_files WHERE sha256 = ?1")?
+        .query_row([sha256], |r| {
+            Ok(FileRow {
+                id: FileId(r.get(0)?),
+                name: r.get(1)?,
+                arrived_at: r.get(2)?,
+                outcome: r.get(3)?,
+            })
+        })
+        .optional()
+}
+
 /// The embedded migrations, in order.
 const MIGRATIONS: &[(&str, &str)] = &[
     (
@@ -1121,21 +1135,7 @@ impl Store {
 
     /// The file already ingested with this content, if any.
     pub fn file_by_hash(&self, sha256: &str) -> Result<Option<FileRow>> {
-        self.conn
-            .query_row(
-                "SELECT id, name, arrived_at, outcome FROM source_files WHERE sha256 = ?1",
-                [sha256],
-                |r| {
-                    Ok(FileRow {
-                        id: FileId(r.get(0)?),
-                        name: r.get(1)?,
-                        arrived_at: r.get(2)?,
-                        outcome: r.get(3)?,
-                    })
-                },
-            )
-            .optional()
-            .map_err(self.wrap())
+        file_by_hash(&self.conn, sha256).map_err(self.wrap())
     }
 
     /// Starts the one transaction in which a file's records, refits and
@@ -1627,15 +1627,7 @@ impl Tx<'_> {
     pub fn flush_records(&self, batch: &mut RecordBatch) -> Result<()> {
         let source = &batch.source;
         match batch.encoded.take() {
-            Some((file, encoded)) => {
-                let mut written = self.written.borrow_mut();
-                if let Some(w) = written.iter_mut().find(|w| w.id == file)
-                    && w.rows.keeping()
-                {
-                    w.rows.records.append(encoded);
-                    w.rows.check_budget();
-                }
-            }
+            Some(encoded) => self.note_encoded(encoded, |rows| &mut rows.records),
             None => self.note_written(
                 &batch.rows,
                 |r| Some(r.file),
@@ -1657,6 +1649,22 @@ impl Tx<'_> {
         let written = self.write_chunked(rows, sql, RECORD_CHUNK, RECORD_COLUMNS, bind_record);
         batch.rows.clear();
         written
+    }
+
+    /// Appends rows encoded ahead of the write (`encode_seal` of a batch)
+    /// to their file's `section`, when this transaction inserted the file.
+    fn note_encoded(
+        &self,
+        (file, encoded): (i64, seal::SealRows),
+        section: fn(&mut seal::FileRows) -> &mut seal::SealRows,
+    ) {
+        let mut written = self.written.borrow_mut();
+        if let Some(w) = written.iter_mut().find(|w| w.id == file)
+            && w.rows.keeping()
+        {
+            section(&mut w.rows).append(encoded);
+            w.rows.check_budget();
+        }
     }
 
     /// Encodes, for the seal of their file, those of `rows` that belong to
@@ -1846,15 +1854,7 @@ impl Tx<'_> {
     /// Writes every queued fit row.
     pub fn flush_fits(&self, batch: &mut FitBatch) -> Result<()> {
         match batch.encoded.take() {
-            Some((file, encoded)) => {
-                let mut written = self.written.borrow_mut();
-                if let Some(w) = written.iter_mut().find(|w| w.id == file)
-                    && w.rows.keeping()
-                {
-                    w.rows.fits.append(encoded);
-                    w.rows.check_budget();
-                }
-            }
+            Some(encoded) => self.note_encoded(encoded, |rows| &mut rows.fits),
             None => self.note_written(
                 &batch.rows,
                 |f| f.trigger_file,
@@ -2030,22 +2030,7 @@ impl Tx<'_> {
     /// The file already ingested with this content, if any (as
     /// [`Store::file_by_hash`], inside the transaction).
     pub fn file_by_hash(&self, sha256: &str) -> Result<Option<FileRow>> {
-        self.tx
-            .prepare_cached(
-                "SELECT id, name, arrived_at, outcome FROM source_files WHERE sha256 = ?1",
-            )
-            .and_then(|mut s| {
-                s.query_row([sha256], |r| {
-                    Ok(FileRow {
-                        id: FileId(r.get(0)?),
-                        name: r.get(1)?,
-                        arrived_at: r.get(2)?,
-                        outcome: r.get(3)?,
-                    })
-                })
-                .optional()
-            })
-            .map_err(self.wrap())
+        file_by_hash(self.tx, sha256).map_err(self.wrap())
     }
 }
 

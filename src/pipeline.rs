@@ -402,6 +402,26 @@ struct Run {
     plain: bool,
 }
 
+impl Run {
+    /// Go on from file `next`.
+    fn next(next: usize) -> Run {
+        Run {
+            next,
+            stopped: false,
+            plain: false,
+        }
+    }
+
+    /// Stop before file `next`: the caller said so.
+    fn stopped(next: usize) -> Run {
+        Run {
+            next,
+            stopped: true,
+            plain: false,
+        }
+    }
+}
+
 /// A file whose transaction was ended (to commit) and not yet settled.
 struct InFlight {
     index: usize,
@@ -439,11 +459,7 @@ fn run_ahead<'t, 'c: 't>(
         let Some(mut prepared) = current else {
             // Done (or stopping): settle the file in flight.
             return match in_flight.take() {
-                None => Run {
-                    next: index,
-                    stopped: false,
-                    plain: false,
-                },
+                None => Run::next(index),
                 Some(f) => match settle(b, files, f, cache, spent, each) {
                     Settled::Done(flow) | Settled::Failed(flow) => Run {
                         next: index,
@@ -452,11 +468,7 @@ fn run_ahead<'t, 'c: 't>(
                     },
                     Settled::Again(at) => {
                         files_in.again(at);
-                        Run {
-                            next: at,
-                            stopped: false,
-                            plain: false,
-                        }
+                        Run::next(at)
                     }
                 },
             };
@@ -469,26 +481,16 @@ fn run_ahead<'t, 'c: 't>(
                 .map(|f| settle(b, files, f, cache, spent, each))
             {
                 None | Some(Settled::Done(Flow::Continue) | Settled::Failed(Flow::Continue)) => {
-                    Run {
-                        next: index,
-                        stopped: false,
-                        plain: false,
-                    }
+                    Run::next(index)
                 }
-                Some(Settled::Done(Flow::Stop) | Settled::Failed(Flow::Stop)) => Run {
-                    next: index,
-                    stopped: true,
-                    plain: false,
-                },
+                Some(Settled::Done(Flow::Stop) | Settled::Failed(Flow::Stop)) => {
+                    Run::stopped(index)
+                }
                 Some(Settled::Again(at)) => {
                     // This file was not touched: it stays first in line
                     // after the one taken again.
                     files_in.again(at);
-                    Run {
-                        next: at,
-                        stopped: false,
-                        plain: false,
-                    }
+                    Run::next(at)
                 }
             };
         }
@@ -500,38 +502,23 @@ fn run_ahead<'t, 'c: 't>(
                 Settled::Done(Flow::Continue) => {}
                 Settled::Failed(Flow::Continue) => {
                     // Computed on the one before it, which failed: again.
-                    b.end(false);
-                    let _ = b.outcome();
+                    b.roll_back();
                     files_in.again(index);
-                    return Run {
-                        next: index,
-                        stopped: false,
-                        plain: false,
-                    };
+                    return Run::next(index);
                 }
                 Settled::Done(Flow::Stop) | Settled::Failed(Flow::Stop) => {
                     // Not this file: rolled back, it stays in the inbox.
-                    b.end(false);
-                    let _ = b.outcome();
+                    b.roll_back();
                     cache.clear();
-                    return Run {
-                        next: index,
-                        stopped: true,
-                        plain: false,
-                    };
+                    return Run::stopped(index);
                 }
                 Settled::Again(at) => {
                     // Computed on the one before it: both again.
-                    b.end(false);
-                    let _ = b.outcome();
+                    b.roll_back();
                     cache.clear();
                     files_in.again(index);
                     files_in.again(at);
-                    return Run {
-                        next: at,
-                        stopped: false,
-                        plain: false,
-                    };
+                    return Run::next(at);
                 }
             }
         }
@@ -556,8 +543,7 @@ fn run_ahead<'t, 'c: 't>(
             Ok(None) => {
                 // The plain way (same content stored already, or a file
                 // that changed its mind part way).
-                b.end(false);
-                let _ = b.outcome();
+                b.roll_back();
                 files_in.again(index);
                 return Run {
                     next: index,
@@ -566,27 +552,18 @@ fn run_ahead<'t, 'c: 't>(
                 };
             }
             Err(e) => {
-                b.end(false);
-                let _ = b.outcome();
+                b.roll_back();
                 cache.clear();
                 if matches!(e, PipelineError::Store(StoreError::NotAsAssumed { .. })) {
                     debug!(file = %file.relative.display(), error = %e, "computed again");
                     files_in.again(index);
-                    return Run {
-                        next: index,
-                        stopped: false,
-                        plain: false,
-                    };
+                    return Run::next(index);
                 }
                 let _ = spent.send(prepared);
                 index += 1;
                 start = Start::Read;
                 if each(index - 1, file, Err(e)) == Flow::Stop {
-                    return Run {
-                        next: index,
-                        stopped: true,
-                        plain: false,
-                    };
+                    return Run::stopped(index);
                 }
             }
         }
@@ -1210,9 +1187,10 @@ enum Start {
     Read,
     /// Assumed from the file before it, still being committed, so that
     /// this one is computed meanwhile: the store revision, the next row
-    /// ids and the file's id. The transaction's first job checks them,
-    /// with the file's content and record ids not stored yet; if any is
-    /// not as assumed, the transaction fails with
+    /// ids and the file's id. The transaction's first job checks them and
+    /// that the file's content is not stored yet; the unique index on
+    /// (record id, version) checks its record ids as they are written. If
+    /// any is not as assumed, the transaction fails with
     /// [`StoreError::NotAsAssumed`] and the file is computed again.
     Assumed {
         revision: i64,

@@ -272,6 +272,13 @@ impl<'t> Behind<'t> {
         }
     }
 
+    /// Rolls the current transaction back and waits for it (its outcome
+    /// is of no interest: nothing of it is kept either way).
+    pub fn roll_back(&mut self) {
+        self.end(false);
+        let _ = self.outcome();
+    }
+
     /// Commits the current transaction and waits for it.
     pub fn commit(&mut self) -> Result<()> {
         self.end(true);

@@ -323,14 +323,37 @@ pub fn process_in_order(
             // commits; the first file that cannot be goes the plain way.
             // (When no transaction can begin, the plain way meets the same
             // error and reports it.)
-            if !std::mem::take(&mut plain)
-                && overlappable(config, &prepared)
-                && let Some(tx) = store.begin().ok()
-            {
+            if !std::mem::take(&mut plain) && overlappable(config, &prepared) {
+                // The run's commits are made durable by a thread of their
+                // own (see store::WalSync), not by the writer. Without
+                // that, each commit syncs as usual.
+                let durable = store
+                    .commit_without_sync()
+                    .inspect_err(|e| debug!(error = %e, "commits sync on the writer"))
+                    .ok();
                 files_in.again.push_front(prepared);
-                let run = write_behind(tx, |b| {
-                    run_ahead(b, &mut files_in, next, cache, stop, &spent_tx, &mut each)
-                });
+                let run = match store.begin() {
+                    Ok(tx) => Some(write_behind(tx, durable, |b| {
+                        let ahead = Ahead {
+                            stop,
+                            spent: &spent_tx,
+                        };
+                        run_ahead(b, &mut files_in, next, cache, ahead, &mut each)
+                    })),
+                    Err(_) => None,
+                };
+                if let Err(e) = store.commit_with_sync() {
+                    // Without FULL the plain way's commits would not wait
+                    // for the disk: no file is taken until it is back.
+                    tracing::error!(error = %e, "cannot set the store's commits to sync again; stopping");
+                    return;
+                }
+                let Some(run) = run else {
+                    // No transaction can begin: the plain way meets the
+                    // same error and reports it.
+                    plain = true;
+                    continue;
+                };
                 next = run.next;
                 plain = run.plain;
                 if run.stopped {
@@ -422,6 +445,14 @@ impl Run {
     }
 }
 
+/// What [`run_ahead`] is given besides the files.
+struct Ahead<'a> {
+    /// Set when the caller asks to stop.
+    stop: &'a AtomicBool,
+    /// Where files done with go to be freed.
+    spent: &'a std::sync::mpsc::Sender<Prepared>,
+}
+
 /// A file whose transaction was ended (to commit) and not yet settled.
 struct InFlight {
     index: usize,
@@ -436,17 +467,16 @@ struct InFlight {
 /// commit is known; a file computed on assumptions that turned out wrong
 /// (the file before it failed, or the store was not as assumed) is rolled
 /// back and taken again.
-#[allow(clippy::too_many_arguments)]
 fn run_ahead<'t, 'c: 't>(
     b: &mut Behind<'t>,
     files_in: &mut Taken<'_, 'c>,
     first: usize,
     cache: &mut SeriesCache,
-    stop: &AtomicBool,
-    spent: &std::sync::mpsc::Sender<Prepared>,
+    ahead: Ahead<'_>,
     each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
 ) -> Run {
     let files = files_in.files;
+    let (stop, spent) = (ahead.stop, ahead.spent);
     let mut index = first;
     let mut in_flight: Option<InFlight> = None;
     let mut start = Start::Read;
@@ -460,7 +490,7 @@ fn run_ahead<'t, 'c: 't>(
             // Done (or stopping): settle the file in flight.
             return match in_flight.take() {
                 None => Run::next(index),
-                Some(f) => match settle(b, files, f, cache, spent, each) {
+                Some(f) => match settle(b, files, f, cache, &ahead, each) {
                     Settled::Done(flow) | Settled::Failed(flow) => Run {
                         next: index,
                         stopped: flow == Flow::Stop,
@@ -478,7 +508,7 @@ fn run_ahead<'t, 'c: 't>(
             files_in.again.push_front(prepared);
             return match in_flight
                 .take()
-                .map(|f| settle(b, files, f, cache, spent, each))
+                .map(|f| settle(b, files, f, cache, &ahead, each))
             {
                 None | Some(Settled::Done(Flow::Continue) | Settled::Failed(Flow::Continue)) => {
                     Run::next(index)
@@ -498,7 +528,7 @@ fn run_ahead<'t, 'c: 't>(
         // This file's transaction is still open: the one before it is
         // settled first.
         if let Some(f) = in_flight.take() {
-            match settle(b, files, f, cache, spent, each) {
+            match settle(b, files, f, cache, &ahead, each) {
                 Settled::Done(Flow::Continue) => {}
                 Settled::Failed(Flow::Continue) => {
                     // Computed on the one before it, which failed: again.
@@ -586,12 +616,14 @@ fn settle(
     files: &[(&Config, ReadyFile)],
     f: InFlight,
     cache: &mut SeriesCache,
-    spent: &std::sync::mpsc::Sender<Prepared>,
+    ahead: &Ahead<'_>,
     each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
 ) -> Settled {
     let Some((config, file)) = files.get(f.index) else {
         unreachable!("BUG: a file in flight is one of the files");
     };
+    let spent = ahead.spent;
+    // Committed, and on disk when a WalSync was given.
     match b.outcome() {
         Ok(()) => {
             let _span = info_span!("file", file = %file.relative.display()).entered();
@@ -1167,7 +1199,7 @@ fn store_file(
     let tx = store.begin()?;
     // The rows are written on a second thread while this one computes the
     // next ones; every read waits for the writes queued before it.
-    write_behind(tx, |b| {
+    write_behind(tx, None, |b| {
         match store_file_behind(b, config, cache, meta, rows, at, now_unix, &Start::Read)? {
             Ok(done) => {
                 b.commit()?;
@@ -2496,7 +2528,7 @@ mod tests {
         let tx = store.begin().unwrap();
         // A read while computing (the cache lacks the series) already
         // meets a wrong assumption; otherwise the commit does.
-        write_behind(tx, |b| {
+        write_behind(tx, None, |b| {
             match compute_ahead(b, config, cache, file, &mut prepared, start) {
                 Ok(Some(_)) => b.commit(),
                 Ok(None) => panic!("the file should not take the plain way"),

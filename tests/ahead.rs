@@ -160,6 +160,10 @@ fn a_backlog_computed_ahead_of_each_commit_stores_what_one_file_at_a_time_stores
         (0..files.len()).collect::<Vec<_>>(),
         "each file reported once, in order"
     );
+    // The run's commits were made durable off the writing thread (SQLite's
+    // synchronous = NORMAL, 1); after it, commits wait for the disk again
+    // (FULL, 2) for everything else this connection writes.
+    assert_eq!(store_b.synchronous().unwrap(), 2);
     assert_eq!(ahead, plain);
     // The resubmission and the repeated file were caught, not stored again.
     assert!(

@@ -23,11 +23,16 @@
 //! commit can happen with a job lost. The transaction after it starts
 //! clean. When no thread can be started (out of threads or memory), the
 //! jobs run at once on the calling thread under the same rules.
+//!
+//! Given a [`WalSync`] (the connection then commits without waiting for
+//! the disk), a third thread makes each commit durable while the writer
+//! goes on with the next transaction; a commit's outcome is `Ok` only once
+//! it is on disk.
 
 use std::collections::VecDeque;
 use std::sync::mpsc::{Receiver, Sender, channel};
 
-use super::{Result, StoreError, Tx};
+use super::{Result, StoreError, Tx, WalSync};
 
 /// A write to run on the writing thread, in order.
 pub type Job<'t> = Box<dyn FnOnce(&Tx<'t>) -> Result<()> + Send + 't>;
@@ -125,26 +130,63 @@ pub struct Behind<'t> {
     /// and jobs run at once on this thread instead.
     writer: Option<Channels<'t>>,
     /// Without a writing thread: the outcomes of the ends not yet taken.
-    ended: VecDeque<Result<()>>,
+    ended: VecDeque<Ended>,
+    /// Commits to be made durable as their outcomes are taken (when no
+    /// thread could be started to do it sooner).
+    sync_here: Option<WalSync>,
 }
+
+/// How a transaction ended: whether a commit was asked, and the outcome.
+type Ended = (bool, Result<()>);
 
 struct Channels<'t> {
     to_writer: Sender<ToWriter<'t>>,
     back: Receiver<Slot<'t>>,
-    outcomes: Receiver<Result<()>>,
+    outcomes: Receiver<Ended>,
 }
 
 /// Runs `body` with `tx` (begun) and a writing thread for it and the
 /// transactions after it. What `body` leaves unended when it returns is
-/// rolled back.
-pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) -> R {
+/// rolled back. With `durable`, the connection's commits do not wait for
+/// the disk (see [`Store::commit_without_sync`](super::Store::commit_without_sync)):
+/// each is made durable by a thread of its own before its outcome is given.
+pub fn write_behind<'t, R>(
+    tx: Tx<'t>,
+    durable: Option<WalSync>,
+    body: impl FnOnce(&mut Behind<'t>) -> R,
+) -> R {
     std::thread::scope(|scope| {
         let (to_writer, jobs) = channel::<ToWriter<'t>>();
         let (back_tx, back) = channel();
-        let (outcome_tx, outcomes) = channel();
+        let (outcome_tx, mut outcomes) = channel();
+        let mut sync_here = None;
+        // The writer's outcomes go through the syncing thread, when there
+        // is one to make commits durable.
+        let writer_outcomes = match durable {
+            None => outcome_tx,
+            Some(wal) => {
+                let (ended_tx, ended) = channel::<Ended>();
+                let for_thread = wal.clone();
+                let spawned = std::thread::Builder::new()
+                    .name("store-sync".into())
+                    .spawn_scoped(scope, move || sync_commits(for_thread, ended, outcome_tx));
+                match spawned {
+                    Ok(_) => ended_tx,
+                    Err(e) => {
+                        // Its channel end went with it: outcomes come
+                        // straight from the writer, synced as taken.
+                        tracing::warn!(error = %e, "cannot start the store's syncing thread; syncing as outcomes are taken");
+                        sync_here = Some(wal);
+                        let (direct_tx, direct) = channel();
+                        outcomes = direct;
+                        direct_tx
+                    }
+                }
+            }
+        };
         let writer = match std::thread::Builder::new()
             .name("store-writer".into())
-            .spawn_scoped(scope, move || writer(jobs, back_tx, outcome_tx))
+            .spawn_scoped(scope, move || writer(jobs, back_tx, writer_outcomes))
         {
             Ok(_) => Some(Channels {
                 to_writer,
@@ -165,6 +207,7 @@ pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) 
             }),
             writer,
             ended: VecDeque::new(),
+            sync_here,
         };
         body(&mut behind)
         // Dropping `behind` ends the writer (dropping the transaction it
@@ -172,7 +215,21 @@ pub fn write_behind<'t, R>(tx: Tx<'t>, body: impl FnOnce(&mut Behind<'t>) -> R) 
     })
 }
 
-fn writer<'t>(jobs: Receiver<ToWriter<'t>>, back: Sender<Slot<'t>>, outcomes: Sender<Result<()>>) {
+/// Makes each commit durable before passing its outcome on, in order;
+/// other outcomes pass as they are.
+fn sync_commits(mut wal: WalSync, ended: Receiver<Ended>, outcomes: Sender<Ended>) {
+    for (commit, outcome) in ended {
+        let outcome = match outcome {
+            Ok(()) if commit => wal.sync(),
+            other => other,
+        };
+        if outcomes.send((commit, outcome)).is_err() {
+            return;
+        }
+    }
+}
+
+fn writer<'t>(jobs: Receiver<ToWriter<'t>>, back: Sender<Slot<'t>>, outcomes: Sender<Ended>) {
     let mut held: Option<Slot<'t>> = None;
     for message in jobs {
         match message {
@@ -194,7 +251,7 @@ fn writer<'t>(jobs: Receiver<ToWriter<'t>>, back: Sender<Slot<'t>>, outcomes: Se
                     Some(slot) => slot.end(commit),
                     None => Err(StoreError::WriterLost),
                 };
-                let _ = outcomes.send(outcome);
+                let _ = outcomes.send((commit, outcome));
             }
         }
     }
@@ -248,7 +305,7 @@ impl<'t> Behind<'t> {
                     Some(slot) => slot.end(commit),
                     None => Err(StoreError::WriterLost),
                 };
-                self.ended.push_back(outcome);
+                self.ended.push_back((commit, outcome));
             }
             Some(w) => {
                 if let Some(slot) = self.held.take() {
@@ -263,12 +320,14 @@ impl<'t> Behind<'t> {
     /// The outcome of the oldest end not yet taken (waits for it): `Ok`
     /// when it committed (or rolled back as asked).
     pub fn outcome(&mut self) -> Result<()> {
-        match &self.writer {
-            None => self
-                .ended
-                .pop_front()
-                .unwrap_or(Err(StoreError::WriterLost)),
-            Some(w) => w.outcomes.recv().unwrap_or(Err(StoreError::WriterLost)),
+        let lost = (false, Err(StoreError::WriterLost));
+        let (commit, outcome) = match &self.writer {
+            None => self.ended.pop_front().unwrap_or(lost),
+            Some(w) => w.outcomes.recv().unwrap_or(lost),
+        };
+        match (outcome, self.sync_here.as_mut()) {
+            (Ok(()), Some(wal)) if commit => wal.sync(),
+            (outcome, _) => outcome,
         }
     }
 
@@ -325,7 +384,7 @@ mod tests {
     fn jobs_run_in_order_and_reads_after_them_see_their_writes() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let seen = write_behind(tx, |b| {
+        let seen = write_behind(tx, None, |b| {
             for i in 0..50 {
                 b.later(entry(format!("r{i}")));
             }
@@ -357,7 +416,7 @@ mod tests {
     fn a_failed_job_drops_the_rest_and_the_transaction_rolls_back() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let result = write_behind(tx, |b| {
+        let result = write_behind(tx, None, |b| {
             b.later(entry("kept?".into()));
             b.later(failing());
             b.later(|_| panic!("a job after a failed one must not run"));
@@ -385,6 +444,7 @@ mod tests {
             }),
             writer: None,
             ended: VecDeque::new(),
+            sync_here: None,
         };
         b.later(entry("a".into()));
         assert_eq!(entries_in(b.tx().unwrap()), 1);
@@ -400,7 +460,7 @@ mod tests {
     fn transactions_follow_one_another_and_a_failed_one_takes_only_itself_down() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let (outcomes, seen) = write_behind(tx, |b| {
+        let (outcomes, seen) = write_behind(tx, None, |b| {
             b.later(entry("first".into()));
             b.end(true);
             // Queued before the first commit is known: a transaction of its own.
@@ -430,11 +490,95 @@ mod tests {
     fn a_transaction_left_with_the_writer_rolls_back() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        write_behind(tx, |b| {
+        write_behind(tx, None, |b| {
             b.later(entry("lost".into()));
             // The body returns without finishing (an early error return).
         });
         assert_eq!(audit_count(&store), 0);
         assert!(store.conn.is_autocommit());
+    }
+
+    /// A file-backed store in a fresh folder.
+    fn on_disk() -> (tempfile::TempDir, Store) {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(&dir.path().join("s.sqlite3")).unwrap();
+        (dir, store)
+    }
+
+    #[test]
+    fn commits_made_durable_by_the_sync_thread_are_kept_and_sync_returns_to_full() {
+        let (_dir, mut store) = on_disk();
+        let wal = store.commit_without_sync().unwrap();
+        // SQLite's numbering: 1 is NORMAL, 2 FULL.
+        assert_eq!(store.synchronous().unwrap(), 1);
+        let tx = store.begin().unwrap();
+        let outcomes = write_behind(tx, Some(wal), |b| {
+            let mut outcomes = Vec::new();
+            for i in 0..5 {
+                b.later(entry(format!("c{i}")));
+                b.end(true);
+            }
+            b.later(entry("rolled back".into()));
+            b.end(false);
+            for _ in 0..6 {
+                outcomes.push(b.outcome().is_ok());
+            }
+            outcomes
+        });
+        assert_eq!(outcomes, vec![true; 6]);
+        store.commit_with_sync().unwrap();
+        assert_eq!(store.synchronous().unwrap(), 2);
+        assert_eq!(audit_count(&store), 5);
+    }
+
+    #[test]
+    fn a_commit_that_cannot_be_made_durable_is_reported_as_failed() {
+        let (dir, mut store) = on_disk();
+        // A log and a database that do not exist: the fsync cannot happen.
+        let wal = WalSync::at(&dir.path().join("gone").join("s.sqlite3"));
+        let tx = store.begin().unwrap();
+        let (committed, rolled_back) = write_behind(tx, Some(wal), |b| {
+            b.later(entry("written".into()));
+            let committed = b.commit();
+            b.later(entry("undone".into()));
+            b.end(false);
+            (committed, b.outcome())
+        });
+        let err = committed.expect_err("an unsynced commit must not be reported done");
+        assert!(matches!(err, StoreError::Durability { .. }), "{err}");
+        assert!(err.to_string().contains("stays in the inbox"), "{err}");
+        // A rollback has nothing to make durable.
+        assert!(rolled_back.is_ok());
+    }
+
+    #[test]
+    fn without_a_syncing_thread_commits_are_made_durable_as_outcomes_are_taken() {
+        let (dir, mut store) = on_disk();
+        let tx = store.begin().unwrap();
+        let mut b = Behind {
+            held: Some(Slot {
+                tx,
+                open: true,
+                health: Health::Fine,
+            }),
+            writer: None,
+            ended: VecDeque::new(),
+            sync_here: Some(WalSync::at(&dir.path().join("gone").join("s.sqlite3"))),
+        };
+        b.later(entry("a".into()));
+        let err = b
+            .commit()
+            .expect_err("the sync must run when the outcome is taken");
+        assert!(matches!(err, StoreError::Durability { .. }), "{err}");
+        b.sync_here = Some(store_wal(&dir));
+        b.later(entry("b".into()));
+        b.commit().unwrap();
+        drop(b);
+        assert_eq!(audit_count(&store), 2);
+    }
+
+    /// A sync for the store of [`on_disk`].
+    fn store_wal(dir: &tempfile::TempDir) -> WalSync {
+        WalSync::at(&dir.path().join("s.sqlite3"))
     }
 }

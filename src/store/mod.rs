@@ -25,6 +25,7 @@ mod audit;
 mod behind;
 mod check;
 mod checkpoint;
+mod durable;
 mod findings;
 mod metrics;
 mod report;
@@ -47,6 +48,7 @@ pub use audit::{AuditEntry, AuditKind, ChainBreak, verify_chain};
 pub use behind::{Behind, write_behind};
 pub use check::{SeriesReplay, StoredFit, StoredPoint};
 pub use checkpoint::Checkpointer;
+pub use durable::WalSync;
 pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
 pub use metrics::{GlanceFit, MetricsSnapshot, OpenFinding, SeriesGlance};
 pub use report::{
@@ -703,6 +705,15 @@ pub enum StoreError {
     NotAsAssumed {
         /// What differed.
         what: String,
+    },
+    /// A transaction committed, but the fsync that makes it durable
+    /// failed: the file is not moved, and is taken again.
+    #[error("database {path}: a committed transaction could not be made durable (fsync of the write-ahead log: {source}); check the disk; the file stays in the inbox and is taken again", path = path.display())]
+    Durability {
+        /// The database file.
+        path: PathBuf,
+        /// The operating system's reason.
+        source: std::io::Error,
     },
 }
 

@@ -1907,8 +1907,25 @@ fn store_file_behind<'t, 'c: 't>(
     if !heads.is_empty() {
         b.later(move |tx| heads.iter().try_for_each(|h| tx.save_heads(h)));
     }
+    // The fits with and without each flagged record, here rather than on
+    // the writing thread, with the remembered t quantiles.
+    let fits: Vec<WithWithout> = {
+        let quantiles = cache.quantiles(config.level);
+        flagged
+            .iter()
+            .map(|f| {
+                let with = f
+                    .arrival
+                    .fit_with_using(config.level, |df| quantiles.get(df));
+                let without = f
+                    .arrival
+                    .fit_without_using(config.level, |df| quantiles.get(df));
+                (with.ok(), without.ok())
+            })
+            .collect()
+    };
     // While the rows are still being written.
-    let causes = rank_flagged(config, cache, &touched, &flagged, name);
+    let causes = rank_flagged(config, cache, &touched, (&flagged, &fits), name);
     // The series' kept points take this file's now; the findings share
     // them instead of copying them.
     for (key, t) in touched.iter_mut() {
@@ -1916,7 +1933,14 @@ fn store_file_behind<'t, 'c: 't>(
             join_points(p, &mut t.new_points);
         }
     }
-    let work = FindingsWork::gather(cache, &touched, rows.survey, flagged, causes, plain, trends);
+    let work = FindingsWork::gather(
+        cache,
+        &touched,
+        rows.survey,
+        (flagged, causes, fits),
+        plain,
+        trends,
+    );
     // The findings, the file's row and its seal and audit entry are written
     // last, on the writing thread, in the file's transaction; the caller
     // ends it.
@@ -1994,6 +2018,9 @@ fn log_state(points: &[(f64, f64)]) -> Option<SeriesState> {
     Some(s)
 }
 
+/// A series' fit with a record and without it (the fit before it arrived).
+type WithWithout = (Option<LineFit>, Option<LineFit>);
+
 /// A finding without a record under judgement, waiting for the file's fits.
 struct PlainFinding {
     kind: &'static str,
@@ -2051,7 +2078,7 @@ fn rank_flagged(
     config: &Config,
     cache: &mut SeriesCache,
     touched: &HashMap<String, Touched>,
-    flagged: &[Flagged],
+    (flagged, fits): (&[Flagged], &[WithWithout]),
     file_name: &str,
 ) -> Vec<Vec<Candidate>> {
     if flagged.is_empty() {
@@ -2062,7 +2089,8 @@ fn rank_flagged(
     let mut neighbours = Neighbours::of(touched, &cache.rows);
     let ranked = flagged
         .iter()
-        .map(|f| {
+        .zip(fits)
+        .map(|(f, (_, without))| {
             let key = f.record.series.as_str();
             let Some(t) = touched.get(key) else {
                 return Vec::new();
@@ -2101,7 +2129,7 @@ fn rank_flagged(
             raise::likely_causes(
                 config,
                 &f.record,
-                &f.arrival,
+                without.as_ref(),
                 t.settings.transform,
                 Some(f.span_before),
                 &mine,
@@ -2135,6 +2163,8 @@ struct FindingsWork {
     series: HashMap<String, SeriesView>,
     flagged: Vec<Flagged>,
     causes: Vec<Vec<Candidate>>,
+    /// Each flagged record's series fit with it and without it.
+    fits: Vec<WithWithout>,
     plain: Vec<PlainFinding>,
     trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)>,
     errors: usize,
@@ -2146,8 +2176,7 @@ impl FindingsWork {
         cache: &SeriesCache,
         touched: &HashMap<String, Touched>,
         survey: &Survey,
-        flagged: Vec<Flagged>,
-        causes: Vec<Vec<Candidate>>,
+        (flagged, causes, fits): (Vec<Flagged>, Vec<Vec<Candidate>>, Vec<WithWithout>),
         plain: Vec<PlainFinding>,
         trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)>,
     ) -> FindingsWork {
@@ -2182,6 +2211,7 @@ impl FindingsWork {
             series,
             flagged,
             causes,
+            fits,
             plain,
             trends,
             errors: survey.errors,
@@ -2212,7 +2242,7 @@ fn raise_findings(
 ) -> Result<usize, StoreError> {
     let mut raised = 0;
     let mut series_points: HashMap<&str, Arc<Vec<(f64, f64)>>> = HashMap::default();
-    for (f, causes) in work.flagged.iter().zip(&work.causes) {
+    for ((f, causes), fits) in work.flagged.iter().zip(&work.causes).zip(&work.fits) {
         let record = &f.record;
         let key = record.series.as_str();
         let Some(t) = work.series.get(key) else {
@@ -2251,7 +2281,7 @@ fn raise_findings(
                 row_id: f.row_id,
                 series: &t.row,
                 transform: t.transform,
-                arrival: &f.arrival,
+                fits: *fits,
                 judgement: &f.judgement,
                 left_out: f.left_out,
                 fit_point: f.fit_point,

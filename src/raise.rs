@@ -17,7 +17,7 @@ use crate::messages::{
     RobustSlope, Severity, render_notice, render_notice_heading,
 };
 use crate::records::Record;
-use crate::stats::{Arrival, LineFit, Transform};
+use crate::stats::{LineFit, Transform};
 use crate::store::seal::SealScope;
 use crate::store::{AuditKind, FileId, NewFinding, NewMessage, SeriesRow, StoreError, Tx};
 
@@ -33,8 +33,9 @@ pub struct RecordCase<'a> {
     pub series: &'a SeriesRow,
     /// Its transform.
     pub transform: Transform,
-    /// Its arrival in the full fit.
-    pub arrival: &'a Arrival,
+    /// The series' fit with the record and without it (the fit before
+    /// it arrived), when there is one.
+    pub fits: (Option<LineFit>, Option<LineFit>),
     /// What the rules said (judged against the fit without records
     /// awaiting review).
     pub judgement: &'a RecordJudgement,
@@ -83,26 +84,27 @@ fn x_kind_of(
 }
 
 /// The likely entry errors of a flagged record, best first (at most four),
-/// scored against the series' fit without it; `others` are the fits of the
-/// series it could belong to instead. Pure, so that a file's findings can
-/// rank their causes while its rows are still being written.
+/// scored against the series' fit without it (the fit before it arrived);
+/// `others` are the fits of the series it could belong to instead. Pure,
+/// so that a file's findings can rank their causes while its rows are
+/// still being written.
 pub fn likely_causes(
     config: &Config,
     record: &Record,
-    arrival: &Arrival,
+    fit_without: Option<&LineFit>,
     transform: Transform,
     span_before: Option<(f64, f64)>,
     others: &[(&str, LineFit)],
     file_name: &str,
 ) -> Vec<Candidate> {
-    let Ok(fit) = arrival.fit_without(config.level) else {
+    let Some(fit) = fit_without else {
         return Vec::new();
     };
     let others: Vec<(&str, &LineFit)> = others.iter().map(|(k, f)| (*k, f)).collect();
     let x_raw = format!("{}", record.x);
     let y_raw = format!("{}", record.y.number());
     rank_causes(&CauseInput {
-        fit_without: &fit,
+        fit_without: fit,
         transform,
         x: record.x,
         y: record.y.number(),
@@ -134,8 +136,7 @@ pub fn record_finding(
         .collect();
     let severity = severity_of(config, &kinds);
     let level = config.level;
-    let with = case.arrival.fit_with(level).ok();
-    let without = case.arrival.fit_without(level).ok();
+    let (with, without) = case.fits;
     let judged_against = if case.left_out == 0 {
         "the fit of the series before this record".to_string()
     } else {

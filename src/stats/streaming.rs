@@ -67,6 +67,25 @@ impl Arrival {
     pub fn fit_without(&self, level: f64) -> Result<LineFit, FitError> {
         LineFit::from_moments(&self.before, level)
     }
+    /// [`Arrival::fit_with`], the t quantile taken from `quantile` (see
+    /// [`Arrival::fit_without_using`]).
+    pub fn fit_with_using(
+        &self,
+        level: f64,
+        quantile: impl FnMut(usize) -> f64,
+    ) -> Result<LineFit, FitError> {
+        LineFit::from_moments_with(&self.after, level, quantile)
+    }
+    /// [`Arrival::fit_without`] with the interval's t quantile for `df`
+    /// degrees of freedom taken from `quantile` (a memo of `t_quantile`:
+    /// the same fit, without its root search per call).
+    pub fn fit_without_using(
+        &self,
+        level: f64,
+        quantile: impl FnMut(usize) -> f64,
+    ) -> Result<LineFit, FitError> {
+        LineFit::from_moments_with(&self.before, level, quantile)
+    }
     /// Both fits side by side.
     pub fn leave_one_out(&self, level: f64) -> Result<LeaveOneOut, FitError> {
         Ok(LeaveOneOut {

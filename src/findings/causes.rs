@@ -65,7 +65,7 @@
 //! returned.
 
 use crate::records::units::{Matrix, convert};
-use crate::stats::dist::t_two_sided_p;
+use crate::stats::dist::{t_two_sided_p, t_two_sided_p_bound};
 use crate::stats::{LineFit, Transform};
 
 /// The p-value a candidate needs at least, however badly the record fits.
@@ -363,13 +363,20 @@ pub fn rank_causes(input: &CauseInput<'_>) -> Ranked {
     // |t|: the first below the needed p ends the visit, and after `max`
     // listed ones only exact ties of the last |t| are still visited (a tie
     // keeps the order tried and marks `tied`, as if every p were known).
-    // Candidates scored against other series' fits all get their p.
+    // Candidates scored against other series' fits get their p, unless the
+    // t tail's upper bound already puts them below the needed p.
     let mut own: Vec<(usize, Candidate)> = Vec::new();
     let mut listed: Vec<(usize, Candidate)> = Vec::new();
     for (i, mut c) in scored.candidates.into_iter().enumerate() {
         if c.kind == CauseKind::OtherSeries {
+            // Most other series fit the record far worse than needed: an
+            // upper bound on p well below it settles them without the
+            // exact tail (the margin keeps round-off out of the decision).
+            if !passes_leverage(&c) || t_two_sided_p_bound(c.score.t) < needed * 0.999 {
+                continue;
+            }
             c.score.p = t_two_sided_p(c.score.t, c.score.df as f64);
-            if c.score.p >= needed && passes_leverage(&c) {
+            if c.score.p >= needed {
                 listed.push((i, c));
             }
         } else if passes_leverage(&c) {

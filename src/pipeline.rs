@@ -2111,21 +2111,30 @@ fn rank_flagged(
                 )
                 .flatten()
                 .copied();
-            let mut mine: Vec<(&str, LineFit)> = Vec::new();
+            // Their fits, computed once per file; then lent, not copied
+            // (a record can have a hundred related series).
+            let mut related_here: Vec<usize> = Vec::new();
             for i in related {
-                let Some(&(k, other_scale, m)) = neighbours.series.get(i) else {
+                let Some(&(k, other_scale, ref m)) = neighbours.series.get(i) else {
                     continue;
                 };
                 if k == key || other_scale != scale {
                     continue;
                 }
-                let fit = neighbours.fits[i].get_or_insert_with(|| {
-                    LineFit::from_moments_with(&m, config.level, |df| quantiles.get(df)).ok()
-                });
-                if let Some(fit) = fit {
-                    mine.push((k, *fit));
+                if let Some(slot) = neighbours.fits.get_mut(i) {
+                    slot.get_or_insert_with(|| {
+                        LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
+                    });
+                    related_here.push(i);
                 }
             }
+            let mine: Vec<(&str, &LineFit)> = related_here
+                .iter()
+                .filter_map(|&i| {
+                    let fit = neighbours.fits.get(i)?.as_ref()?.as_ref()?;
+                    Some((neighbours.series.get(i)?.0, fit))
+                })
+                .collect();
             raise::likely_causes(
                 config,
                 &f.record,

@@ -94,13 +94,12 @@ pub fn likely_causes(
     fit_without: Option<&LineFit>,
     transform: Transform,
     span_before: Option<(f64, f64)>,
-    others: &[(&str, LineFit)],
+    others: &[(&str, &LineFit)],
     file_name: &str,
 ) -> Vec<Candidate> {
     let Some(fit) = fit_without else {
         return Vec::new();
     };
-    let others: Vec<(&str, &LineFit)> = others.iter().map(|(k, f)| (*k, f)).collect();
     let x_raw = format!("{}", record.x);
     let y_raw = format!("{}", record.y.number());
     rank_causes(&CauseInput {
@@ -112,7 +111,7 @@ pub fn likely_causes(
         y_raw: &y_raw,
         x_kind: x_kind_of(config, file_name, transform, span_before),
         unit: record.unit.as_deref(),
-        others: &others,
+        others,
         max: 4,
     })
     .candidates

@@ -1344,9 +1344,12 @@ fn store_file_behind<'t, 'c: 't>(
         }
     };
     let mut counts = FileCounts::default();
-    let mut touched: HashMap<String, Touched> = HashMap::default();
-    let mut order: Vec<String> = Vec::new();
     let per_series = &rows.survey.per_series;
+    // Sized for every series of the file at once: a Touched is large, and
+    // regrowing the map moved them all (measured in memmove).
+    let mut touched: HashMap<String, Touched> =
+        HashMap::with_capacity_and_hasher(per_series.len(), Default::default());
+    let mut order: Vec<String> = Vec::with_capacity(per_series.len());
     let mut flagged: Vec<Flagged> = Vec::new();
     let mut plain: Vec<PlainFinding> = Vec::new();
     loop {

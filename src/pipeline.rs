@@ -334,11 +334,7 @@ pub fn process_in_order(
                 files_in.again.push_front(prepared);
                 let run = match store.begin() {
                     Ok(tx) => Some(write_behind(tx, durable, |b| {
-                        let ahead = Ahead {
-                            stop,
-                            spent: &spent_tx,
-                        };
-                        run_ahead(b, &mut files_in, next, cache, ahead, &mut each)
+                        run_ahead(b, &mut files_in, next, cache, stop, &spent_tx, &mut each)
                     })),
                     Err(_) => None,
                 };
@@ -445,14 +441,6 @@ impl Run {
     }
 }
 
-/// What [`run_ahead`] is given besides the files.
-struct Ahead<'a> {
-    /// Set when the caller asks to stop.
-    stop: &'a AtomicBool,
-    /// Where files done with go to be freed.
-    spent: &'a std::sync::mpsc::Sender<Prepared>,
-}
-
 /// A file whose transaction was ended (to commit) and not yet settled.
 struct InFlight {
     index: usize,
@@ -467,16 +455,17 @@ struct InFlight {
 /// commit is known; a file computed on assumptions that turned out wrong
 /// (the file before it failed, or the store was not as assumed) is rolled
 /// back and taken again.
+#[allow(clippy::too_many_arguments)]
 fn run_ahead<'t, 'c: 't>(
     b: &mut Behind<'t>,
     files_in: &mut Taken<'_, 'c>,
     first: usize,
     cache: &mut SeriesCache,
-    ahead: Ahead<'_>,
+    stop: &AtomicBool,
+    spent: &std::sync::mpsc::Sender<Prepared>,
     each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
 ) -> Run {
     let files = files_in.files;
-    let (stop, spent) = (ahead.stop, ahead.spent);
     let mut index = first;
     let mut in_flight: Option<InFlight> = None;
     let mut start = Start::Read;
@@ -490,7 +479,7 @@ fn run_ahead<'t, 'c: 't>(
             // Done (or stopping): settle the file in flight.
             return match in_flight.take() {
                 None => Run::next(index),
-                Some(f) => match settle(b, files, f, cache, &ahead, each) {
+                Some(f) => match settle(b, files, f, cache, spent, each) {
                     Settled::Done(flow) | Settled::Failed(flow) => Run {
                         next: index,
                         stopped: flow == Flow::Stop,
@@ -508,7 +497,7 @@ fn run_ahead<'t, 'c: 't>(
             files_in.again.push_front(prepared);
             return match in_flight
                 .take()
-                .map(|f| settle(b, files, f, cache, &ahead, each))
+                .map(|f| settle(b, files, f, cache, spent, each))
             {
                 None | Some(Settled::Done(Flow::Continue) | Settled::Failed(Flow::Continue)) => {
                     Run::next(index)
@@ -528,7 +517,7 @@ fn run_ahead<'t, 'c: 't>(
         // This file's transaction is still open: the one before it is
         // settled first.
         if let Some(f) = in_flight.take() {
-            match settle(b, files, f, cache, &ahead, each) {
+            match settle(b, files, f, cache, spent, each) {
                 Settled::Done(Flow::Continue) => {}
                 Settled::Failed(Flow::Continue) => {
                     // Computed on the one before it, which failed: again.
@@ -616,13 +605,12 @@ fn settle(
     files: &[(&Config, ReadyFile)],
     f: InFlight,
     cache: &mut SeriesCache,
-    ahead: &Ahead<'_>,
+    spent: &std::sync::mpsc::Sender<Prepared>,
     each: &mut impl FnMut(usize, &ReadyFile, Result<Outcome, PipelineError>) -> Flow,
 ) -> Settled {
     let Some((config, file)) = files.get(f.index) else {
         unreachable!("BUG: a file in flight is one of the files");
     };
-    let spent = ahead.spent;
     // Committed, and on disk when a WalSync was given.
     match b.outcome() {
         Ok(()) => {

@@ -162,21 +162,20 @@ pub fn write_behind<'t, R>(
         let mut sync_here = None;
         // The writer's outcomes go through the syncing thread, when there
         // is one to make commits durable.
-        let writer_outcomes = match durable {
+        let writer_outcomes = match durable.clone() {
             None => outcome_tx,
             Some(wal) => {
                 let (ended_tx, ended) = channel::<Ended>();
-                let for_thread = wal.clone();
                 let spawned = std::thread::Builder::new()
                     .name("store-sync".into())
-                    .spawn_scoped(scope, move || sync_commits(for_thread, ended, outcome_tx));
+                    .spawn_scoped(scope, move || sync_commits(wal, ended, outcome_tx));
                 match spawned {
                     Ok(_) => ended_tx,
                     Err(e) => {
                         // Its channel end went with it: outcomes come
                         // straight from the writer, synced as taken.
                         tracing::warn!(error = %e, "cannot start the store's syncing thread; syncing as outcomes are taken");
-                        sync_here = Some(wal);
+                        sync_here.clone_from(&durable);
                         let (direct_tx, direct) = channel();
                         outcomes = direct;
                         direct_tx
@@ -194,8 +193,10 @@ pub fn write_behind<'t, R>(
                 outcomes,
             }),
             Err(e) => {
-                // Out of threads or memory: the same jobs, on this thread.
+                // Out of threads or memory: the same jobs, on this thread,
+                // whose outcomes never pass the syncing thread.
                 tracing::warn!(error = %e, "cannot start the store's writing thread; writing on this one");
+                sync_here = durable;
                 None
             }
         };
@@ -219,13 +220,19 @@ pub fn write_behind<'t, R>(
 /// other outcomes pass as they are.
 fn sync_commits(mut wal: WalSync, ended: Receiver<Ended>, outcomes: Sender<Ended>) {
     for (commit, outcome) in ended {
-        let outcome = match outcome {
-            Ok(()) if commit => wal.sync(),
-            other => other,
-        };
+        let outcome = durable(&mut wal, commit, outcome);
         if outcomes.send((commit, outcome)).is_err() {
             return;
         }
+    }
+}
+
+/// A transaction's outcome once a commit is on disk: a commit's `Ok` becomes
+/// the sync's result; anything else is as it was.
+fn durable(wal: &mut WalSync, commit: bool, outcome: Result<()>) -> Result<()> {
+    match outcome {
+        Ok(()) if commit => wal.sync(),
+        other => other,
     }
 }
 
@@ -325,9 +332,9 @@ impl<'t> Behind<'t> {
             None => self.ended.pop_front().unwrap_or(lost),
             Some(w) => w.outcomes.recv().unwrap_or(lost),
         };
-        match (outcome, self.sync_here.as_mut()) {
-            (Ok(()), Some(wal)) if commit => wal.sync(),
-            (outcome, _) => outcome,
+        match self.sync_here.as_mut() {
+            Some(wal) => durable(wal, commit, outcome),
+            None => outcome,
         }
     }
 
@@ -436,16 +443,7 @@ mod tests {
     fn without_a_writing_thread_jobs_run_at_once_with_the_same_failure_rule() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let mut b = Behind {
-            held: Some(Slot {
-                tx,
-                open: true,
-                health: Health::Fine,
-            }),
-            writer: None,
-            ended: VecDeque::new(),
-            sync_here: None,
-        };
+        let mut b = on_this_thread(tx, None);
         b.later(entry("a".into()));
         assert_eq!(entries_in(b.tx().unwrap()), 1);
         b.later(failing());
@@ -555,16 +553,8 @@ mod tests {
     fn without_a_syncing_thread_commits_are_made_durable_as_outcomes_are_taken() {
         let (dir, mut store) = on_disk();
         let tx = store.begin().unwrap();
-        let mut b = Behind {
-            held: Some(Slot {
-                tx,
-                open: true,
-                health: Health::Fine,
-            }),
-            writer: None,
-            ended: VecDeque::new(),
-            sync_here: Some(WalSync::at(&dir.path().join("gone").join("s.sqlite3"))),
-        };
+        let wal = WalSync::at(&dir.path().join("gone").join("s.sqlite3"));
+        let mut b = on_this_thread(tx, Some(wal));
         b.later(entry("a".into()));
         let err = b
             .commit()
@@ -575,6 +565,21 @@ mod tests {
         b.commit().unwrap();
         drop(b);
         assert_eq!(audit_count(&store), 2);
+    }
+
+    /// A `Behind` as [`write_behind`] makes it when no thread can be
+    /// started.
+    fn on_this_thread<'t>(tx: Tx<'t>, sync_here: Option<WalSync>) -> Behind<'t> {
+        Behind {
+            held: Some(Slot {
+                tx,
+                open: true,
+                health: Health::Fine,
+            }),
+            writer: None,
+            ended: VecDeque::new(),
+            sync_here,
+        }
     }
 
     /// A sync for the store of [`on_disk`].

@@ -8,8 +8,9 @@
 //! commits at `NORMAL` instead (SQLite then appends the transaction to the
 //! log without waiting for the disk; the log stays consistent, only the
 //! newest transactions can be lost to a power cut or a system crash, never
-//! to a crash of this process), and the thread that settles each file
-//! fsyncs the log itself, while the writer goes on with the next file.
+//! to a crash of this process), and a thread of its own (`store-sync`, in
+//! `behind.rs`) fsyncs the log after each commit, while the writer goes on
+//! with the next file.
 //!
 //! The rule that keeps a record from being lost or counted twice is
 //! unchanged: a file leaves the inbox only after its commit is on disk.

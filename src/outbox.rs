@@ -255,7 +255,7 @@ mod tests {
                     fit_version: None,
                     fit_point: None,
                     summary: "test",
-                    detail: &serde_json::json!({}),
+                    detail: "{}",
                 })
                 .unwrap();
             let to = &config.mail.to[0];

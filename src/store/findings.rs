@@ -29,8 +29,8 @@ pub struct NewFinding<'a> {
     pub fit_point: Option<(f64, f64)>,
     /// One line for lists.
     pub summary: &'a str,
-    /// The numbers, as a JSON document.
-    pub detail: &'a serde_json::Value,
+    /// The numbers, as the text of a JSON document.
+    pub detail: &'a str,
 }
 
 /// A finding as stored.
@@ -125,7 +125,7 @@ impl Tx<'_> {
     pub fn insert_finding(&self, f: &NewFinding<'_>) -> Result<i64> {
         let ids = serde_json::to_string(f.record_ids).unwrap_or_else(|_| "[]".into());
         let kinds = serde_json::to_string(f.kinds).unwrap_or_else(|_| "[]".into());
-        let detail = f.detail.to_string();
+        let detail = f.detail;
         self.tx
             .prepare_cached(
                 "INSERT INTO findings (created_at, series_id, file_id, record_row, record_ids, kinds,
@@ -556,7 +556,7 @@ mod tests {
                     fit_version: Some(3),
                     fit_point: Some(point),
                     summary: "a summary",
-                    detail: &detail,
+                    detail: &detail.to_string(),
                 })
                 .unwrap();
             let mid = format!("<finding-{id}@t>");

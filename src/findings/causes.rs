@@ -460,9 +460,10 @@ fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable>
         return Err(Unavailable::RecordNotFinite);
     }
     let as_written = score(input.fit_without, input.transform, input.x, input.y);
-    let mut candidates = Vec::new();
+    let proposals = proposals(input);
+    let mut candidates = Vec::with_capacity(proposals.len());
     let mut off_scale = 0;
-    for proposal in proposals(input) {
+    for proposal in proposals {
         if same_value(proposal.x, input.x)
             && same_value(proposal.y, input.y)
             && proposal.kind != CauseKind::OtherSeries

@@ -435,6 +435,10 @@ pub(crate) struct SealRows {
     /// Row id and where its bytes start in `bytes`, in the order written
     /// (a row's bytes end where the next row's start).
     rows: Vec<(i64, usize)>,
+    /// Rows appended after these, kept as they came ([`SealRows::append`]):
+    /// copying them into `bytes` moved every batch of a file's rows once
+    /// more, on the writing thread.
+    more: Vec<SealRows>,
 }
 
 /// One row being added to a [`SealRows`]: its columns are put in the
@@ -452,8 +456,21 @@ impl SealRow<'_> {
 }
 
 impl SealRows {
+    /// Empty, with room for the ids of `rows` rows.
+    pub(crate) fn with_rows(rows: usize) -> Self {
+        SealRows {
+            rows: Vec::with_capacity(rows),
+            ..SealRows::default()
+        }
+    }
+
     /// Starts the row with id `id`; put its columns in the returned row.
     pub(crate) fn row(&mut self, id: i64) -> SealRow<'_> {
+        if !self.more.is_empty() {
+            // Rows written here after appended ones (not the usual order):
+            // one run of bytes again.
+            self.gather();
+        }
         self.rows.push((id, self.bytes.len()));
         self.bytes.push(ROW_TAG);
         SealRow {
@@ -461,42 +478,84 @@ impl SealRows {
         }
     }
 
-    /// Rows added.
-    pub(crate) fn len(&self) -> usize {
-        self.rows.len()
+    /// Once the first row is in: room for the rest of those announced to
+    /// [`SealRows::with_rows`] at its size and a quarter more, so that the
+    /// bytes are not moved as they grow.
+    pub(crate) fn expect_like_first(&mut self) {
+        if self.rows.len() == 1 {
+            let first = self.bytes.len();
+            let want = first.saturating_mul(self.rows.capacity()) / 4 * 5;
+            self.bytes.reserve(want.saturating_sub(first));
+        }
     }
 
-    /// Appends `other`'s rows after these.
-    pub(crate) fn append(&mut self, other: SealRows) {
-        let shift = self.bytes.len();
-        self.rows
-            .extend(other.rows.into_iter().map(|(id, at)| (id, at + shift)));
-        self.bytes.extend_from_slice(&other.bytes);
+    /// Rows added.
+    pub(crate) fn len(&self) -> usize {
+        self.rows.len() + self.more.iter().map(|m| m.rows.len()).sum::<usize>()
+    }
+
+    /// Bytes held.
+    pub(crate) fn byte_len(&self) -> usize {
+        self.bytes.len() + self.more.iter().map(|m| m.bytes.len()).sum::<usize>()
+    }
+
+    /// Appends `other`'s rows after these, without copying them.
+    pub(crate) fn append(&mut self, mut other: SealRows) {
+        if self.rows.is_empty() && self.more.is_empty() {
+            *self = other;
+            return;
+        }
+        let nested = std::mem::take(&mut other.more);
+        if !other.rows.is_empty() {
+            self.more.push(other);
+        }
+        self.more
+            .extend(nested.into_iter().filter(|m| !m.rows.is_empty()));
+    }
+
+    /// The appended rows copied into `bytes`, after these.
+    fn gather(&mut self) {
+        for m in std::mem::take(&mut self.more) {
+            let shift = self.bytes.len();
+            self.rows
+                .extend(m.rows.into_iter().map(|(id, at)| (id, at + shift)));
+            self.bytes.extend_from_slice(&m.bytes);
+        }
+    }
+
+    /// Each part's bytes and row starts, in the order added.
+    fn parts(&self) -> impl Iterator<Item = &SealRows> {
+        std::iter::once(self).chain(self.more.iter())
     }
 
     /// Feeds the section to the hash, rows in id order (as the section's
     /// `ORDER BY id`), and empties it.
     fn feed(&mut self, h: &mut Sha256) {
         h.update(SECTION_TAG);
-        if self.rows.is_sorted_by_key(|r| r.0) {
+        let ids = || self.parts().flat_map(|p| p.rows.iter().map(|r| r.0));
+        if ids().is_sorted() {
             // Written in id order (the usual case): the bytes follow each
             // other already.
-            h.update(&self.bytes);
+            for p in self.parts() {
+                h.update(&p.bytes);
+            }
         } else {
-            let ends = self.rows.iter().skip(1).map(|r| r.1);
-            let mut spans: Vec<(i64, usize, usize)> = self
-                .rows
-                .iter()
-                .zip(ends.chain([self.bytes.len()]))
-                .map(|(&(id, start), end)| (id, start, end))
+            let mut spans: Vec<(i64, &[u8])> = self
+                .parts()
+                .flat_map(|p| {
+                    let ends = p.rows.iter().skip(1).map(|r| r.1);
+                    p.rows
+                        .iter()
+                        .zip(ends.chain([p.bytes.len()]))
+                        .map(|(&(id, start), end)| (id, &p.bytes[start..end]))
+                })
                 .collect();
-            spans.sort_unstable_by_key(|r| r.0);
-            for (_, start, end) in spans {
-                h.update(&self.bytes[start..end]);
+            spans.sort_by_key(|r| r.0);
+            for (_, bytes) in spans {
+                h.update(bytes);
             }
         }
-        self.bytes.clear();
-        self.rows.clear();
+        *self = SealRows::default();
     }
 }
 
@@ -530,7 +589,7 @@ impl FileRows {
 
     /// Drops the buffers once they pass the budget.
     pub(crate) fn check_budget(&mut self) {
-        let held = self.records.bytes.len() + self.fits.bytes.len() + self.quarantined.bytes.len();
+        let held = self.records.byte_len() + self.fits.byte_len() + self.quarantined.byte_len();
         if held > Self::BUDGET {
             *self = FileRows {
                 read_back: true,
@@ -611,6 +670,57 @@ mod tests {
         let mut predicted = Vec::new();
         value.encode(&mut predicted);
         (inside, after, predicted)
+    }
+
+    /// Rows appended in parts hash as the same rows written in one run in
+    /// id order, whatever order the parts came in and whether rows were
+    /// written after them.
+    #[test]
+    fn appended_parts_hash_as_one_run_in_id_order() {
+        let part = |ids: &[i64]| {
+            let mut p = SealRows::with_rows(ids.len());
+            for &id in ids {
+                p.row(id)
+                    .put(&id)
+                    .put(&format!("row {id}"))
+                    .put(&(id as f64 / 3.0));
+                p.expect_like_first();
+            }
+            p
+        };
+        let hash = |mut rows: SealRows| {
+            let mut h = Sha256::new();
+            rows.feed(&mut h);
+            hex::encode(h.finalize())
+        };
+        let want = hash(part(&[1, 2, 3, 4, 5, 6, 7]));
+        // In order, the first part moved in, the others kept as parts.
+        let mut in_order = SealRows::default();
+        for ids in [&[1, 2][..], &[3, 4, 5], &[6, 7]] {
+            in_order.append(part(ids));
+        }
+        assert_eq!(in_order.len(), 7);
+        assert_eq!(in_order.more.len(), 2);
+        assert_eq!(hash(in_order), want);
+        // Out of order across parts.
+        let mut shuffled = part(&[6, 7]);
+        shuffled.append(part(&[1, 2]));
+        shuffled.append(part(&[3, 5, 4]));
+        assert_eq!(hash(shuffled), want);
+        // A part holding parts of its own, then a row written after them.
+        let mut nested = part(&[2]);
+        nested.append(part(&[3]));
+        let mut outer = part(&[1]);
+        outer.append(nested);
+        outer.append(part(&[4, 5, 6]));
+        outer.row(7).put(&7_i64).put("row 7").put(&(7.0 / 3.0));
+        assert!(outer.more.is_empty(), "gathered before the new row");
+        assert_eq!(outer.byte_len(), part(&[1, 2, 3, 4, 5, 6, 7]).byte_len());
+        assert_eq!(hash(outer), want);
+        // Appending nothing keeps nothing.
+        let mut empty = SealRows::default();
+        empty.append(SealRows::default());
+        assert_eq!((empty.len(), empty.byte_len()), (0, 0));
     }
 
     fn test_table() -> Connection {

@@ -2059,23 +2059,25 @@ struct PlainFinding {
 /// asked for. Built once per file: scanning every series for every flagged
 /// record cost O(series) each.
 struct Neighbours<'a> {
-    /// Key, scale (transform name) and moments.
-    series: Vec<(&'a str, &'a str, Moments)>,
-    fits: Vec<Option<Option<LineFit>>>,
+    /// Key, scale (transform name) and moments (lent, not copied: a file
+    /// with a flagged record builds this over every series met).
+    series: Vec<(&'a str, &'a str, &'a Moments)>,
+    /// The fits asked for so far, by index into `series`.
+    fits: HashMap<usize, Option<LineFit>>,
     by_site: HashMap<&'a str, Vec<usize>>,
     by_parameter: HashMap<&'a str, Vec<usize>>,
 }
 
 impl<'a> Neighbours<'a> {
     fn of(touched: &'a HashMap<String, Touched>, earlier: &'a HashMap<String, SeriesRow>) -> Self {
-        let series: Vec<(&str, &str, Moments)> = touched
+        let series: Vec<(&str, &str, &Moments)> = touched
             .iter()
-            .map(|(k, o)| (k.as_str(), o.settings.transform.name(), *o.state.moments()))
+            .map(|(k, o)| (k.as_str(), o.settings.transform.name(), o.state.moments()))
             .chain(
                 earlier
                     .iter()
                     .filter(|(k, _)| !touched.contains_key(*k))
-                    .map(|(k, r)| (k.as_str(), r.transform.as_str(), r.moments)),
+                    .map(|(k, r)| (k.as_str(), r.transform.as_str(), &r.moments)),
             )
             .collect();
         let mut by_site: HashMap<&str, Vec<usize>> = HashMap::default();
@@ -2088,7 +2090,7 @@ impl<'a> Neighbours<'a> {
             }
         }
         Neighbours {
-            fits: vec![None; series.len()],
+            fits: HashMap::default(),
             series,
             by_site,
             by_parameter,
@@ -2139,23 +2141,21 @@ fn rank_flagged(
             // (a record can have a hundred related series).
             let mut related_here: Vec<usize> = Vec::new();
             for i in related {
-                let Some(&(k, other_scale, ref m)) = neighbours.series.get(i) else {
+                let Some(&(k, other_scale, m)) = neighbours.series.get(i) else {
                     continue;
                 };
                 if k == key || other_scale != scale {
                     continue;
                 }
-                if let Some(slot) = neighbours.fits.get_mut(i) {
-                    slot.get_or_insert_with(|| {
-                        LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
-                    });
-                    related_here.push(i);
-                }
+                neighbours.fits.entry(i).or_insert_with(|| {
+                    LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
+                });
+                related_here.push(i);
             }
             let mine: Vec<(&str, &LineFit)> = related_here
                 .iter()
                 .filter_map(|&i| {
-                    let fit = neighbours.fits.get(i)?.as_ref()?.as_ref()?;
+                    let fit = neighbours.fits.get(&i)?.as_ref()?;
                     Some((neighbours.series.get(i)?.0, fit))
                 })
                 .collect();

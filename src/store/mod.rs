@@ -23,6 +23,7 @@
 
 mod audit;
 mod behind;
+mod bulk;
 mod check;
 mod checkpoint;
 mod durable;
@@ -74,6 +75,64 @@ const HAND_STATEMENTS: usize = 8;
 fn multi_row_insert(head: &str, columns: usize, rows: usize) -> String {
     let group = format!("({})", vec!["?"; columns].join(", "));
     format!("{head}{}", vec![group.as_str(); rows].join(", "))
+}
+
+/// The tables written with multi-row INSERTs bound in place.
+#[derive(Debug, Clone, Copy)]
+enum BulkTable {
+    Records,
+    Fits,
+}
+
+impl BulkTable {
+    /// Rows per multi-row statement, and columns per row.
+    fn shape(self) -> (usize, usize) {
+        match self {
+            BulkTable::Records => (RECORD_CHUNK, RECORD_COLUMNS),
+            BulkTable::Fits => (FIT_CHUNK, FIT_COLUMNS),
+        }
+    }
+
+    fn head(self) -> &'static str {
+        match self {
+            BulkTable::Records => INSERT_RECORD_HEAD,
+            BulkTable::Fits => INSERT_FIT_HEAD,
+        }
+    }
+}
+
+/// A transaction's prepared [`BulkTable`] statements: for each table, one
+/// of a whole chunk of rows and one of a single row, prepared when first
+/// needed and finalized with the transaction object.
+#[derive(Debug, Default)]
+struct BulkStatements {
+    records: [Option<bulk::BulkStatement>; 2],
+    fits: [Option<bulk::BulkStatement>; 2],
+}
+
+impl BulkStatements {
+    /// `table`'s statement for `rows` rows (a whole chunk, or 1).
+    fn get(
+        &mut self,
+        conn: &Connection,
+        table: BulkTable,
+        rows: usize,
+    ) -> rusqlite::Result<&mut bulk::BulkStatement> {
+        let (chunk, columns) = table.shape();
+        let slots = match table {
+            BulkTable::Records => &mut self.records,
+            BulkTable::Fits => &mut self.fits,
+        };
+        let slot = &mut slots[usize::from(rows == chunk)];
+        if slot.is_none() {
+            let sql = multi_row_insert(table.head(), columns, rows);
+            *slot = Some(bulk::BulkStatement::prepare(conn, &sql)?);
+        }
+        match slot {
+            Some(stmt) => Ok(stmt),
+            None => unreachable!("BUG: prepared just above"),
+        }
+    }
 }
 
 /// A record's own diagnostics in the fit it joined, as stored.
@@ -424,9 +483,39 @@ impl FitBatch {
     }
 }
 
-/// A value a row's INSERT binds and its seal encodes (see `seal.rs`).
-trait Column: rusqlite::ToSql + seal::SealValue {}
-impl<T: rusqlite::ToSql + seal::SealValue + ?Sized> Column for T {}
+/// Where a row's columns go, one by one in the table's order: bound for
+/// an insert ([`Values`]) or encoded for a seal ([`SealSink`]). The same
+/// function gives both, so a seal encodes what was bound. Values borrow
+/// from the row for `'a` ([`bulk::ToVal`]), and are bound in place.
+trait Sink<'a> {
+    fn put<V: bulk::ToVal<'a> + seal::SealValue>(&mut self, v: V, goes: Goes);
+}
+
+/// Collects a row's values for an insert.
+struct Values<'a, 'v> {
+    out: &'v mut Vec<bulk::Val<'a>>,
+}
+
+impl<'a> Sink<'a> for Values<'a, '_> {
+    fn put<V: bulk::ToVal<'a> + seal::SealValue>(&mut self, v: V, goes: Goes) {
+        if goes != Goes::Seal {
+            self.out.push(v.to_val());
+        }
+    }
+}
+
+/// Encodes a row's columns for its seal.
+struct SealSink<'r> {
+    row: seal::SealRow<'r>,
+}
+
+impl<'a> Sink<'a> for SealSink<'_> {
+    fn put<V: bulk::ToVal<'a> + seal::SealValue>(&mut self, v: V, goes: Goes) {
+        if goes != Goes::Insert {
+            self.row.put(&v);
+        }
+    }
+}
 
 /// Where a column's value goes.
 #[derive(Clone, Copy, PartialEq, Eq)]
@@ -446,153 +535,102 @@ enum Goes {
 /// `window`, `trigger_window`). `trigger_verdict` and `trigger_window` are
 /// NULL at insert; only a verdict's or a window change's fit (which has no
 /// trigger file) gets them set.
-fn fit_columns(row: &PendingFit, put: &mut dyn FnMut(&dyn Column, Goes)) {
+fn fit_columns<'a>(row: &'a PendingFit, s: &mut impl Sink<'a>) {
     use Goes::{Both, Seal};
     let fit = row.fit.as_ref();
     let robust = row.robust;
     let m = &row.moments;
     let null: Option<i64> = None;
-    put(&row.id, Both);
-    put(&row.series, Both);
-    put(&row.version, Both);
-    put(&row.trigger_file, Both);
-    put(&row.created_at, Both);
-    put(&row.transform, Both);
-    put(&row.non_detects, Both);
-    put(&(m.n as i64), Both);
-    put(&row.censored, Both);
-    put(&row.level, Both);
-    put(&fit.map(|v| v.slope), Both);
-    put(&fit.map(|v| v.intercept), Both);
-    put(&fit.map(|v| v.slope_se), Both);
-    put(&fit.map(|v| v.intercept_se), Both);
-    put(&fit.and_then(|v| v.slope_t), Both);
-    put(&fit.and_then(|v| v.slope_p), Both);
-    put(&fit.map(|v| v.slope_ci_low), Both);
-    put(&fit.map(|v| v.slope_ci_high), Both);
-    put(&fit.and_then(|v| v.r_squared), Both);
-    put(&fit.map(|v| v.residual_sd), Both);
-    put(&fit.map(|v| v.df as i64), Both);
-    put(&robust.map(|r| r.slope), Both);
-    put(&robust.map(|r| r.ci_low), Both);
-    put(&robust.map(|r| r.ci_high), Both);
-    put(&robust.map(|r| r.mk_s), Both);
-    put(&robust.map(|r| r.mk_p), Both);
-    put(&row.note, Both);
-    put(&row.records, Both);
-    put(&row.robust_n, Both);
-    put(&m.origin, Both);
-    put(&m.mean_x, Both);
-    put(&m.mean_y, Both);
-    put(&m.sxx, Both);
-    put(&m.sxy, Both);
-    put(&m.syy, Both);
-    put(&m.sse, Both);
-    put(&row.prev_fit, Both);
-    put(&row.x_span.map(|s| s.0), Both);
-    put(&row.x_span.map(|s| s.1), Both);
-    put(&row.significant, Both);
-    put(&null, Seal);
-    put(&row.window, Both);
-    put(&null, Seal);
+    s.put(row.id, Both);
+    s.put(row.series, Both);
+    s.put(row.version, Both);
+    s.put(row.trigger_file, Both);
+    s.put(&row.created_at, Both);
+    s.put(&row.transform, Both);
+    s.put(&row.non_detects, Both);
+    s.put(m.n as i64, Both);
+    s.put(row.censored, Both);
+    s.put(row.level, Both);
+    s.put(fit.map(|v| v.slope), Both);
+    s.put(fit.map(|v| v.intercept), Both);
+    s.put(fit.map(|v| v.slope_se), Both);
+    s.put(fit.map(|v| v.intercept_se), Both);
+    s.put(fit.and_then(|v| v.slope_t), Both);
+    s.put(fit.and_then(|v| v.slope_p), Both);
+    s.put(fit.map(|v| v.slope_ci_low), Both);
+    s.put(fit.map(|v| v.slope_ci_high), Both);
+    s.put(fit.and_then(|v| v.r_squared), Both);
+    s.put(fit.map(|v| v.residual_sd), Both);
+    s.put(fit.map(|v| v.df as i64), Both);
+    s.put(robust.map(|r| r.slope), Both);
+    s.put(robust.map(|r| r.ci_low), Both);
+    s.put(robust.map(|r| r.ci_high), Both);
+    s.put(robust.map(|r| r.mk_s), Both);
+    s.put(robust.map(|r| r.mk_p), Both);
+    s.put(&row.note, Both);
+    s.put(row.records, Both);
+    s.put(row.robust_n, Both);
+    s.put(m.origin, Both);
+    s.put(m.mean_x, Both);
+    s.put(m.mean_y, Both);
+    s.put(m.sxx, Both);
+    s.put(m.sxy, Both);
+    s.put(m.syy, Both);
+    s.put(m.sse, Both);
+    s.put(row.prev_fit, Both);
+    s.put(row.x_span.map(|s| s.0), Both);
+    s.put(row.x_span.map(|s| s.1), Both);
+    s.put(row.significant, Both);
+    s.put(null, Seal);
+    s.put(&row.window, Both);
+    s.put(null, Seal);
 }
 
 /// Every column of a record row once, in [`INSERT_RECORD_HEAD`] order,
 /// which is [`seal::RECORD_COLUMNS`] order with `status` (left out of the
 /// seal: a verdict changes it) in its place.
-fn record_columns(r: &Record, row: &PendingRecord, put: &mut dyn FnMut(&dyn Column, Goes)) {
+fn record_columns<'a>(r: &'a Record, row: &'a PendingRecord, s: &mut impl Sink<'a>) {
     use Goes::{Both, Insert};
     let (fx, fy) = row.fit_point.unzip();
     let d = row.diagnostics.as_ref();
-    put(&row.id, Both);
-    put(&r.record_id, Both);
-    put(&row.version, Both);
-    put(&row.status, Insert);
-    put(&row.series, Both);
-    put(&r.x, Both);
-    put(&r.y.number(), Both);
-    put(&r.y.is_censored(), Both);
-    put(&row.fit_point.is_some(), Both);
-    put(&fx, Both);
-    put(&fy, Both);
-    put(&r.unit, Both);
-    put(&r.unit_as_written, Both);
-    put(&r.sampled_at, Both);
-    put(&r.note, Both);
-    put(&row.attributes, Both);
-    put(&row.file, Both);
-    put(&(r.line as i64), Both);
-    put(&r.raw, Both);
-    put(&row.prev_in_series, Both);
-    put(&d.map(|d| d.joined_fit), Both);
-    put(&d.and_then(|d| d.leverage), Both);
-    put(&d.and_then(|d| d.standardized), Both);
-    put(&d.and_then(|d| d.studentized), Both);
-    put(&d.and_then(|d| d.cooks), Both);
-    put(&d.and_then(|d| d.dffits), Both);
-    put(&d.and_then(|d| d.dfbetas_intercept), Both);
-    put(&d.and_then(|d| d.dfbetas_slope), Both);
-    put(&d.and_then(|d| d.covariance_ratio), Both);
-    put(&d.and_then(|d| d.prediction_t), Both);
-    put(&d.and_then(|d| d.slope_without), Both);
-    put(&d.and_then(|d| d.slope_p_without), Both);
-    put(&d.and_then(|d| d.undefined), Both);
-}
-
-/// Binds the columns `columns` gives for insert, from parameter offset
-/// `base` (0-based); `count` is how many there must be.
-fn bind_columns(
-    stmt: &mut rusqlite::Statement<'_>,
-    base: usize,
-    count: usize,
-    columns: impl FnOnce(&mut dyn FnMut(&dyn Column, Goes)),
-) -> rusqlite::Result<()> {
-    let mut i = base;
-    let mut result = Ok(());
-    columns(&mut |v, goes| {
-        if goes != Goes::Seal && result.is_ok() {
-            i += 1;
-            result = stmt.raw_bind_parameter(i, v as &dyn rusqlite::ToSql);
-        }
-    });
-    debug_assert!(
-        result.is_err() || i - base == count,
-        "BUG: {} columns bound, {count} expected",
-        i - base
-    );
-    result
+    s.put(row.id, Both);
+    s.put(&r.record_id, Both);
+    s.put(row.version, Both);
+    s.put(row.status, Insert);
+    s.put(row.series, Both);
+    s.put(r.x, Both);
+    s.put(r.y.number(), Both);
+    s.put(r.y.is_censored(), Both);
+    s.put(row.fit_point.is_some(), Both);
+    s.put(fx, Both);
+    s.put(fy, Both);
+    s.put(&r.unit, Both);
+    s.put(&r.unit_as_written, Both);
+    s.put(&r.sampled_at, Both);
+    s.put(&r.note, Both);
+    s.put(&row.attributes, Both);
+    s.put(row.file, Both);
+    s.put(r.line as i64, Both);
+    s.put(&r.raw, Both);
+    s.put(row.prev_in_series, Both);
+    s.put(d.map(|d| d.joined_fit), Both);
+    s.put(d.and_then(|d| d.leverage), Both);
+    s.put(d.and_then(|d| d.standardized), Both);
+    s.put(d.and_then(|d| d.studentized), Both);
+    s.put(d.and_then(|d| d.cooks), Both);
+    s.put(d.and_then(|d| d.dffits), Both);
+    s.put(d.and_then(|d| d.dfbetas_intercept), Both);
+    s.put(d.and_then(|d| d.dfbetas_slope), Both);
+    s.put(d.and_then(|d| d.covariance_ratio), Both);
+    s.put(d.and_then(|d| d.prediction_t), Both);
+    s.put(d.and_then(|d| d.slope_without), Both);
+    s.put(d.and_then(|d| d.slope_p_without), Both);
+    s.put(d.and_then(|d| d.undefined), Both);
 }
 
 /// Encodes the columns `columns` gives for the seal, as row `id`.
-fn seal_columns(
-    out: &mut seal::SealRows,
-    id: i64,
-    columns: impl FnOnce(&mut dyn FnMut(&dyn Column, Goes)),
-) {
-    let mut row = out.row(id);
-    columns(&mut |v, goes| {
-        if goes != Goes::Insert {
-            row.put(v as &dyn seal::SealValue);
-        }
-    });
-}
-
-fn bind_fit(
-    stmt: &mut rusqlite::Statement<'_>,
-    base: usize,
-    row: &PendingFit,
-) -> rusqlite::Result<()> {
-    bind_columns(stmt, base, FIT_COLUMNS, |put| fit_columns(row, put))
-}
-
-fn bind_record(
-    stmt: &mut rusqlite::Statement<'_>,
-    base: usize,
-    (r, row): &(&Record, &PendingRecord),
-) -> rusqlite::Result<()> {
-    bind_columns(stmt, base, RECORD_COLUMNS, |put| {
-        record_columns(r, row, put)
-    })
+fn seal_columns(out: &mut seal::SealRows, id: i64, columns: impl FnOnce(&mut SealSink<'_>)) {
+    columns(&mut SealSink { row: out.row(id) });
 }
 
 /// A `source_files` row written by this transaction, as its columns stand
@@ -1171,6 +1209,7 @@ impl Store {
             written: std::cell::RefCell::new(Vec::new()),
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
+            bulk: std::cell::RefCell::new(BulkStatements::default()),
         };
         tx.renew()?;
         Ok(tx)
@@ -1444,6 +1483,9 @@ pub struct Tx<'a> {
     /// Findings inserted by this transaction and not sealed yet, with
     /// their rows encoded as they were written.
     findings_written: std::cell::RefCell<Vec<(i64, seal::FindingRows)>>,
+    /// The multi-row INSERTs of record and fit rows, prepared once for all
+    /// the files this transaction object writes (it is renewed per file).
+    bulk: std::cell::RefCell<BulkStatements>,
 }
 
 impl Tx<'_> {
@@ -1659,15 +1701,10 @@ impl Tx<'_> {
                 },
             ),
         }
-        static SQL: OnceLock<(String, String)> = OnceLock::new();
-        let sql = SQL.get_or_init(|| {
-            (
-                multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, RECORD_CHUNK),
-                multi_row_insert(INSERT_RECORD_HEAD, RECORD_COLUMNS, 1),
-            )
-        });
         let rows = batch.rows.iter().map(|r| (&source[r.index], r));
-        let written = self.write_chunked(rows, sql, RECORD_CHUNK, RECORD_COLUMNS, bind_record);
+        let written = self.write_bulk(rows, BulkTable::Records, |(r, row), out| {
+            record_columns(r, row, &mut Values { out });
+        });
         batch.rows.clear();
         written
     }
@@ -1713,34 +1750,35 @@ impl Tx<'_> {
         }
     }
 
-    /// Writes `rows` with the `chunk`-row statement while full chunks last,
-    /// then the rest one row at a time (`sql` holds both statements).
-    fn write_chunked<R>(
+    /// Writes `rows` with `table`'s multi-row statement, a whole chunk at a
+    /// time, then the rest one by one; `values` gives a row's values in
+    /// the statement's column order.
+    fn write_bulk<'r, R>(
         &self,
         mut rows: impl ExactSizeIterator<Item = R>,
-        sql: &(String, String),
-        chunk: usize,
-        columns: usize,
-        bind: fn(&mut rusqlite::Statement<'_>, usize, &R) -> rusqlite::Result<()>,
+        table: BulkTable,
+        values: impl Fn(R, &mut Vec<bulk::Val<'r>>),
     ) -> Result<()> {
+        let (chunk, columns) = table.shape();
+        let mut statements = self.bulk.borrow_mut();
+        let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * columns);
         let full = rows.len() / chunk;
         if full > 0 {
-            let mut stmt = self.tx.prepare_cached(&sql.0).map_err(self.wrap())?;
+            let stmt = statements.get(self.tx, table, chunk).map_err(self.wrap())?;
             for _ in 0..full {
-                for k in 0..chunk {
-                    let Some(row) = rows.next() else {
-                        unreachable!("BUG: a full chunk was counted above");
-                    };
-                    bind(&mut stmt, k * columns, &row).map_err(self.wrap())?;
+                bound.clear();
+                for row in rows.by_ref().take(chunk) {
+                    values(row, &mut bound);
                 }
-                stmt.raw_execute().map_err(self.wrap())?;
+                stmt.run(&bound).map_err(self.wrap())?;
             }
         }
         if rows.len() > 0 {
-            let mut stmt = self.tx.prepare_cached(&sql.1).map_err(self.wrap())?;
+            let stmt = statements.get(self.tx, table, 1).map_err(self.wrap())?;
             for row in rows {
-                bind(&mut stmt, 0, &row).map_err(self.wrap())?;
-                stmt.raw_execute().map_err(self.wrap())?;
+                bound.clear();
+                values(row, &mut bound);
+                stmt.run(&bound).map_err(self.wrap())?;
             }
         }
         Ok(())
@@ -1884,14 +1922,11 @@ impl Tx<'_> {
                 },
             ),
         }
-        static SQL: OnceLock<(String, String)> = OnceLock::new();
-        let sql = SQL.get_or_init(|| {
-            (
-                multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, FIT_CHUNK),
-                multi_row_insert(INSERT_FIT_HEAD, FIT_COLUMNS, 1),
-            )
+        let written = self.write_bulk(batch.rows.iter(), BulkTable::Fits, |row, out| {
+            fit_columns(row, &mut Values { out });
         });
-        self.write_chunked(batch.rows.drain(..), sql, FIT_CHUNK, FIT_COLUMNS, bind_fit)
+        batch.rows.clear();
+        written
     }
 
     /// The points of a series' current fit (fitted scale), in arrival

@@ -167,7 +167,13 @@ impl BulkStatement {
                     Val::Text(s) => ffi::sqlite3_bind_text64(
                         stmt,
                         at,
-                        s.as_ptr().cast(),
+                        // An empty text points at a real byte, never at
+                        // the dangling address an empty `&str` may have.
+                        if s.is_empty() {
+                            c"".as_ptr()
+                        } else {
+                            s.as_ptr().cast()
+                        },
                         s.len() as ffi::sqlite3_uint64,
                         ffi::SQLITE_STATIC(),
                         ffi::SQLITE_UTF8 as u8,

@@ -8,7 +8,7 @@ use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags};
 
-use super::{MIGRATIONS, ReportSeriesRow, Result, SeriesRowId, Store, StoreError};
+use super::{BulkStatements, MIGRATIONS, ReportSeriesRow, Result, SeriesRowId, Store, StoreError};
 
 /// Whole-store counts for `/metrics`, read in one snapshot.
 #[derive(Debug, Clone, PartialEq, Default)]
@@ -129,6 +129,7 @@ impl Store {
             });
         }
         Ok(Store {
+            bulk: BulkStatements::default(),
             conn,
             path: path.to_path_buf(),
         })

@@ -101,9 +101,9 @@ impl BulkTable {
     }
 }
 
-/// A transaction's prepared [`BulkTable`] statements: for each table, one
+/// A connection's prepared [`BulkTable`] statements: for each table, one
 /// of a whole chunk of rows and one of a single row, prepared when first
-/// needed and finalized with the transaction object.
+/// needed and finalized with the [`Store`].
 #[derive(Debug, Default)]
 struct BulkStatements {
     records: [Option<bulk::BulkStatement>; 2],
@@ -1091,6 +1091,11 @@ pub struct FitPoint {
 
 /// The store.
 pub struct Store {
+    /// The multi-row INSERTs of record and fit rows, prepared once per
+    /// connection (a file's worth of rows took longer to prepare than to
+    /// write). Declared before `conn`, so that they are finalized before
+    /// it closes.
+    bulk: BulkStatements,
     conn: Connection,
     path: PathBuf,
 }
@@ -1163,7 +1168,11 @@ impl Store {
         conn.pragma_update(None, "wal_autocheckpoint", 20_000)
             .map_err(wrap)?;
         migrate(&mut conn, &path)?;
-        Ok(Store { conn, path })
+        Ok(Store {
+            bulk: BulkStatements::default(),
+            conn,
+            path,
+        })
     }
 
     /// Settings for a connection that ingests. A multi-row INSERT into a
@@ -1209,7 +1218,7 @@ impl Store {
             written: std::cell::RefCell::new(Vec::new()),
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
-            bulk: std::cell::RefCell::new(BulkStatements::default()),
+            bulk: std::cell::RefCell::new(&mut self.bulk),
         };
         tx.renew()?;
         Ok(tx)
@@ -1483,9 +1492,8 @@ pub struct Tx<'a> {
     /// Findings inserted by this transaction and not sealed yet, with
     /// their rows encoded as they were written.
     findings_written: std::cell::RefCell<Vec<(i64, seal::FindingRows)>>,
-    /// The multi-row INSERTs of record and fit rows, prepared once for all
-    /// the files this transaction object writes (it is renewed per file).
-    bulk: std::cell::RefCell<BulkStatements>,
+    /// The connection's multi-row INSERTs of record and fit rows.
+    bulk: std::cell::RefCell<&'a mut BulkStatements>,
 }
 
 impl Tx<'_> {

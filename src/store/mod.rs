@@ -111,19 +111,24 @@ struct BulkStatements {
 }
 
 impl BulkStatements {
-    /// `table`'s statement for `rows` rows (a whole chunk, or 1).
+    /// `table`'s statement for a whole chunk of rows (`whole_chunk`) or
+    /// for one row.
     fn get(
         &mut self,
         conn: &Connection,
         table: BulkTable,
-        rows: usize,
+        whole_chunk: bool,
     ) -> rusqlite::Result<&mut bulk::BulkStatement> {
         let (chunk, columns) = table.shape();
         let slots = match table {
             BulkTable::Records => &mut self.records,
             BulkTable::Fits => &mut self.fits,
         };
-        let slot = &mut slots[usize::from(rows == chunk)];
+        let (slot, rows) = if whole_chunk {
+            (&mut slots[1], chunk)
+        } else {
+            (&mut slots[0], 1)
+        };
         if slot.is_none() {
             let sql = multi_row_insert(table.head(), columns, rows);
             *slot = Some(bulk::BulkStatement::prepare(conn, &sql)?);
@@ -1772,7 +1777,7 @@ impl Tx<'_> {
         let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * columns);
         let full = rows.len() / chunk;
         if full > 0 {
-            let stmt = statements.get(self.tx, table, chunk).map_err(self.wrap())?;
+            let stmt = statements.get(self.tx, table, true).map_err(self.wrap())?;
             for _ in 0..full {
                 bound.clear();
                 for row in rows.by_ref().take(chunk) {
@@ -1782,7 +1787,7 @@ impl Tx<'_> {
             }
         }
         if rows.len() > 0 {
-            let stmt = statements.get(self.tx, table, 1).map_err(self.wrap())?;
+            let stmt = statements.get(self.tx, table, false).map_err(self.wrap())?;
             for row in rows {
                 bound.clear();
                 values(row, &mut bound);

@@ -16,6 +16,7 @@
 /// ingest. foldhash is seeded per process like the default.
 type HashMap<K, V> = std::collections::HashMap<K, V, foldhash::fast::RandomState>;
 use std::collections::VecDeque;
+use std::io::{Seek, SeekFrom};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -74,16 +75,21 @@ fn lower_this_thread_priority(niceness: i32) {
 const MAX_LEFT_OUT_SHARE: usize = 10;
 
 /// A file larger than this is neither read ahead on the reader thread nor
-/// parsed whole: a parsed record takes several times its line in memory
+/// held in memory: a parsed record takes several times its line in memory
 /// (about 480 bytes for a 58-byte line), so a 100 MB delivery parsed whole
-/// took 1 GB. It is read when its turn comes and parsed in chunks of
-/// [`CHUNK_ROWS`] rows, twice: once to count each series' records and the
-/// refused rows (what the outlier test and the reject-file rule need of
-/// the whole file), once to store them, in the same one transaction.
+/// took 1 GB, and even its bytes held whole took 100 MB. It is read from
+/// disk when its turn comes, in pieces of [`PIECE_BYTES`], and parsed in
+/// chunks of [`CHUNK_ROWS`] rows, twice (see [`Large`]): once to hash it and
+/// count each series' records and the refused rows (what the outlier test
+/// and the reject-file rule need of the whole file), once to store them,
+/// in the same one transaction.
 const LARGE_FILE_BYTES: u64 = 4 << 20;
 
 /// Rows per chunk of a large file.
 const CHUNK_ROWS: usize = 16_384;
+
+/// Bytes read from disk at a time from a large file.
+const PIECE_BYTES: usize = 1 << 20;
 
 /// Refused rows listed in a finding or a reject-file reason; the rest are
 /// counted (each is stored in `quarantined_rows` all the same).
@@ -196,12 +202,25 @@ pub enum PipelineError {
 /// thread while the previous file is being stored.
 #[derive(Debug)]
 pub struct Prepared {
+    /// The hash, the size and (for a small file) the bytes.
     read: Result<(String, u64, Vec<u8>), InboxError>,
     /// `None` for a large file, parsed in chunks as it is stored.
     parsed: Option<Result<records::ParsedFile, records::FileError>>,
+    /// A large file: open, read once already (hashed and surveyed).
+    large: Option<Large>,
     now: SystemTime,
     /// The last chunk's records once stored, freed with the rest.
     stored: Option<Arc<Vec<Record>>>,
+}
+
+/// A large file, never held whole in memory: it is read from disk twice,
+/// in pieces, through one open handle. The first read hashes it and
+/// surveys its rows; the second stores them, hashing again, and fails at
+/// the end (before the commit) if the content is not the same.
+#[derive(Debug)]
+struct Large {
+    file: std::fs::File,
+    survey: Result<Survey, records::FileError>,
 }
 
 /// The folder a file was listed in: its path without its listed relative
@@ -217,19 +236,48 @@ fn listing_root(file: &ReadyFile) -> PathBuf {
 /// Reads, hashes and parses one file (no store, no series state); a large
 /// file is only read (see [`LARGE_FILE_BYTES`]).
 pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
-    let read = inbox::read_below(&file.path, &listing_root(file), config.max_file_bytes);
-    let parsed = read
-        .as_ref()
-        .ok()
-        .filter(|(_, _, bytes)| bytes.len() as u64 <= LARGE_FILE_BYTES)
-        .map(|(_, _, bytes)| {
-            let (_, layout) = config.feed_for(&file.relative);
-            let rules = |id: &SeriesId| config.series_settings(id).rules();
-            records::parse_file(bytes, layout, &rules, today_of(now))
-        });
+    let (_, layout) = config.feed_for(&file.relative);
+    let rules = |id: &SeriesId| config.series_settings(id).rules();
+    let opened = inbox::open_below(&file.path, &listing_root(file)).and_then(|f| {
+        let size = inbox::size_within(&file.path, &f, config.max_file_bytes)?;
+        Ok((f, size))
+    });
+    let mut large = None;
+    let read = match opened {
+        Ok((f, size)) if size > LARGE_FILE_BYTES => {
+            let mut reader = inbox::HashingReader::new(&f, config.max_file_bytes, None);
+            let survey = Survey::stream(&mut reader, size, layout, &rules, today_of(now));
+            let read = reader
+                .finish()
+                .map_err(|err| InboxError::read(&file.path, err))
+                .and_then(|(sha, size)| {
+                    if size > config.max_file_bytes {
+                        return Err(InboxError::TooLarge {
+                            path: file.path.clone(),
+                            size,
+                            max: config.max_file_bytes,
+                        });
+                    }
+                    Ok((sha, size, Vec::new()))
+                });
+            if read.is_ok() {
+                large = Some(Large { file: f, survey });
+            }
+            read
+        }
+        Ok((f, _)) => inbox::read_opened(&file.path, f, config.max_file_bytes),
+        Err(e) => Err(e),
+    };
+    let parsed = match (&read, &large) {
+        (Ok((_, _, bytes)), None) => {
+            Some(records::parse_file(bytes, layout, &rules, today_of(now)))
+        }
+        _ => None,
+    };
     Prepared {
         read,
         parsed,
+        large,
         now,
         stored: None,
     }
@@ -682,12 +730,7 @@ fn committed(
         "file committed"
     );
     crash_point("after-commit");
-    let moved_to = move_done(
-        config,
-        file,
-        prepared.now,
-        prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
-    )?;
+    let moved_to = move_done(config, file, prepared)?;
     Ok(Outcome::Ingested {
         counts,
         refits,
@@ -801,12 +844,7 @@ fn process_file_inner(
                 first.name, first.arrived_at
             ),
         )?;
-        let moved_to = move_done(
-            config,
-            file,
-            now,
-            prepared.read.as_ref().ok().map(|(_, _, b)| b.as_slice()),
-        )?;
+        let moved_to = move_done(config, file, prepared)?;
         return Ok(Outcome::Duplicate {
             first: first.name,
             moved_to,
@@ -814,10 +852,6 @@ fn process_file_inner(
     }
     let (feed, layout) = config.feed_for(&file.relative);
     let rules = |id: &SeriesId| config.series_settings(id).rules();
-    let bytes: &[u8] = match &prepared.read {
-        Ok((_, _, b)) => b,
-        Err(_) => &[],
-    };
     // What the rules need of the whole file before any record is stored.
     let (whole, survey) = match prepared.parsed.take() {
         Some(Ok(p)) => {
@@ -828,13 +862,25 @@ fn process_file_inner(
             let reason = format!("{e}");
             return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
         }
-        None => match Survey::stream(bytes, layout, &rules, today_of(now)) {
-            Ok(survey) => (None, survey),
-            Err(e) => {
-                let reason = format!("{e}");
-                return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+        None => {
+            let surveyed = prepared.large.as_mut().map_or_else(
+                || {
+                    Err(records::FileError::Read {
+                        reason: "the file was neither parsed nor surveyed".into(),
+                    })
+                },
+                |l| std::mem::replace(&mut l.survey, Ok(Survey::default())),
+            );
+            match surveyed {
+                Ok(survey) => (None, survey),
+                Err(e) => {
+                    let reason = format!("{e}");
+                    return quarantine_whole(
+                        config, store, file, &name, &sha, size, &reason, now, &at,
+                    );
+                }
             }
-        },
+        }
     };
     if survey.errors > 0 && config.bad_rows == BadRows::RejectFile {
         let mut reason = format!(
@@ -856,14 +902,38 @@ fn process_file_inner(
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
     let mut whole = whole;
-    let mut stream = if whole.is_some() {
-        None
-    } else {
-        match records::RecordStream::new(bytes, layout, &rules, today_of(now)) {
-            Ok(s) => Some(s),
-            Err(e) => {
-                let reason = format!("{e}");
-                return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
+    // A large file is read again from its start, and must hash the same.
+    let mut again = match (&whole, &prepared.large) {
+        (None, Some(large)) => {
+            let mut f = &large.file;
+            f.seek(SeekFrom::Start(0))
+                .map_err(|err| InboxError::read(&file.path, err))?;
+            Some(inbox::HashingReader::new(
+                f,
+                config.max_file_bytes,
+                Some(sha.clone()),
+            ))
+        }
+        _ => None,
+    };
+    let mut stream = match again.as_mut() {
+        None => None,
+        Some(reader) => {
+            match records::RecordStream::from_reader(
+                reader,
+                PIECE_BYTES,
+                size,
+                layout,
+                &rules,
+                today_of(now),
+            ) {
+                Ok(s) => Some(s),
+                Err(e) => {
+                    let reason = format!("{e}");
+                    return quarantine_whole(
+                        config, store, file, &name, &sha, size, &reason, now, &at,
+                    );
+                }
             }
         }
     };
@@ -921,16 +991,35 @@ fn crash_point(name: &str) {
     }
 }
 
+/// Moves a stored file to the archive. Should the file have become a link
+/// leading outside the inbox meanwhile, its content as read is archived
+/// (the bytes held, or a large file's open handle read again).
 fn move_done(
     config: &Config,
     file: &ReadyFile,
-    now: SystemTime,
-    read: Option<&[u8]>,
+    prepared: &Prepared,
 ) -> Result<Option<PathBuf>, PipelineError> {
     if config.keep_files {
         return Ok(None);
     }
-    match inbox::archive_from_inbox(&file.path, &config.inbox, &config.archive, now, read) {
+    let mut bytes: &[u8];
+    let mut handle: &std::fs::File;
+    let content: Option<&mut dyn std::io::Read> = match (&prepared.large, &prepared.read) {
+        (Some(large), _) => {
+            handle = &large.file;
+            handle
+                .seek(SeekFrom::Start(0))
+                .map_err(|err| InboxError::read(&file.path, err))?;
+            Some(&mut handle)
+        }
+        (None, Ok((_, _, b))) => {
+            bytes = b;
+            Some(&mut bytes)
+        }
+        (None, Err(_)) => None,
+    };
+    let now = prepared.now;
+    match inbox::archive_from_inbox(&file.path, &config.inbox, &config.archive, now, content) {
         Ok(p) => Ok(Some(p)),
         Err(InboxError::Vanished { .. }) => Ok(None),
         Err(e) => Err(e.into()),
@@ -1146,13 +1235,15 @@ impl Survey {
 
     /// A large file's survey, from a first pass in chunks.
     fn stream(
-        bytes: &[u8],
+        reader: &mut dyn std::io::Read,
+        size: u64,
         layout: &records::Layout,
         rules: &dyn Fn(&SeriesId) -> records::SeriesRules,
         today: Today,
     ) -> Result<Survey, records::FileError> {
         let mut s = Survey::default();
-        let mut stream = records::RecordStream::new(bytes, layout, rules, today)?;
+        let mut stream =
+            records::RecordStream::from_reader(reader, PIECE_BYTES, size, layout, rules, today)?;
         while let Some(chunk) = stream.next_chunk(CHUNK_ROWS)? {
             s.add(&chunk);
         }
@@ -2718,6 +2809,68 @@ mod tests {
             ahead(&config, &mut store, &mut cache, &next, &start)
         };
         refused_whole(&config.database, outcome, "file id");
+    }
+
+    #[test]
+    fn a_large_file_is_stored_from_disk_and_set_aside_if_it_changes_meanwhile() {
+        let (_dir, config, mut store, mut cache) = setup();
+        let db = config.database.clone();
+        // Above LARGE_FILE_BYTES, so read from disk in pieces, twice.
+        let big = deliver(&config.inbox, "big.csv", 100, 100_000, 0.0);
+        assert!(big.size > LARGE_FILE_BYTES, "{}", big.size);
+        let bytes = std::fs::read(&big.path).unwrap();
+        let sha = hex::encode(<sha2::Sha256 as sha2::Digest>::digest(&bytes));
+        let prepared = prepare(&config, &big, SystemTime::now());
+        assert!(prepared.large.is_some() && prepared.parsed.is_none());
+        assert!(
+            matches!(&prepared.read, Ok((h, n, b)) if *h == sha && *n == big.size && b.is_empty()),
+            "hashed on the first read, not held: {:?}",
+            prepared.read.as_ref().map(|(h, n, b)| (h, n, b.len()))
+        );
+        let (done, _) = process_prepared(&config, &mut store, &mut cache, &big, prepared);
+        assert!(matches!(done, Ok(Outcome::Ingested { .. })), "{done:?}");
+        assert_eq!(count(&db, "SELECT count(*) FROM records"), 12 + 100_000);
+        let stored: String = rusqlite::Connection::open(&db)
+            .unwrap()
+            .query_row(
+                "SELECT sha256 FROM source_files WHERE name = 'big.csv'",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert_eq!(stored, sha);
+
+        // The same size, one value changed in the last row after the first
+        // read: the second read hashes differently and nothing is stored.
+        let late = deliver(&config.inbox, "late.csv", 200_000, 100_000, 1.0);
+        let prepared = prepare(&config, &late, SystemTime::now());
+        let mut text = std::fs::read(&late.path).unwrap();
+        let at = text.len() - 2;
+        text[at] = if text[at] == b'1' { b'2' } else { b'1' };
+        {
+            use std::io::Write;
+            let mut f = std::fs::OpenOptions::new()
+                .write(true)
+                .open(&late.path)
+                .unwrap();
+            f.write_all(&text).unwrap();
+        }
+        let (done, _) = process_prepared(&config, &mut store, &mut cache, &late, prepared);
+        match done {
+            Ok(Outcome::Quarantined { reason, .. }) => assert!(
+                reason.contains("changed while it was being read"),
+                "{reason}"
+            ),
+            other => panic!("{other:?}"),
+        }
+        assert_eq!(count(&db, "SELECT count(*) FROM records"), 12 + 100_000);
+        assert_eq!(
+            count(
+                &db,
+                "SELECT count(*) FROM source_files WHERE outcome = 'quarantined'"
+            ),
+            1
+        );
     }
 
     #[test]

@@ -6,7 +6,8 @@
 //! range, negatives allowed); the rest is the file's bytes.
 //!
 //! Besides "never panics", it checks that reading the file in chunks
-//! (`RecordStream`, as large deliveries are read) gives exactly what
+//! (`RecordStream`, as large deliveries are read, from memory or from a
+//! reader in pieces) gives exactly what
 //! reading it whole gives, and what the parser promises about what it
 //! returns: every number finite, a non-detect's limit above zero, no
 //! negative value unless allowed, lines counted from 1 in file order, no
@@ -135,6 +136,21 @@ fuzz_target!(|data: &[u8]| {
         Ok(all)
     });
     assert_eq!(whole, chunked, "chunks of {rows} differ from the whole file");
+    // Read from a reader in pieces (as a large delivery is read from
+    // disk), the same again; the piece size varies with the input too.
+    let piece = 1 + usize::from(rules_byte % 13) * 3;
+    let mut reader = bytes;
+    let pieces = RecordStream::from_reader(&mut reader, piece, bytes.len() as u64, &layout, &rules, today)
+        .and_then(|mut stream| {
+            let mut all = ParsedFile::default();
+            while let Some(mut chunk) = stream.next_chunk(rows)? {
+                assert!(chunk.records.len() + chunk.errors.len() <= rows);
+                all.records.append(&mut chunk.records);
+                all.errors.append(&mut chunk.errors);
+            }
+            Ok(all)
+        });
+    assert_eq!(whole, pieces, "pieces of {piece} bytes differ from the whole file");
     let Ok(parsed) = whole else {
         return;
     };

@@ -33,6 +33,13 @@ pub fn read_below(
     root: &Path,
     max_bytes: u64,
 ) -> Result<(String, u64, Vec<u8>), InboxError> {
+    let file = open_below(path, root)?;
+    hash_open(path, file, max_bytes)
+}
+
+/// Opens a file listed below `root` as [`read_below`] does, without
+/// reading it.
+pub fn open_below(path: &Path, root: &Path) -> Result<File, InboxError> {
     use std::os::unix::fs::OpenOptionsExt;
     let open_nofollow = |p: &Path| {
         std::fs::OpenOptions::new()
@@ -43,7 +50,7 @@ pub fn read_below(
     let link = std::fs::symlink_metadata(path)
         .map(|m| m.file_type().is_symlink())
         .map_err(|err| InboxError::read(path, err))?;
-    let file = if link {
+    if link {
         let target = std::fs::canonicalize(path).map_err(|err| InboxError::read(path, err))?;
         let inside = std::fs::canonicalize(root).is_ok_and(|r| target.starts_with(r));
         if !inside {
@@ -57,7 +64,34 @@ pub fn read_below(
     } else {
         open_nofollow(path)
     }
-    .map_err(|err| InboxError::read(path, err))?;
+    .map_err(|err| InboxError::read(path, err))
+}
+
+/// The size of an opened file, which must be a regular file no larger
+/// than `max_bytes`.
+pub fn size_within(path: &Path, file: &File, max_bytes: u64) -> Result<u64, InboxError> {
+    let meta = file.metadata().map_err(|err| InboxError::read(path, err))?;
+    if !meta.is_file() {
+        let err = std::io::Error::new(std::io::ErrorKind::InvalidInput, "not a regular file");
+        return Err(InboxError::read(path, err));
+    }
+    let declared = meta.len();
+    if declared > max_bytes {
+        return Err(InboxError::TooLarge {
+            path: path.to_owned(),
+            size: declared,
+            max: max_bytes,
+        });
+    }
+    Ok(declared)
+}
+
+/// Reads a file opened with [`open_below`] whole: as [`read_below`].
+pub fn read_opened(
+    path: &Path,
+    file: File,
+    max_bytes: u64,
+) -> Result<(String, u64, Vec<u8>), InboxError> {
     hash_open(path, file, max_bytes)
 }
 
@@ -66,20 +100,12 @@ fn hash_open(
     file: File,
     max_bytes: u64,
 ) -> Result<(String, u64, Vec<u8>), InboxError> {
-    let meta = file.metadata().map_err(|err| InboxError::read(path, err))?;
-    if !meta.is_file() {
-        let err = std::io::Error::new(std::io::ErrorKind::InvalidInput, "not a regular file");
-        return Err(InboxError::read(path, err));
-    }
-    let declared = meta.len();
+    let declared = size_within(path, &file, max_bytes)?;
     let too_large = |size| InboxError::TooLarge {
         path: path.to_owned(),
         size,
         max: max_bytes,
     };
-    if declared > max_bytes {
-        return Err(too_large(declared));
-    }
     // A capacity hint only: a size that does not fit in memory fails at read.
     let mut bytes = Vec::with_capacity(usize::try_from(declared).unwrap_or(0));
     file.take(max_bytes.saturating_add(1))
@@ -91,6 +117,56 @@ fn hash_open(
     }
     let digest = Sha256::digest(&bytes);
     Ok((hex::encode(digest), size, bytes))
+}
+
+/// Reads a file from its start while hashing what it reads, never more
+/// than one byte past `max_bytes` (so that a file growing while it is
+/// read is noticed, not read without end). With an expected hash, reaching
+/// the end with a different content is a read error: the file changed
+/// since it was hashed.
+pub struct HashingReader<R> {
+    inner: std::io::Take<R>,
+    hasher: Sha256,
+    read: u64,
+    expect: Option<String>,
+}
+
+impl<R: Read> HashingReader<R> {
+    /// Reads `inner` from where it stands.
+    pub fn new(inner: R, max_bytes: u64, expect: Option<String>) -> Self {
+        HashingReader {
+            inner: inner.take(max_bytes.saturating_add(1)),
+            hasher: Sha256::new(),
+            read: 0,
+            expect,
+        }
+    }
+
+    /// Reads the rest, then the SHA-256 (lower-case hex) and the size of
+    /// all that was read.
+    pub fn finish(mut self) -> std::io::Result<(String, u64)> {
+        std::io::copy(&mut self, &mut std::io::sink())?;
+        Ok((hex::encode(self.hasher.finalize()), self.read))
+    }
+}
+
+impl<R: Read> Read for HashingReader<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        if n == 0 {
+            if let Some(expect) = self.expect.take()
+                && hex::encode(self.hasher.clone().finalize()) != expect
+            {
+                return Err(std::io::Error::other(
+                    "its content changed while it was being read (two reads gave different SHA-256 hashes)",
+                ));
+            }
+            return Ok(0);
+        }
+        self.hasher.update(buf.get(..n).unwrap_or_default());
+        self.read += n as u64;
+        Ok(n)
+    }
 }
 
 #[cfg(test)]
@@ -164,5 +240,35 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         let err = sha256_file(dir.path(), 1024).unwrap_err();
         assert!(matches!(err, InboxError::Read { .. }), "{err:?}");
+    }
+
+    #[test]
+    fn a_hashing_reader_hashes_what_it_reads_and_notices_a_change() {
+        // FIPS 180-2, appendix B.1: SHA-256("abc").
+        let abc = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad";
+        let mut first = HashingReader::new(&b"abc"[..], 1024, None);
+        let mut one = [0u8; 1];
+        assert_eq!(first.read(&mut one).unwrap(), 1);
+        // The rest is read by finish.
+        assert_eq!(first.finish().unwrap(), (abc.to_string(), 3));
+        // Read again with the hash expected: the same bytes pass ...
+        let mut same = Vec::new();
+        HashingReader::new(&b"abc"[..], 1024, Some(abc.to_string()))
+            .read_to_end(&mut same)
+            .unwrap();
+        assert_eq!(same, b"abc");
+        // ... other bytes fail at the end, before the reader says it is done.
+        let err = HashingReader::new(&b"abd"[..], 1024, Some(abc.to_string()))
+            .read_to_end(&mut Vec::new())
+            .unwrap_err();
+        assert!(
+            err.to_string().contains("changed while it was being read"),
+            "{err}"
+        );
+        // Never more than one byte past the limit is read.
+        let (_, read) = HashingReader::new(&b"abcdef"[..], 2, None)
+            .finish()
+            .unwrap();
+        assert_eq!(read, 3);
     }
 }

@@ -16,14 +16,19 @@
 //!    listings and reports a [`ReadyFile`] once both have stayed unchanged
 //!    for the settle time, so a file still being written or copied is left
 //!    alone. It never reads the clock: the caller passes `now`.
-//! 4. [`sha256_file`] reads a ready file once, returning its hash and bytes.
+//! 4. [`sha256_file`] (or [`read_below`]) reads a ready file once,
+//!    returning its hash and bytes; a large one is opened with
+//!    [`open_below`] and read in pieces through a [`HashingReader`], which
+//!    hashes what passes and, read a second time, fails at the end if the
+//!    content is not what was hashed the first time.
 //! 5. After the file's records are committed, [`move_to_archive`]; when the
 //!    file cannot be read as records, [`move_to_quarantine`] with a reason.
 //!
 //! # Invariants
 //!
-//! - **Never interprets contents.** The only read of a file's bytes is
-//!   [`sha256_file`], which hands them on untouched.
+//! - **Never interprets contents.** Bytes are read only by [`sha256_file`]
+//!   and its siblings, and by a [`HashingReader`]; both hand them on
+//!   untouched.
 //! - **Never overwrites** anything in the archive or quarantine: a clash gets
 //!   a numbered name, reserved atomically before the move.
 //! - **Never follows a symlink out of the inbox**, and never reads anything
@@ -53,7 +58,7 @@ use std::path::PathBuf;
 use std::time::Duration;
 
 pub use error::InboxError;
-pub use hash::{read_below, sha256_file};
+pub use hash::{HashingReader, open_below, read_below, read_opened, sha256_file, size_within};
 pub use moves::{REASON_SUFFIX, archive_from_inbox, move_to_archive, move_to_quarantine};
 pub use scan::{Candidate, Reported, is_ignored_name, list_candidates, list_candidates_noting};
 pub use settle::{ReadyFile, Settler};

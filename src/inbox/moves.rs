@@ -62,14 +62,14 @@ pub fn archive_from_inbox(
     inbox: &Path,
     archive_root: &Path,
     arrival: SystemTime,
-    content: Option<&[u8]>,
+    content: Option<&mut dyn io::Read>,
 ) -> Result<PathBuf, InboxError> {
     let (name, dir) = prepare(path, archive_root, arrival)?;
     let dest = reserve(path, &dir, name)?;
     if leads_outside(path, inbox) {
         warn!(path = %path.display(), "the file became a link leading outside the inbox after it was read; the content as read is archived, the link's target is not read");
         let moved = match content {
-            Some(bytes) => write_then_remove(bytes, path, &dest),
+            Some(content) => write_then_remove(content, path, &dest),
             None => fs::rename(path, &dest),
         };
         return match moved {
@@ -93,10 +93,10 @@ pub fn archive_from_inbox(
     Ok(dest)
 }
 
-/// Writes `bytes` to `dest` durably, then removes `path` (a link).
-fn write_then_remove(bytes: &[u8], path: &Path, dest: &Path) -> io::Result<()> {
+/// Writes `content` to `dest` durably, then removes `path` (a link).
+fn write_then_remove(content: &mut dyn io::Read, path: &Path, dest: &Path) -> io::Result<()> {
     let mut to = OpenOptions::new().write(true).truncate(true).open(dest)?;
-    io::Write::write_all(&mut to, bytes)?;
+    io::copy(content, &mut to)?;
     to.sync_all()?;
     drop(to);
     if let Some(folder) = dest.parent() {

@@ -51,6 +51,7 @@
 use std::collections::HashMap;
 use std::collections::hash_map::RandomState;
 use std::hash::{BuildHasher, BuildHasherDefault, Hasher};
+use std::io::Read;
 use std::rc::Rc;
 
 use thiserror::Error;
@@ -98,6 +99,13 @@ pub enum FileError {
         /// The header's names, trimmed.
         found: Vec<String>,
     },
+    /// The file could not be read to its end (an I/O error, or it changed
+    /// while it was being read).
+    #[error("{reason}; deliver the file again")]
+    Read {
+        /// Where reading stopped and why.
+        reason: String,
+    },
     /// The CSV structure is broken beyond one row.
     #[error("line {line}: {reason}")]
     Malformed {
@@ -135,11 +143,23 @@ pub fn parse_file(
 /// all at once (a record costs several times its line in memory). The
 /// chunks together are exactly what [`parse_file`] gives, in order: the
 /// same records, the same errors, duplicates found across chunks.
+///
+/// [`RecordStream::from_reader`] reads the file itself piece by piece, so
+/// that not even its bytes are held whole: memory stays at a few pieces
+/// (and the longest row), whatever the file's size.
 pub struct RecordStream<'a> {
-    rows: Rows<'a>,
+    source: Source<'a>,
     checker: Checker<'a>,
     /// Lines in the file, capped: what to reserve for records.
     rows_expected: usize,
+}
+
+/// Where a [`RecordStream`]'s rows come from.
+enum Source<'a> {
+    /// The whole text, in memory.
+    Whole(Rows<'a>),
+    /// A reader, in pieces.
+    Pieces(Pieces<'a>),
 }
 
 impl std::fmt::Debug for RecordStream<'_> {
@@ -163,28 +183,57 @@ impl<'a> RecordStream<'a> {
             match rows.next_row()? {
                 None => return Err(FileError::NoHeader),
                 Some(row) if is_blank(&row) => continue,
-                Some(row) => {
-                    let names: Vec<String> =
-                        row.fields.iter().map(|f| f.trim().to_string()).collect();
-                    break (row.line, names);
-                }
+                Some(row) => break (row.line, header_names(&row)),
             }
         };
         // One row per line is an upper bound; reserving it saves regrowing.
         // Capped, so that a file of empty lines cannot reserve gigabytes.
         let rows_expected = text.bytes().filter(|&b| b == b'\n').count().min(1 << 16);
-        let checker = Checker {
-            cols: Columns::resolve(names, layout, header_line)?,
-            delimiter: layout.delimiter,
-            decimal_comma: layout.decimal_comma,
-            rules,
-            today,
-            last_allowed_day: dates::last_allowed_day(today),
-            seen: SeenIds::with_capacity(rows_expected),
-            series_rules: RulesCache::default(),
+        Ok(RecordStream {
+            source: Source::Whole(rows),
+            checker: Checker::new(layout, names, header_line, rules, today, rows_expected)?,
+            rows_expected,
+        })
+    }
+
+    /// As [`RecordStream::new`] for a file read from `reader` in pieces of
+    /// about `piece_bytes` (a row longer than that is read whole), `size`
+    /// bytes long as far as is known (only a hint for reserving memory).
+    /// A whole-file problem further down the file (binary content, invalid
+    /// UTF-8, a quote never closed, a read error) is an error at the chunk
+    /// that reaches it; a NUL byte anywhere is found before an invalid
+    /// UTF-8 sequence, as [`parse_file`] finds it.
+    pub fn from_reader(
+        reader: &'a mut dyn Read,
+        piece_bytes: usize,
+        size: u64,
+        layout: &Layout,
+        rules: &'a dyn Fn(&SeriesId) -> SeriesRules,
+        today: Today,
+    ) -> Result<Self, FileError> {
+        let mut pieces = Pieces::start(reader, piece_bytes.max(1), layout.delimiter)?;
+        let mut header = None;
+        pieces.rows(&mut |row| {
+            if is_blank(row) {
+                return true;
+            }
+            header = Some((row.line, header_names(row)));
+            false
+        })?;
+        let Some((header_line, names)) = header else {
+            return Err(FileError::NoHeader);
+        };
+        let rows_expected = usize::try_from(size / 16)
+            .unwrap_or(usize::MAX)
+            .min(1 << 16);
+        // Bytes that are not text refuse the file before its header does,
+        // wherever they are (as when the file is read whole).
+        let checker = match Checker::new(layout, names, header_line, rules, today, rows_expected) {
+            Ok(checker) => checker,
+            Err(e) => return Err(pieces.rest_not_text().unwrap_or(e)),
         };
         Ok(RecordStream {
-            rows,
+            source: Source::Pieces(pieces),
             checker,
             rows_expected,
         })
@@ -200,20 +249,308 @@ impl<'a> RecordStream<'a> {
             errors: Vec::new(),
         };
         let mut taken = 0usize;
-        while taken < max_rows {
-            let Some(row) = self.rows.next_row()? else {
-                break;
-            };
-            if is_blank(&row) {
-                continue;
+        let checker = &mut self.checker;
+        let mut each = |row: &Row<'_>| {
+            if is_blank(row) {
+                return true;
             }
             taken += 1;
-            match self.checker.check(&row) {
+            match checker.check(row) {
                 Ok(record) => out.records.push(record),
-                Err(fault) => out.errors.push(self.checker.error(&row, fault)),
+                Err(fault) => out.errors.push(checker.error(row, fault)),
+            }
+            taken < max_rows
+        };
+        match &mut self.source {
+            Source::Whole(rows) => {
+                if max_rows > 0 {
+                    while let Some(row) = rows.next_row()? {
+                        if !each(&row) {
+                            break;
+                        }
+                    }
+                }
+            }
+            Source::Pieces(pieces) => {
+                if max_rows > 0 {
+                    pieces.rows(&mut each)?;
+                }
             }
         }
         Ok((taken > 0).then_some(out))
+    }
+}
+
+/// A header row's names, trimmed.
+fn header_names(row: &Row<'_>) -> Vec<String> {
+    row.fields.iter().map(|f| f.trim().to_string()).collect()
+}
+
+/// A file read from a reader piece by piece: `buf` holds the bytes from
+/// file offset `offset` on, of which those before `pos` are done with.
+/// Each piece given to [`Rows`] starts where a row starts and ends just
+/// after a line break (or at the end of the file); a row that reaches the
+/// end of a piece is read again at the start of the next one, with more
+/// bytes behind it.
+struct Pieces<'a> {
+    reader: &'a mut dyn Read,
+    delimiter: u8,
+    piece_bytes: usize,
+    buf: Vec<u8>,
+    pos: usize,
+    /// File offset of `buf[0]`.
+    offset: u64,
+    /// Line breaks before `buf[pos]`.
+    breaks: u64,
+    /// The reader has no more bytes.
+    eof: bool,
+    /// The rows are done.
+    done: bool,
+    /// Where the text starts: after the file's byte-order mark, if any.
+    text_start: u64,
+}
+
+impl<'a> Pieces<'a> {
+    /// Reads the first piece and checks how the file starts (a UTF-16
+    /// byte-order mark refuses it; a UTF-8 one is skipped).
+    fn start(
+        reader: &'a mut dyn Read,
+        piece_bytes: usize,
+        delimiter: u8,
+    ) -> Result<Self, FileError> {
+        let mut p = Pieces {
+            reader,
+            delimiter,
+            piece_bytes,
+            buf: Vec::new(),
+            pos: 0,
+            offset: 0,
+            breaks: 0,
+            eof: false,
+            done: false,
+            text_start: 0,
+        };
+        // Enough bytes to see any byte-order mark.
+        while p.buf.len() < BOM.len() && !p.eof {
+            p.fill(BOM.len())?;
+        }
+        check_text(p.buf.get(..BOM.len().min(p.buf.len())).unwrap_or_default()).or_else(
+            |e| match e {
+                // Only the start is checked here; the bytes are checked
+                // piece by piece as they come.
+                FileError::NotText { reason } if reason.contains("UTF-16") => {
+                    Err(FileError::NotText { reason })
+                }
+                _ => Ok(""),
+            },
+        )?;
+        if p.buf.starts_with(BOM) {
+            p.pos = BOM.len();
+            p.text_start = BOM.len() as u64;
+        }
+        Ok(p)
+    }
+
+    /// Reads until at least `want` bytes lie after `pos`, or the end.
+    fn fill(&mut self, want: usize) -> Result<(), FileError> {
+        if self.pos >= self.piece_bytes || (self.pos > 0 && self.pos == self.buf.len()) {
+            self.offset += self.pos as u64;
+            self.buf.drain(..self.pos);
+            self.pos = 0;
+        }
+        while !self.eof && self.buf.len() - self.pos < want {
+            let need = (want - (self.buf.len() - self.pos)).max(self.piece_bytes);
+            match (&mut *self.reader)
+                .take(need as u64)
+                .read_to_end(&mut self.buf)
+            {
+                Ok(0) => self.eof = true,
+                Ok(_) => {}
+                Err(e) => {
+                    self.done = true;
+                    return Err(FileError::Read {
+                        reason: format!(
+                            "reading the file stopped after byte offset {}: {e}",
+                            self.offset + self.buf.len() as u64
+                        ),
+                    });
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// The end of the next piece (`pos` + the result): after its last line
+    /// break (not after a CR that may be half of a CRLF still to come), or
+    /// the end of the file; 0 when more bytes are needed for one.
+    fn piece_end(&self) -> usize {
+        let rest = self.buf.get(self.pos..).unwrap_or_default();
+        if self.eof {
+            return rest.len();
+        }
+        let known = rest.len() - usize::from(rest.last() == Some(&b'\r'));
+        rest.get(..known)
+            .unwrap_or_default()
+            .iter()
+            .rposition(|&b| b == b'\n' || b == b'\r')
+            .map_or(0, |i| i + 1)
+    }
+
+    /// Reads the rest of the file for bytes that are not text: the error
+    /// they make, if any.
+    fn rest_not_text(&mut self) -> Option<FileError> {
+        let mut want = self.piece_bytes;
+        loop {
+            if let Err(e) = self.fill(want) {
+                return Some(e);
+            }
+            let end = self.piece_end();
+            let rest = self.buf.len() - self.pos;
+            if !self.eof && end == 0 {
+                want = more_than(rest, self.piece_bytes);
+                continue;
+            }
+            let bytes = self.buf.get(self.pos..self.pos + end).unwrap_or_default();
+            if let Err(at) = Self::check_piece(bytes) {
+                return Some(self.not_text(end, at));
+            }
+            self.breaks += count_breaks(bytes);
+            self.pos += end;
+            if self.eof && self.pos == self.buf.len() {
+                self.done = true;
+                return None;
+            }
+            want = self.piece_bytes;
+        }
+    }
+
+    /// Calls `each` on the rows from where the last call stopped, until it
+    /// returns false (after taking that row) or the rows are done.
+    fn rows(&mut self, each: &mut dyn FnMut(&Row<'_>) -> bool) -> Result<(), FileError> {
+        let mut want = self.piece_bytes;
+        while !self.done {
+            self.fill(want)?;
+            let end = self.piece_end();
+            let rest = self.buf.get(self.pos..).unwrap_or_default();
+            let last = self.eof;
+            let bytes = rest.get(..end).unwrap_or_default();
+            if !last && end == 0 {
+                want = more_than(rest.len(), self.piece_bytes);
+                continue;
+            }
+            let text = match Self::check_piece(bytes) {
+                Ok(text) => text,
+                Err(at_utf8) => return Err(self.not_text(end, at_utf8)),
+            };
+            // A csv reader drops a byte-order mark that starts its input:
+            // right at the file's start, as when the file is read whole,
+            // but a row further on that starts with one (a stray mark) is
+            // given the line break before it, so that it is read as is.
+            let marked;
+            let (text, shift) = if self.offset + self.pos as u64 > self.text_start
+                && text.starts_with('\u{feff}')
+            {
+                marked = format!("\n{text}");
+                (marked.as_str(), 1)
+            } else {
+                (text, 0)
+            };
+            let mut rows = Rows::window(text, self.delimiter, self.breaks - shift as u64, last);
+            let mut go_on = true;
+            while go_on {
+                match rows.next_row()? {
+                    Some(row) => go_on = each(&row),
+                    None => break,
+                }
+            }
+            let (at, breaks) = rows.resume();
+            let at = at.saturating_sub(shift);
+            self.pos += at;
+            self.breaks = breaks;
+            if last && go_on {
+                self.done = true;
+            }
+            if !go_on {
+                return Ok(());
+            }
+            // Nothing read from this piece: its first row needs more bytes.
+            want = if at == 0 {
+                more_than(self.buf.len() - self.pos, self.piece_bytes)
+            } else {
+                self.piece_bytes
+            };
+        }
+        Ok(())
+    }
+
+    /// The piece as text, or the offset in it of a NUL byte (the first, if
+    /// any) or else of its first invalid UTF-8 byte.
+    fn check_piece(bytes: &[u8]) -> Result<&str, usize> {
+        if let Some(at) = bytes.iter().position(|&b| b == 0) {
+            return Err(at);
+        }
+        std::str::from_utf8(bytes).map_err(|e| e.valid_up_to())
+    }
+
+    /// The whole-file error for the piece of `end` bytes from `pos` that is
+    /// not text at `at`: a NUL byte there, or one anywhere further on (the
+    /// rest of the file is read to know), else the invalid UTF-8 at `at`.
+    fn not_text(&mut self, end: usize, at: usize) -> FileError {
+        self.done = true;
+        let piece = self.buf.get(self.pos..self.pos + end).unwrap_or_default();
+        let before = |n: usize| count_breaks(piece.get(..n).unwrap_or_default());
+        let at_file = self.offset + (self.pos + at) as u64;
+        if piece.get(at) == Some(&0) {
+            return nul_error(at_file, self.breaks + before(at) + 1);
+        }
+        let utf8_line = self.breaks + before(at) + 1;
+        let mut breaks = self.breaks + before(end);
+        let mut from = self.pos + end;
+        loop {
+            let rest = self.buf.get(from..).unwrap_or_default();
+            if let Some(i) = rest.iter().position(|&b| b == 0) {
+                breaks += count_breaks(rest.get(..i).unwrap_or_default());
+                return nul_error(self.offset + (from + i) as u64, breaks + 1);
+            }
+            // A CR at the end waits for the next byte (it may be a CRLF).
+            let keep = usize::from(!self.eof && rest.last() == Some(&b'\r'));
+            breaks += count_breaks(rest.get(..rest.len() - keep).unwrap_or_default());
+            from += rest.len() - keep;
+            if self.eof {
+                break;
+            }
+            // What is scanned is let go of, so memory stays at a piece.
+            self.offset += from as u64;
+            self.buf.drain(..from);
+            self.pos = 0;
+            from = 0;
+            if let Err(e) = self.fill(self.buf.len() + self.piece_bytes) {
+                return e;
+            }
+        }
+        utf8_error(at_file, utf8_line)
+    }
+}
+
+/// What to read up to when the `held` bytes are not enough for a row:
+/// twice as much, and at least a piece more.
+fn more_than(held: usize, piece_bytes: usize) -> usize {
+    held.saturating_mul(2).max(held.saturating_add(piece_bytes))
+}
+
+fn nul_error(at: u64, line: u64) -> FileError {
+    FileError::NotText {
+        reason: format!(
+            "a NUL byte at byte offset {at} (line {line}) shows binary content (a spreadsheet workbook, an archive, a damaged transfer); export the data as CSV in UTF-8"
+        ),
+    }
+}
+
+fn utf8_error(at: u64, line: u64) -> FileError {
+    FileError::NotText {
+        reason: format!(
+            "invalid UTF-8 at byte offset {at} (line {line}); the file may be in Latin-1 or Windows-1252: save it as UTF-8"
+        ),
     }
 }
 
@@ -228,22 +565,13 @@ fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
     }
     if let Some(at) = bytes.iter().position(|&b| b == 0) {
         let line = 1 + count_breaks(bytes.get(..at).unwrap_or_default());
-        return Err(FileError::NotText {
-            reason: format!(
-                "a NUL byte at byte offset {at} (line {line}) shows binary content (a spreadsheet workbook, an archive, a damaged transfer); export the data as CSV in UTF-8"
-            ),
-        });
+        return Err(nul_error(at as u64, line));
     }
     let body = bytes.strip_prefix(BOM).unwrap_or(bytes);
     std::str::from_utf8(body).map_err(|e| {
         let at = e.valid_up_to();
         let line = 1 + count_breaks(body.get(..at).unwrap_or_default());
-        FileError::NotText {
-            reason: format!(
-                "invalid UTF-8 at byte offset {} (line {line}); the file may be in Latin-1 or Windows-1252: save it as UTF-8",
-                at + (bytes.len() - body.len())
-            ),
-        }
+        utf8_error((at + (bytes.len() - body.len())) as u64, line)
     })
 }
 
@@ -489,7 +817,27 @@ struct Checker<'l> {
     series_rules: RulesCache,
 }
 
-impl Checker<'_> {
+impl<'l> Checker<'l> {
+    fn new(
+        layout: &Layout,
+        names: Vec<String>,
+        header_line: u64,
+        rules: &'l dyn Fn(&SeriesId) -> SeriesRules,
+        today: Today,
+        rows_expected: usize,
+    ) -> Result<Self, FileError> {
+        Ok(Checker {
+            cols: Columns::resolve(names, layout, header_line)?,
+            delimiter: layout.delimiter,
+            decimal_comma: layout.decimal_comma,
+            rules,
+            today,
+            last_allowed_day: dates::last_allowed_day(today),
+            seen: SeenIds::with_capacity(rows_expected),
+            series_rules: RulesCache::default(),
+        })
+    }
+
     fn check(&mut self, row: &Row<'_>) -> Result<Record, Fault> {
         let c = &self.cols;
         let fields = row.fields;

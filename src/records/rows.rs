@@ -19,9 +19,16 @@ pub(super) struct Rows<'a> {
     reader: csv::Reader<&'a [u8]>,
     record: csv::StringRecord,
     delimiter: u8,
-    /// Bytes of `text` scanned for line breaks so far, and how many found.
+    /// Bytes of `text` scanned for line breaks so far, and how many found
+    /// (with those before `text` in its file).
     counted_to: usize,
     breaks: u64,
+    /// `text` runs to the end of its file. When it does not (a window of a
+    /// file read piece by piece), a row that reaches the end of `text` may
+    /// go on in the next piece: it is held back, not returned.
+    last: bool,
+    /// The held-back row's start in `text` and its line.
+    held: Option<(usize, u64)>,
 }
 
 /// One row: where it is, what it says, and its fields.
@@ -38,6 +45,13 @@ pub(super) struct Row<'r> {
 impl<'a> Rows<'a> {
     /// Rows of `text` (already known to be UTF-8, BOM removed).
     pub fn new(text: &'a str, delimiter: u8) -> Self {
+        Self::window(text, delimiter, 0, true)
+    }
+
+    /// Rows of `text`, a piece of a file that starts where a row starts,
+    /// after `breaks_before` line breaks, and ends just after a line break
+    /// unless it is the `last` piece (which runs to the end of the file).
+    pub fn window(text: &'a str, delimiter: u8, breaks_before: u64, last: bool) -> Self {
         let reader = csv::ReaderBuilder::new()
             .has_headers(false)
             .flexible(true)
@@ -50,8 +64,27 @@ impl<'a> Rows<'a> {
             record: csv::StringRecord::new(),
             delimiter,
             counted_to: 0,
-            breaks: 0,
+            breaks: breaks_before,
+            last,
+            held: None,
         }
+    }
+
+    /// Where the next piece of the file must start: the held-back row, or
+    /// just after the last row read (all of `text` once the rows are done);
+    /// with the line breaks before that point.
+    pub fn resume(&mut self) -> (usize, u64) {
+        if let Some((start, line)) = self.held {
+            return (start, line - 1);
+        }
+        let bytes = self.text.as_bytes();
+        let mut at = offset(self.reader.position().byte(), bytes.len());
+        // After a CRLF the reader stops on the LF; the next row starts
+        // after it.
+        if at > 0 && bytes.get(at - 1) == Some(&b'\r') && bytes.get(at) == Some(&b'\n') {
+            at += 1;
+        }
+        (at, self.line_of(at) - 1)
     }
 
     /// The next row, `None` at the end, or a whole-file error when the last
@@ -88,6 +121,10 @@ impl<'a> Rows<'a> {
             end -= 1;
         }
         let line = self.line_of(start);
+        if !self.last && consumed >= bytes.len() {
+            self.held = Some((start, line));
+            return Ok(None);
+        }
         let raw = self.text.get(start..end).unwrap_or_default();
         if consumed >= bytes.len()
             && let Some(quote) = open_quote(raw.as_bytes(), self.delimiter)

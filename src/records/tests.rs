@@ -891,6 +891,28 @@ fn chunked(
     Ok(all)
 }
 
+/// A file read through [`RecordStream::from_reader`] in pieces of `piece`
+/// bytes and chunks of `rows` rows, put together.
+fn in_pieces(
+    bytes: &[u8],
+    layout: &Layout,
+    rules: &dyn Fn(&SeriesId) -> SeriesRules,
+    rows: usize,
+    piece: usize,
+) -> Result<ParsedFile, FileError> {
+    let mut reader = bytes;
+    let mut stream =
+        RecordStream::from_reader(&mut reader, piece, bytes.len() as u64, layout, rules, TODAY)?;
+    let mut all = ParsedFile::default();
+    while let Some(mut chunk) = stream.next_chunk(rows)? {
+        assert!(chunk.records.len() + chunk.errors.len() <= rows);
+        assert!(chunk.records.len() + chunk.errors.len() > 0);
+        all.records.append(&mut chunk.records);
+        all.errors.append(&mut chunk.errors);
+    }
+    Ok(all)
+}
+
 #[test]
 fn a_repeated_id_is_found_across_chunks_and_a_late_break_stops_the_chunk_that_meets_it() {
     let text = "record_id,series,x,y\nA,s,1,2\nB,s,2,3\nA,s,3,4\nC,s,4,\"5\n";
@@ -955,6 +977,21 @@ fn check_rows_with(bytes: &[u8], layout: &Layout) {
             chunked(bytes, layout, &rules, rows),
             result,
             "chunks of {rows}"
+        );
+    }
+    // Read from a reader in pieces of any size, it gives them too.
+    for (rows, piece) in [
+        (1, 1),
+        (2, 2),
+        (3, 5),
+        (usize::MAX, 7),
+        (4, 64),
+        (1000, 1 << 20),
+    ] {
+        assert_eq!(
+            in_pieces(bytes, layout, &rules, rows, piece),
+            result,
+            "chunks of {rows}, pieces of {piece} bytes"
         );
     }
     let body = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);

@@ -330,20 +330,12 @@ impl<'a> Pieces<'a> {
             done: false,
             text_start: 0,
         };
-        // Enough bytes to see any byte-order mark.
-        while p.buf.len() < BOM.len() && !p.eof {
-            p.fill(BOM.len())?;
+        // Enough bytes to see any byte-order mark; the rest is checked
+        // piece by piece as it comes.
+        p.fill(BOM.len())?;
+        if let Some(e) = utf16_marked(&p.buf) {
+            return Err(e);
         }
-        check_text(p.buf.get(..BOM.len().min(p.buf.len())).unwrap_or_default()).or_else(
-            |e| match e {
-                // Only the start is checked here; the bytes are checked
-                // piece by piece as they come.
-                FileError::NotText { reason } if reason.contains("UTF-16") => {
-                    Err(FileError::NotText { reason })
-                }
-                _ => Ok(""),
-            },
-        )?;
         if p.buf.starts_with(BOM) {
             p.pos = BOM.len();
             p.text_start = BOM.len() as u64;
@@ -556,12 +548,17 @@ fn utf8_error(at: u64, line: u64) -> FileError {
 
 const BOM: &[u8] = b"\xEF\xBB\xBF";
 
+/// The error for a file that starts with a UTF-16 byte-order mark.
+fn utf16_marked(bytes: &[u8]) -> Option<FileError> {
+    (bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF")).then(|| FileError::NotText {
+        reason: "it starts with a UTF-16 byte-order mark; export or save it as UTF-8".into(),
+    })
+}
+
 /// The file's text without its BOM, or why it is not text.
 fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
-    if bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF") {
-        return Err(FileError::NotText {
-            reason: "it starts with a UTF-16 byte-order mark; export or save it as UTF-8".into(),
-        });
+    if let Some(e) = utf16_marked(bytes) {
+        return Err(e);
     }
     if let Some(at) = bytes.iter().position(|&b| b == 0) {
         let line = 1 + count_breaks(bytes.get(..at).unwrap_or_default());

@@ -126,7 +126,7 @@ fuzz_target!(|data: &[u8]| {
     // Read in chunks (as a large delivery is), the same rows and errors
     // come out, in the same order; the chunk size varies with the input.
     let rows = 1 + usize::from(rules_byte % 5);
-    let chunked = RecordStream::new(bytes, &layout, &rules, today).and_then(|mut stream| {
+    let all_chunks = |mut stream: RecordStream<'_>| {
         let mut all = ParsedFile::default();
         while let Some(mut chunk) = stream.next_chunk(rows)? {
             assert!(chunk.records.len() + chunk.errors.len() <= rows);
@@ -134,23 +134,23 @@ fuzz_target!(|data: &[u8]| {
             all.errors.append(&mut chunk.errors);
         }
         Ok(all)
-    });
-    assert_eq!(whole, chunked, "chunks of {rows} differ from the whole file");
+    };
+    let chunked = RecordStream::new(bytes, &layout, &rules, today).and_then(all_chunks);
+    assert_eq!(
+        whole, chunked,
+        "chunks of {rows} differ from the whole file"
+    );
     // Read from a reader in pieces (as a large delivery is read from
     // disk), the same again; the piece size varies with the input too.
     let piece = 1 + usize::from(rules_byte % 13) * 3;
     let mut reader = bytes;
-    let pieces = RecordStream::from_reader(&mut reader, piece, bytes.len() as u64, &layout, &rules, today)
-        .and_then(|mut stream| {
-            let mut all = ParsedFile::default();
-            while let Some(mut chunk) = stream.next_chunk(rows)? {
-                assert!(chunk.records.len() + chunk.errors.len() <= rows);
-                all.records.append(&mut chunk.records);
-                all.errors.append(&mut chunk.errors);
-            }
-            Ok(all)
-        });
-    assert_eq!(whole, pieces, "pieces of {piece} bytes differ from the whole file");
+    let size = bytes.len() as u64;
+    let pieces = RecordStream::from_reader(&mut reader, piece, size, &layout, &rules, today)
+        .and_then(all_chunks);
+    assert_eq!(
+        whole, pieces,
+        "pieces of {piece} bytes differ from the whole file"
+    );
     let Ok(parsed) = whole else {
         return;
     };

@@ -870,9 +870,6 @@ fn breaks(raw: &str) -> u64 {
         - raw.matches("\r\n").count() as u64
 }
 
-/// Parses `bytes` (must not panic) and, when they are text, checks the
-/// outcome against the independent row split: every data row is a record
-/// or an error, on the right lines, in order, and nothing else.
 /// A file read through [`RecordStream`] in chunks of `rows`, put together.
 fn chunked(
     bytes: &[u8],
@@ -880,15 +877,7 @@ fn chunked(
     rules: &dyn Fn(&SeriesId) -> SeriesRules,
     rows: usize,
 ) -> Result<ParsedFile, FileError> {
-    let mut stream = RecordStream::new(bytes, layout, rules, TODAY)?;
-    let mut all = ParsedFile::default();
-    while let Some(mut chunk) = stream.next_chunk(rows)? {
-        assert!(chunk.records.len() + chunk.errors.len() <= rows);
-        assert!(chunk.records.len() + chunk.errors.len() > 0);
-        all.records.append(&mut chunk.records);
-        all.errors.append(&mut chunk.errors);
-    }
-    Ok(all)
+    all_chunks(RecordStream::new(bytes, layout, rules, TODAY)?, rows)
 }
 
 /// A file read through [`RecordStream::from_reader`] in pieces of `piece`
@@ -901,8 +890,14 @@ fn in_pieces(
     piece: usize,
 ) -> Result<ParsedFile, FileError> {
     let mut reader = bytes;
-    let mut stream =
-        RecordStream::from_reader(&mut reader, piece, bytes.len() as u64, layout, rules, TODAY)?;
+    let size = bytes.len() as u64;
+    let stream = RecordStream::from_reader(&mut reader, piece, size, layout, rules, TODAY)?;
+    all_chunks(stream, rows)
+}
+
+/// Every chunk of `rows` rows, put together; each chunk is checked to
+/// hold at least one row and at most `rows`.
+fn all_chunks(mut stream: RecordStream<'_>, rows: usize) -> Result<ParsedFile, FileError> {
     let mut all = ParsedFile::default();
     while let Some(mut chunk) = stream.next_chunk(rows)? {
         assert!(chunk.records.len() + chunk.errors.len() <= rows);
@@ -955,6 +950,9 @@ fn ids_are_told_apart_when_their_hashes_collide_and_far_lines_are_kept() {
     assert_eq!(seen.first_line("Z-9", far + 1), Some(far));
 }
 
+/// Parses `bytes` (must not panic) and, when they are text, checks the
+/// outcome against the independent row split: every data row is a record
+/// or an error, on the right lines, in order, and nothing else.
 fn check_every_row_accounted_for(bytes: &[u8]) {
     check_rows_with(bytes, &Layout::default());
 }

@@ -447,7 +447,12 @@ impl<'a> Pieces<'a> {
             } else {
                 (text, 0)
             };
-            let mut rows = Rows::window(text, self.delimiter, self.breaks - shift as u64, last);
+            let mut rows = Rows::window(
+                text,
+                self.delimiter,
+                self.breaks.saturating_sub(shift as u64),
+                last,
+            );
             let mut go_on = true;
             while go_on {
                 match rows.next_row()? {

@@ -73,4 +73,6 @@ for n in 100 1000 10000 100000; do
   run_one "n=$n" 2 "$n" $((2 * n / 100)) "$engine"
 done
 # The numpy peer at n = 10,000 too, to link the two engines.
-[ 10000 -le "$MAX_N" ] && run_one "n=10000" 2 10000 200 numpy
+if [ 10000 -le "$MAX_N" ]; then
+  run_one "n=10000" 2 10000 200 numpy
+fi

@@ -345,10 +345,23 @@ fn kill_9_during_a_large_ingest_then_restart_stores_every_record_exactly_once() 
         }
         site.drop_file(&format!("big-{f:03}.csv"), &s);
     }
-    // Kill at several moments, then let a last run finish.
+    // Kill at several moments, then let a last run finish. The first kill
+    // comes 150 ms after the start (in start-up or the settle time); the
+    // others come at moments after that run's first file has left the
+    // inbox, so that they fall inside the ingest however fast the machine.
     let mut remaining = Vec::new();
-    for delay_ms in [150u64, 500, 900, 1300] {
+    for delay_ms in [150u64, 0, 40, 120] {
+        let before = site.inbox_files().len();
         let mut child = site.start();
+        if !remaining.is_empty() {
+            let since = Instant::now();
+            while site.inbox_files().len() >= before
+                && since.elapsed() < Duration::from_secs(60)
+                && child.try_wait().unwrap().is_none()
+            {
+                std::thread::sleep(Duration::from_millis(1));
+            }
+        }
         std::thread::sleep(Duration::from_millis(delay_ms));
         child.kill().unwrap(); // SIGKILL
         child.wait().unwrap();

@@ -234,7 +234,8 @@ fn listing_root(file: &ReadyFile) -> PathBuf {
 }
 
 /// Reads, hashes and parses one file (no store, no series state); a large
-/// file is only read (see [`LARGE_FILE_BYTES`]).
+/// file is read from disk once, hashed and surveyed, and kept open for
+/// the second read that stores it (see [`LARGE_FILE_BYTES`]).
 pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
     let (_, layout) = config.feed_for(&file.relative);
     let rules = |id: &SeriesId| config.series_settings(id).rules();

@@ -249,18 +249,8 @@ pub fn prepare(config: &Config, file: &ReadyFile, now: SystemTime) -> Prepared {
             let mut reader = inbox::HashingReader::new(&f, config.max_file_bytes, None);
             let survey = Survey::stream(&mut reader, size, layout, &rules, today_of(now));
             let read = reader
-                .finish()
-                .map_err(|err| InboxError::read(&file.path, err))
-                .and_then(|(sha, size)| {
-                    if size > config.max_file_bytes {
-                        return Err(InboxError::TooLarge {
-                            path: file.path.clone(),
-                            size,
-                            max: config.max_file_bytes,
-                        });
-                    }
-                    Ok((sha, size, Vec::new()))
-                });
+                .finish_within(&file.path, config.max_file_bytes)
+                .map(|(sha, size)| (sha, size, Vec::new()));
             if read.is_ok() {
                 large = Some(Large { file: f, survey });
             }

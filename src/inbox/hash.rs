@@ -20,7 +20,7 @@ use super::InboxError;
 /// A file that no longer exists is [`InboxError::Vanished`].
 pub fn sha256_file(path: &Path, max_bytes: u64) -> Result<(String, u64, Vec<u8>), InboxError> {
     let file = File::open(path).map_err(|err| InboxError::read(path, err))?;
-    hash_open(path, file, max_bytes)
+    read_opened(path, file, max_bytes)
 }
 
 /// As [`sha256_file`] for a file listed below `root` (the inbox, or a
@@ -34,7 +34,7 @@ pub fn read_below(
     max_bytes: u64,
 ) -> Result<(String, u64, Vec<u8>), InboxError> {
     let file = open_below(path, root)?;
-    hash_open(path, file, max_bytes)
+    read_opened(path, file, max_bytes)
 }
 
 /// Opens a file listed below `root` as [`read_below`] does, without
@@ -92,31 +92,15 @@ pub fn read_opened(
     file: File,
     max_bytes: u64,
 ) -> Result<(String, u64, Vec<u8>), InboxError> {
-    hash_open(path, file, max_bytes)
-}
-
-fn hash_open(
-    path: &Path,
-    file: File,
-    max_bytes: u64,
-) -> Result<(String, u64, Vec<u8>), InboxError> {
     let declared = size_within(path, &file, max_bytes)?;
-    let too_large = |size| InboxError::TooLarge {
-        path: path.to_owned(),
-        size,
-        max: max_bytes,
-    };
     // A capacity hint only: a size that does not fit in memory fails at read.
     let mut bytes = Vec::with_capacity(usize::try_from(declared).unwrap_or(0));
-    file.take(max_bytes.saturating_add(1))
+    let mut reader = HashingReader::new(file, max_bytes, None);
+    reader
         .read_to_end(&mut bytes)
         .map_err(|err| InboxError::read(path, err))?;
-    let size = bytes.len() as u64;
-    if size > max_bytes {
-        return Err(too_large(size));
-    }
-    let digest = Sha256::digest(&bytes);
-    Ok((hex::encode(digest), size, bytes))
+    let (sha, _) = reader.finish_within(path, max_bytes)?;
+    Ok((sha, bytes.len() as u64, bytes))
 }
 
 /// Reads a file from its start while hashing what it reads, never more
@@ -147,6 +131,20 @@ impl<R: Read> HashingReader<R> {
     pub fn finish(mut self) -> std::io::Result<(String, u64)> {
         std::io::copy(&mut self, &mut std::io::sink())?;
         Ok((hex::encode(self.hasher.finalize()), self.read))
+    }
+
+    /// [`HashingReader::finish`] for the file at `path`, which must not
+    /// have grown past `max_bytes` while it was read.
+    pub fn finish_within(self, path: &Path, max_bytes: u64) -> Result<(String, u64), InboxError> {
+        let (sha, size) = self.finish().map_err(|err| InboxError::read(path, err))?;
+        if size > max_bytes {
+            return Err(InboxError::TooLarge {
+                path: path.to_owned(),
+                size,
+                max: max_bytes,
+            });
+        }
+        Ok((sha, size))
     }
 }
 

@@ -388,20 +388,28 @@ impl<'a> Pieces<'a> {
             .map_or(0, |i| i + 1)
     }
 
+    /// Reads until a piece lies after `pos`, starting with `want` bytes and
+    /// reading more while no line break ends one; returns its end (from
+    /// `pos`). At the end of the file the piece is the rest.
+    fn next_piece(&mut self, mut want: usize) -> Result<usize, FileError> {
+        loop {
+            self.fill(want)?;
+            let end = self.piece_end();
+            if self.eof || end > 0 {
+                return Ok(end);
+            }
+            want = more_than(self.buf.len() - self.pos, self.piece_bytes);
+        }
+    }
+
     /// Reads the rest of the file for bytes that are not text: the error
     /// they make, if any.
     fn rest_not_text(&mut self) -> Option<FileError> {
-        let mut want = self.piece_bytes;
         loop {
-            if let Err(e) = self.fill(want) {
-                return Some(e);
-            }
-            let end = self.piece_end();
-            let rest = self.buf.len() - self.pos;
-            if !self.eof && end == 0 {
-                want = more_than(rest, self.piece_bytes);
-                continue;
-            }
+            let end = match self.next_piece(self.piece_bytes) {
+                Ok(end) => end,
+                Err(e) => return Some(e),
+            };
             let bytes = self.buf.get(self.pos..self.pos + end).unwrap_or_default();
             if let Err(at) = Self::check_piece(bytes) {
                 return Some(self.not_text(end, at));
@@ -412,7 +420,6 @@ impl<'a> Pieces<'a> {
                 self.done = true;
                 return None;
             }
-            want = self.piece_bytes;
         }
     }
 
@@ -421,15 +428,9 @@ impl<'a> Pieces<'a> {
     fn rows(&mut self, each: &mut dyn FnMut(&Row<'_>) -> bool) -> Result<(), FileError> {
         let mut want = self.piece_bytes;
         while !self.done {
-            self.fill(want)?;
-            let end = self.piece_end();
-            let rest = self.buf.get(self.pos..).unwrap_or_default();
+            let end = self.next_piece(want)?;
             let last = self.eof;
-            let bytes = rest.get(..end).unwrap_or_default();
-            if !last && end == 0 {
-                want = more_than(rest.len(), self.piece_bytes);
-                continue;
-            }
+            let bytes = self.buf.get(self.pos..self.pos + end).unwrap_or_default();
             let text = match Self::check_piece(bytes) {
                 Ok(text) => text,
                 Err(at_utf8) => return Err(self.not_text(end, at_utf8)),

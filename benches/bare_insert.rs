@@ -11,6 +11,14 @@
 //! `-- INBOX DB lean` writes them in a hypothetical narrow shape (16 columns:
 //! no diagnostics, no raw line, the same unique index): what a record would
 //! cost if its diagnostics were recomputed from the fit it joined.
+//! `-- INBOX DB floor` writes the fewest rows the store's requirements
+//! allow, with placeholder values and nothing computed: per file, a source
+//! file row, one audit entry, each record with its provenance (file, line,
+//! raw text), version, censoring flag and its own diagnostics on arrival
+//! (leverage, studentized residual, Cook's distance, DFFITS, both DFBETAS,
+//! the slope without it), and one fit row per touched series (n, the fit's
+//! statistics, the robust slope with its interval, Mann-Kendall). Whatever
+//! this takes is spent before anything is parsed, validated or computed.
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -21,7 +29,9 @@ fn main() {
         .filter(|a| a != "--bench")
         .collect();
     let (Some(inbox), Some(db)) = (args.first(), args.get(1)) else {
-        eprintln!("usage: bare_insert INBOX DB [records|lean] (run through benches/ingest.sh)");
+        eprintln!(
+            "usage: bare_insert INBOX DB [records|lean|floor] (run through benches/ingest.sh)"
+        );
         return;
     };
     let shape = args.get(2).map(String::as_str);
@@ -46,6 +56,9 @@ fn main() {
     .unwrap_or_else(|e| panic!("{e}"));
     if let Some(shape @ ("records" | "lean")) = shape {
         return records(&mut conn, &files, shape == "lean");
+    }
+    if shape == Some("floor") {
+        return floor(&mut conn, &files);
     }
     let start = Instant::now();
     let mut rows = 0u64;
@@ -146,7 +159,7 @@ const CHUNK: usize = 32;
 /// in a release build of slopewarden). `lean`: the same rows with only
 /// [`LEAN_COLUMNS`] kept, in a table of that shape.
 fn records(conn: &mut rusqlite::Connection, files: &[PathBuf], lean: bool) {
-    use rusqlite::types::{ToSqlOutput, ValueRef};
+    use rusqlite::types::ValueRef;
     // References unchecked, as a release build of slopewarden writes them
     // (rusqlite's bundled SQLite checks them by default).
     conn.pragma_update(None, "foreign_keys", "OFF")
@@ -183,80 +196,59 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf], lean: bool) {
                 .unwrap_or_else(|| panic!("{c}"))
         })
         .collect();
-    let group = format!("({})", vec!["?"; columns.len()].join(", "));
-    let head = format!("INSERT INTO {table} ({}) VALUES ", columns.join(", "));
-    let many = format!("{head}{}", vec![group.as_str(); CHUNK].join(", "));
-    let one = format!("{head}{group}");
+    let rows_of = Chunked::new(table, columns);
     let start = Instant::now();
     let mut id = 0i64;
     let mut series: std::collections::HashMap<String, i64> = std::collections::HashMap::new();
     for (file_no, f) in files.iter().enumerate() {
         let text = std::fs::read_to_string(f).unwrap_or_else(|e| panic!("{e}"));
         let tx = conn.transaction().unwrap_or_else(|e| panic!("{e}"));
-        {
-            let mut stmt_many = tx.prepare_cached(&many).unwrap_or_else(|e| panic!("{e}"));
-            let mut stmt_one = tx.prepare_cached(&one).unwrap_or_else(|e| panic!("{e}"));
-            let lines: Vec<(usize, &str)> = text.lines().enumerate().skip(1).collect();
-            let full = lines.len() / CHUNK * CHUNK;
-            for (k, &(line_no, line)) in lines.iter().enumerate() {
-                let g: Vec<&str> = line.split(',').collect();
-                let field = |i: usize| g.get(i).copied().unwrap_or("").as_bytes();
-                let next = series.len() as i64 + 1;
-                let key = String::from_utf8_lossy(field(1)).into_owned();
-                let series_id = *series.entry(key).or_insert(next);
-                id += 1;
-                let number = |i: usize| {
-                    std::str::from_utf8(field(i))
-                        .ok()
-                        .and_then(|v| v.parse().ok())
-                        .unwrap_or(0.0)
-                };
-                let (x, y): (f64, f64) = (number(2), number(3));
-                let d = id as f64 * 1e-7;
-                let mut values = [ValueRef::Null; 33];
-                values[..21].copy_from_slice(&[
-                    ValueRef::Integer(id),
-                    ValueRef::Text(field(0)),
-                    ValueRef::Integer(1),
-                    ValueRef::Text(b"current"),
-                    ValueRef::Integer(series_id),
-                    ValueRef::Real(x),
-                    ValueRef::Real(y),
-                    ValueRef::Integer(0),
-                    ValueRef::Integer(1),
-                    ValueRef::Real(x),
-                    ValueRef::Real(y),
-                    ValueRef::Text(field(4)),
-                    ValueRef::Text(field(4)),
-                    ValueRef::Text(field(5)),
-                    ValueRef::Null,
-                    ValueRef::Null,
-                    ValueRef::Integer(file_no as i64 + 1),
-                    ValueRef::Integer(line_no as i64 + 1),
-                    ValueRef::Text(line.as_bytes()),
-                    ValueRef::Integer(id - 1),
-                    ValueRef::Integer(2),
-                ]);
-                for (c, v) in values.iter_mut().enumerate().take(32).skip(21) {
-                    *v = ValueRef::Real(d * c as f64);
-                }
-                let (stmt, at) = if k < full {
-                    (&mut stmt_many, (k % CHUNK) * columns.len())
-                } else {
-                    (&mut stmt_one, 0)
-                };
-                let bound = (|| -> rusqlite::Result<()> {
-                    for (c, &f) in at_full.iter().enumerate() {
-                        stmt.raw_bind_parameter(at + c + 1, ToSqlOutput::Borrowed(values[f]))?;
-                    }
-                    if k >= full || k % CHUNK == CHUNK - 1 {
-                        stmt.raw_execute()?;
-                    }
-                    Ok(())
-                })();
-                bound.unwrap_or_else(|e| panic!("{e}"));
+        let mut rows: Vec<ValueRef<'_>> = Vec::new();
+        for (line_no, line) in text.lines().enumerate().skip(1) {
+            let g: Vec<&str> = line.split(',').collect();
+            let field = |i: usize| g.get(i).copied().unwrap_or("").as_bytes();
+            let next = series.len() as i64 + 1;
+            let key = String::from_utf8_lossy(field(1)).into_owned();
+            let series_id = *series.entry(key).or_insert(next);
+            id += 1;
+            let number = |i: usize| {
+                std::str::from_utf8(field(i))
+                    .ok()
+                    .and_then(|v| v.parse().ok())
+                    .unwrap_or(0.0)
+            };
+            let (x, y): (f64, f64) = (number(2), number(3));
+            let d = id as f64 * 1e-7;
+            let mut values = [ValueRef::Null; 33];
+            values[..21].copy_from_slice(&[
+                ValueRef::Integer(id),
+                ValueRef::Text(field(0)),
+                ValueRef::Integer(1),
+                ValueRef::Text(b"current"),
+                ValueRef::Integer(series_id),
+                ValueRef::Real(x),
+                ValueRef::Real(y),
+                ValueRef::Integer(0),
+                ValueRef::Integer(1),
+                ValueRef::Real(x),
+                ValueRef::Real(y),
+                ValueRef::Text(field(4)),
+                ValueRef::Text(field(4)),
+                ValueRef::Text(field(5)),
+                ValueRef::Null,
+                ValueRef::Null,
+                ValueRef::Integer(file_no as i64 + 1),
+                ValueRef::Integer(line_no as i64 + 1),
+                ValueRef::Text(line.as_bytes()),
+                ValueRef::Integer(id - 1),
+                ValueRef::Integer(2),
+            ]);
+            for (c, v) in values.iter_mut().enumerate().take(32).skip(21) {
+                *v = ValueRef::Real(d * c as f64);
             }
+            rows.extend(at_full.iter().map(|&f| values[f]));
         }
+        rows_of.insert(&tx, &rows);
         tx.commit().unwrap_or_else(|e| panic!("{e}"));
     }
     print_rate(
@@ -269,4 +261,194 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf], lean: bool) {
         id as u64,
         start,
     );
+}
+
+/// Rows of one table written `CHUNK` to a statement, as the store writes them.
+struct Chunked {
+    many: String,
+    one: String,
+    columns: usize,
+}
+
+impl Chunked {
+    fn new(table: &str, columns: &[&str]) -> Chunked {
+        let group = format!("({})", vec!["?"; columns.len()].join(", "));
+        let head = format!("INSERT INTO {table} ({}) VALUES ", columns.join(", "));
+        Chunked {
+            many: format!("{head}{}", vec![group.as_str(); CHUNK].join(", ")),
+            one: format!("{head}{group}"),
+            columns: columns.len(),
+        }
+    }
+
+    /// Inserts `rows` (each `columns` values long) in chunks, then singly.
+    fn insert(&self, tx: &rusqlite::Transaction<'_>, rows: &[rusqlite::types::ValueRef<'_>]) {
+        use rusqlite::types::ToSqlOutput;
+        let n = rows.len() / self.columns;
+        let full = n / CHUNK * CHUNK;
+        let run = || -> rusqlite::Result<()> {
+            let mut many = tx.prepare_cached(&self.many)?;
+            for chunk in rows[..full * self.columns].chunks(CHUNK * self.columns) {
+                for (i, v) in chunk.iter().enumerate() {
+                    many.raw_bind_parameter(i + 1, ToSqlOutput::Borrowed(*v))?;
+                }
+                many.raw_execute()?;
+            }
+            let mut one = tx.prepare_cached(&self.one)?;
+            for row in rows[full * self.columns..].chunks(self.columns) {
+                for (i, v) in row.iter().enumerate() {
+                    one.raw_bind_parameter(i + 1, ToSqlOutput::Borrowed(*v))?;
+                }
+                one.raw_execute()?;
+            }
+            Ok(())
+        };
+        run().unwrap_or_else(|e| panic!("{e}"));
+    }
+}
+
+/// The fewest rows the store's requirements allow (see the module notes),
+/// placeholders for everything computed.
+fn floor(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
+    use rusqlite::types::ValueRef;
+    conn.execute_batch(
+        "CREATE TABLE source_files (id INTEGER PRIMARY KEY, name TEXT NOT NULL,
+            sha256 TEXT NOT NULL UNIQUE, size INTEGER NOT NULL, arrived_at TEXT NOT NULL,
+            outcome TEXT NOT NULL);
+         CREATE TABLE records (id INTEGER PRIMARY KEY, record_id TEXT NOT NULL,
+            version INTEGER NOT NULL, series_id INTEGER NOT NULL, x REAL NOT NULL,
+            y REAL NOT NULL, censored INTEGER NOT NULL, file_id INTEGER NOT NULL,
+            line INTEGER NOT NULL, raw TEXT NOT NULL, leverage REAL,
+            studentized_residual REAL, cooks_distance REAL, dffits REAL,
+            dfbetas_intercept REAL, dfbetas_slope REAL, slope_without REAL,
+            UNIQUE (record_id, version));
+         CREATE TABLE fits (id INTEGER PRIMARY KEY, series_id INTEGER NOT NULL,
+            version INTEGER NOT NULL, trigger_file INTEGER NOT NULL, n INTEGER NOT NULL,
+            slope REAL, intercept REAL, slope_se REAL, slope_p REAL, slope_ci_low REAL,
+            slope_ci_high REAL, r_squared REAL, residual_sd REAL, theil_sen_slope REAL,
+            theil_sen_ci_low REAL, theil_sen_ci_high REAL, mann_kendall_s INTEGER,
+            mann_kendall_p REAL);
+         CREATE TABLE audit_log (id INTEGER PRIMARY KEY, at TEXT NOT NULL, kind TEXT NOT NULL,
+            subject TEXT NOT NULL, detail TEXT NOT NULL, prev_hash TEXT NOT NULL,
+            hash TEXT NOT NULL);",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let record_rows = Chunked::new(
+        "records",
+        &[
+            "id",
+            "record_id",
+            "version",
+            "series_id",
+            "x",
+            "y",
+            "censored",
+            "file_id",
+            "line",
+            "raw",
+            "leverage",
+            "studentized_residual",
+            "cooks_distance",
+            "dffits",
+            "dfbetas_intercept",
+            "dfbetas_slope",
+            "slope_without",
+        ],
+    );
+    let fit_rows = Chunked::new(
+        "fits",
+        &[
+            "series_id",
+            "version",
+            "trigger_file",
+            "n",
+            "slope",
+            "intercept",
+            "slope_se",
+            "slope_p",
+            "slope_ci_low",
+            "slope_ci_high",
+            "r_squared",
+            "residual_sd",
+            "theil_sen_slope",
+            "theil_sen_ci_low",
+            "theil_sen_ci_high",
+            "mann_kendall_s",
+            "mann_kendall_p",
+        ],
+    );
+    let hash = "0123456789abcdef".repeat(4);
+    let start = Instant::now();
+    let mut id = 0i64;
+    let mut series: std::collections::HashMap<String, (i64, i64, i64)> =
+        std::collections::HashMap::new();
+    for (file_no, f) in files.iter().enumerate() {
+        let text = std::fs::read_to_string(f).unwrap_or_else(|e| panic!("{e}"));
+        let file_id = file_no as i64 + 1;
+        let tx = conn.transaction().unwrap_or_else(|e| panic!("{e}"));
+        tx.execute(
+            "INSERT INTO source_files (id, name, sha256, size, arrived_at, outcome) \
+             VALUES (?1, ?2, ?3, ?4, '2026-12-04T19:00:00Z', 'ingested')",
+            rusqlite::params![
+                file_id,
+                f.to_string_lossy(),
+                format!("{file_id:064}"),
+                text.len() as i64
+            ],
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+        let mut rows: Vec<ValueRef<'_>> = Vec::new();
+        let mut touched: Vec<i64> = Vec::new();
+        for (line_no, line) in text.lines().enumerate().skip(1) {
+            let g: Vec<&str> = line.split(',').collect();
+            let field = |i: usize| g.get(i).copied().unwrap_or("");
+            let next = series.len() as i64 + 1;
+            let entry = series
+                .entry(field(1).to_string())
+                .or_insert((next, 0, file_id - 1));
+            entry.1 += 1;
+            if entry.2 != file_id {
+                entry.2 = file_id;
+                touched.push(entry.0);
+            }
+            id += 1;
+            let number = |i: usize| field(i).parse().unwrap_or(0.0);
+            let d = id as f64 * 1e-7;
+            rows.extend_from_slice(&[
+                ValueRef::Integer(id),
+                ValueRef::Text(field(0).as_bytes()),
+                ValueRef::Integer(1),
+                ValueRef::Integer(entry.0),
+                ValueRef::Real(number(2)),
+                ValueRef::Real(number(3)),
+                ValueRef::Integer(0),
+                ValueRef::Integer(file_id),
+                ValueRef::Integer(line_no as i64 + 1),
+                ValueRef::Text(line.as_bytes()),
+            ]);
+            rows.extend((1..=7).map(|c| ValueRef::Real(d * c as f64)));
+        }
+        record_rows.insert(&tx, &rows);
+        let mut fits: Vec<ValueRef<'_>> = Vec::new();
+        for s in touched {
+            let d = s as f64 * 1e-3 + file_id as f64;
+            fits.extend_from_slice(&[
+                ValueRef::Integer(s),
+                ValueRef::Integer(file_id),
+                ValueRef::Integer(file_id),
+                ValueRef::Integer(file_id),
+            ]);
+            fits.extend((1..=11).map(|c| ValueRef::Real(d * c as f64)));
+            fits.extend_from_slice(&[ValueRef::Integer(s), ValueRef::Real(d)]);
+        }
+        fit_rows.insert(&tx, &fits);
+        tx.execute(
+            "INSERT INTO audit_log (at, kind, subject, detail, prev_hash, hash) \
+             VALUES ('2026-12-04T19:00:00Z', 'file_ingested', ?1, ?2, ?3, ?3)",
+            rusqlite::params![f.to_string_lossy(), "ingested", hash],
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+        tx.commit().unwrap_or_else(|e| panic!("{e}"));
+    }
+    print_rate("required_floor", files.len(), id as u64, start);
 }

@@ -3,8 +3,9 @@
 # ../shared/bench/make_workload.py (an invented scenario):
 #   1. a bare SQLite insert of the same rows (benches/bare_insert.rs), and
 #      the same rows in the shape of slopewarden's records table (its
-#      `records` mode: what the row shape alone costs) and in a narrower
-#      hypothetical shape (its `lean` mode),
+#      `records` mode: what the row shape alone costs), in a narrower
+#      hypothetical shape (its `lean` mode), and as the fewest rows the
+#      store's requirements allow (its `floor` mode),
 #   2. `slopewarden ingest` over the same inbox (parse, validate, refit,
 #      diagnostics, audit, commit per file), with its peak RSS.
 # Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
@@ -61,6 +62,13 @@ lean_out=$("$bare_bin" "$work/w/inbox" "$work/lean.sqlite3" lean)
 echo "$lean_out"
 lean_s=$(echo "$lean_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
 rm -f "$work"/lean.sqlite3*
+# The fewest rows the store's requirements allow (a source file row, an
+# audit entry, each record with its provenance and diagnostics, a fit row
+# per touched series), nothing computed: the floor of any schema.
+floor_out=$("$bare_bin" "$work/w/inbox" "$work/floor.sqlite3" floor)
+echo "$floor_out"
+floor_s=$(echo "$floor_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+rm -f "$work"/floor.sqlite3*
 
 cat > "$work/sw.toml" <<TOML
 [paths]
@@ -79,12 +87,13 @@ rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
 echo "steal time during slopewarden ingest: $sw_steal"
-python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" "$lean_s" <<'PY'
+python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" "$lean_s" "$floor_s" <<'PY'
 import sys
 records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
-shape, lean = float(sys.argv[5]), float(sys.argv[6])
+shape, lean, floor = float(sys.argv[5]), float(sys.argv[6]), float(sys.argv[7])
 print(f"slopewarden ingest: {records} records in {sw:.2f} s = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
 print(f"bare SQLite insert: {bare:.2f} s; ratio slopewarden / bare = {sw/bare:.2f}")
 print(f"records-shaped insert (nothing computed): {shape:.2f} s = {shape/bare:.2f} x bare")
 print(f"narrow record rows (no diagnostics, no raw line; nothing computed): {lean:.2f} s = {lean/bare:.2f} x bare")
+print(f"fewest rows the requirements allow (records with provenance and diagnostics, fit rows, audit; nothing computed): {floor:.2f} s = {floor/bare:.2f} x bare")
 PY

@@ -16,6 +16,12 @@ use super::error::{FitError, check_finite_pairs};
 /// diagonal entry of R falls below this share of the column's norm.
 const RANK_TOLERANCE: f64 = 1e-12;
 
+/// When deleting a point would remove more than this share of the residual
+/// sum of squares, `SSE − e²/(1 − h)` cancels too many digits, and the fit
+/// without the point is solved again from its rows (as the straight-line
+/// closed forms do).
+const DOWNDATE_CANCELLATION: f64 = 1.0 - 1e-3;
+
 /// Influence diagnostics of one point in a general linear fit.
 #[derive(Debug, Clone, PartialEq)]
 pub struct GeneralPoint {
@@ -55,6 +61,18 @@ pub struct GeneralFit {
 /// The design `[1, x]` of a straight line.
 pub fn line_design(x: &[f64]) -> DMatrix<f64> {
     DMatrix::from_fn(x.len(), 2, |i, j| if j == 0 { 1.0 } else { x[i] })
+}
+
+/// The residual sum of squares of the fit without row `skip`, solved from
+/// the remaining rows; `None` if they do not determine the coefficients.
+fn sse_without_row(design: &DMatrix<f64>, y: &[f64], skip: usize) -> Option<f64> {
+    let rows: Vec<usize> = (0..design.nrows()).filter(|&i| i != skip).collect();
+    let d = design.select_rows(rows.iter());
+    let yv = DVector::from_iterator(rows.len(), rows.iter().map(|&i| y[i]));
+    let qr = d.clone().qr();
+    let beta = qr.r().solve_upper_triangular(&(qr.q().transpose() * &yv))?;
+    let resid = yv - d * beta;
+    Some(resid.iter().map(|e| e * e).sum())
 }
 
 /// The design `[1, x, x²]` of a quadratic trend.
@@ -144,7 +162,13 @@ pub fn fit_general(design: &DMatrix<f64>, y: &[f64]) -> Result<GeneralFit, FitEr
         let r_std = e / (s * omh.sqrt());
         let cooks = r_std * r_std / pf * h / omh;
         let (stud, dffits, dfbetas, covratio) = if df >= 2 {
-            let s2_i = ((sse - e * e / omh) / (df - 1) as f64).max(0.0);
+            let reduction = e * e / omh;
+            let sse_i = if reduction > DOWNDATE_CANCELLATION * sse {
+                sse_without_row(design, y, i).unwrap_or(sse - reduction)
+            } else {
+                sse - reduction
+            };
+            let s2_i = (sse_i / (df - 1) as f64).max(0.0);
             let covratio = (s2_i / s2).powi(p as i32) / omh;
             if s2_i > 0.0 {
                 let s_i = s2_i.sqrt();

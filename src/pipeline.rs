@@ -31,7 +31,7 @@ use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
 use crate::findings::causes::Candidate;
 use crate::findings::rules::{
     CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with,
-    judge_trend, outlier_measure,
+    judge_trend, ln_scale_ruled_out, outlier_measure,
 };
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
@@ -1727,10 +1727,14 @@ fn store_file_behind<'t, 'c: 't>(
                         _ => None,
                     };
                     // The ln(y) screen asks only whether the record is an
-                    // outlier there.
-                    if let (Some(j), Some(lj), Some(_)) =
-                        (judgement.as_mut(), log_judged, t.row.x_span)
+                    // outlier there, and not where the series (before the
+                    // record) rules that scale out: with additive scatter
+                    // and a falling level, the ln scale stretches the low
+                    // end and would flag ordinary records.
+                    if let (Some(j), Some(lj), Some(mj), Some(_)) =
+                        (judgement.as_mut(), log_judged, judged, t.row.x_span)
                         && !j.kinds.contains(&RecordKind::Outlier)
+                        && !ln_scale_ruled_out(&mj.before, &lj.before)
                         && let Some(m) = outlier_measure(
                             &lj,
                             t.in_file,

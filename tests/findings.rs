@@ -435,6 +435,65 @@ fn a_value_ten_times_too_large_is_an_outlier_and_its_plausible_twin_raises_nothi
     assert!(eml_files(&site.path("data/outbox")).is_empty());
 }
 
+/// 121 quarterly points from 1990 to 2020 whose level falls tenfold, from
+/// 10 to 1, with [`wiggle`] as additive scatter (`ln = false`: the same
+/// ±0.3 at every level) or as multiplicative scatter (`ln = true`: ±0.3 on
+/// the ln scale, about ±30 % at every level). Invented.
+fn falling_tenfold(ln: bool) -> Vec<(f64, f64)> {
+    (0..121)
+        .map(|i| {
+            let x = 1990.0 + 0.25 * i as f64;
+            let y = if ln {
+                (10f64.ln() - 10f64.ln() * (x - 1990.0) / 30.0 + wiggle(i)).exp()
+            } else {
+                10.0 - 0.3 * (x - 1990.0) + wiggle(i)
+            };
+            (x, y)
+        })
+        .collect()
+}
+
+#[test]
+fn the_ln_y_screen_catches_a_slip_where_scatter_grows_with_the_level_and_is_not_asked_where_it_does_not()
+ {
+    let outlier_measures = |f: &Value| -> Vec<String> {
+        f["detail"]["measures"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|m| m["kind"] == "outlier" && m["crossed"] == true)
+            .map(|m| m["measure"].as_str().unwrap().to_string())
+            .collect()
+    };
+    // Multiplicative scatter: the next quarter entered ten times too small
+    // (a decimal slip) is ordinary on the original scale, where the fit of
+    // a tenfold fall leaves large residuals, and stands out on the ln scale.
+    let site = Site::new("", "");
+    site.deliver("a.csv", &csv(1, &falling_tenfold(true)));
+    site.deliver("b.csv", &csv(122, &[(2020.25, 0.1)]));
+    let found = site.findings();
+    let f = found
+        .iter()
+        .find(|f| record_ids(f) == ["Q122"])
+        .unwrap_or_else(|| panic!("the slip is flagged: {found:#?}"));
+    assert!(kinds(f).contains(&"outlier"), "{f:#?}");
+    assert_eq!(
+        outlier_measures(f),
+        ["prediction t on the ln(y) scale (second screen for multiplicative slips)"]
+    );
+    // Additive scatter, the level falling the same tenfold: a record at the
+    // low end as far below the line as the scatter goes (-0.3) is ordinary.
+    // On the ln scale it would be far out (the ln scale stretches the low
+    // end), but this series rules that scale out (Box-Cox), so it is not
+    // asked there.
+    let site = Site::new("", "");
+    site.deliver("a.csv", &csv(1, &falling_tenfold(false)));
+    let before = site.findings().len();
+    site.deliver("b.csv", &csv(122, &[(2020.25, 10.0 - 0.3 * 30.25 - 0.3)]));
+    let found = site.findings();
+    assert_eq!(found.len(), before, "nothing raised: {found:#?}");
+}
+
 #[test]
 fn a_message_held_by_the_hourly_limit_keeps_its_subject_but_no_second_copy_of_the_finding() {
     // Three decimal slips in three series at once, one message an hour.

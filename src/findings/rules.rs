@@ -19,6 +19,14 @@
 //!   one clean arrival in six (common practice treats them as screening
 //!   values, not tests).
 //!
+//! A second outlier screen on the ln(y) scale catches multiplicative slips
+//! (a decimal point, a unit) in series whose scatter grows with their
+//! level. It is asked only where that scale describes the series at least
+//! as well as the original one ([`ln_scale_advantage`], the Box-Cox profile
+//! likelihood): in a series with additive scatter whose level falls, the
+//! ln scale stretches the low end, and the screen would flag ordinary
+//! records there.
+//!
 //! Trend-level findings (`sign_reversal`, `significance_change`) use
 //! hysteresis: a trend becomes significant when p falls below α and stops
 //! only when p rises above a wider release level, so a p-value hovering
@@ -27,7 +35,7 @@
 use statrs::distribution::{ContinuousCDF, FisherSnedecor};
 
 use crate::stats::dist::t_quantile;
-use crate::stats::{Arrival, LineFit};
+use crate::stats::{Arrival, LineFit, Moments};
 
 /// Number of coefficients of the straight line.
 const P: usize = 2;
@@ -226,6 +234,45 @@ pub struct CutoffCache {
 fn judged_points(judged: &Arrival, t: &Thresholds) -> Option<usize> {
     let n_before = judged.before.n() as usize;
     (n_before >= t.min_n_record.max(3)).then_some(n_before)
+}
+
+/// How much better the ln(y) scale describes a series than the original
+/// one: the Box-Cox profile log-likelihood of λ = 0 less that of λ = 1
+/// (Box & Cox 1964), for the straight-line fits of the same points on the
+/// two scales. With SSE_λ the residual sum of squares of the fit of the
+/// transformed y, ℓ(λ) = −(n/2)·ln SSE_λ + (λ − 1)·Σ ln y (plus a constant),
+/// so ℓ(0) − ℓ(1) = (n/2)·(ln SSE_1 − ln SSE_0) − n·mean(ln y): the ln
+/// fit's residuals are scaled back by the geometric mean of y before they
+/// are compared. The same quantity as `MASS::boxcox(fit, lambda = c(0, 1))`
+/// in R (its `y[1] - y[2]`).
+///
+/// `None` when the two fits are not of the same points, have fewer than 3,
+/// or either has no residual scatter.
+pub fn ln_scale_advantage(original: &Moments, ln: &Moments) -> Option<f64> {
+    let n = original.n();
+    if n < 3 || ln.n() != n {
+        return None;
+    }
+    let (sse_1, sse_0) = (original.sse(), ln.sse());
+    if !(sse_1 > 0.0 && sse_0 > 0.0 && sse_1.is_finite() && sse_0.is_finite()) {
+        return None;
+    }
+    let n = n as f64;
+    Some(n / 2.0 * (sse_1.ln() - sse_0.ln()) - n * ln.mean_y())
+}
+
+/// Half the 0.95 quantile of χ² with one degree of freedom (R:
+/// `qchisq(0.95, 1) / 2`): the drop in profile log-likelihood that bounds
+/// the approximate 95 % interval of the Box-Cox λ (Box & Cox 1964).
+pub const BOX_COX_HALF_CHI2_95: f64 = 3.841458820694124 / 2.0;
+
+/// Whether a series rules the ln(y) scale out: λ = 1 alone already lies
+/// more than [`BOX_COX_HALF_CHI2_95`] above λ = 0 in profile
+/// log-likelihood, so (the maximum being at least as high) λ = 0 is
+/// outside the approximate 95 % interval of λ. `false` when it cannot be
+/// told ([`ln_scale_advantage`] is `None`).
+pub fn ln_scale_ruled_out(original: &Moments, ln: &Moments) -> bool {
+    ln_scale_advantage(original, ln).is_some_and(|a| a < -BOX_COX_HALF_CHI2_95)
 }
 
 /// The outlier rule alone: the record's prediction t against the
@@ -508,6 +555,97 @@ mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
     use crate::stats::{SeriesState, fit_line};
+
+    /// ℓ(0) − ℓ(1) of the Box-Cox profile likelihood against R 4.2.2's
+    /// MASS 7.3-58.2 (Debian bookworm r-cran-mass),
+    /// `b <- boxcox(lm(y ~ x), lambda = c(0, 1), plotit = FALSE); b$y[1] - b$y[2]`,
+    /// on three of R's datasets: `cars` (dist on speed; Ezekiel 1930),
+    /// `women` (weight on height) and Anscombe's (1973) set I, where the
+    /// original scale is the better one.
+    #[test]
+    fn ln_scale_advantage_matches_r_mass_boxcox() {
+        fn advantage(x: &[f64], y: &[f64]) -> f64 {
+            let ln: Vec<f64> = y.iter().map(|v| v.ln()).collect();
+            ln_scale_advantage(&Moments::from_points(x, y), &Moments::from_points(x, &ln)).unwrap()
+        }
+        let rel = |a: f64, b: f64| ((a - b) / b).abs();
+        let speed = [
+            4.0, 4.0, 7.0, 7.0, 8.0, 9.0, 10.0, 10.0, 10.0, 11.0, 11.0, 12.0, 12.0, 12.0, 12.0,
+            13.0, 13.0, 13.0, 13.0, 14.0, 14.0, 14.0, 14.0, 15.0, 15.0, 15.0, 16.0, 16.0, 17.0,
+            17.0, 17.0, 18.0, 18.0, 18.0, 18.0, 19.0, 19.0, 19.0, 20.0, 20.0, 20.0, 20.0, 20.0,
+            22.0, 23.0, 24.0, 24.0, 24.0, 24.0, 25.0,
+        ];
+        let dist = [
+            2.0, 10.0, 4.0, 22.0, 16.0, 10.0, 18.0, 26.0, 34.0, 17.0, 28.0, 14.0, 20.0, 24.0, 28.0,
+            26.0, 34.0, 34.0, 46.0, 26.0, 36.0, 60.0, 80.0, 20.0, 26.0, 54.0, 32.0, 40.0, 32.0,
+            40.0, 50.0, 42.0, 56.0, 76.0, 84.0, 36.0, 46.0, 68.0, 32.0, 48.0, 52.0, 56.0, 64.0,
+            66.0, 54.0, 70.0, 92.0, 93.0, 120.0, 85.0,
+        ];
+        let a = advantage(&speed, &dist);
+        assert!(rel(a, 0.191_461_183_564_726_4) < 1e-9, "{a}");
+        let height: Vec<f64> = (58..=72).map(f64::from).collect();
+        let weight = [
+            115.0, 117.0, 120.0, 123.0, 126.0, 129.0, 132.0, 135.0, 139.0, 142.0, 146.0, 150.0,
+            154.0, 159.0, 164.0,
+        ];
+        let a = advantage(&height, &weight);
+        assert!(rel(a, 10.70224849916422) < 1e-9, "{a}");
+        let x1 = [10.0, 8.0, 13.0, 9.0, 11.0, 14.0, 6.0, 4.0, 12.0, 7.0, 5.0];
+        let y1 = [
+            8.04, 6.95, 7.58, 8.81, 8.33, 9.96, 7.24, 4.26, 10.84, 4.82, 5.68,
+        ];
+        let a = advantage(&x1, &y1);
+        assert!(rel(a, -0.398_432_333_780_566_4) < 1e-9, "{a}");
+    }
+
+    /// χ²(0.95, 1) against R 4.2.2 (`qchisq(0.95, 1)` = 3.841458820694124)
+    /// through statrs' inverse CDF, and the rule on a series with additive
+    /// scatter whose level falls tenfold (the ln scale ruled out) and on one
+    /// with multiplicative scatter (invented, deterministic).
+    #[test]
+    fn the_ln_scale_is_ruled_out_only_by_a_clear_box_cox_margin() {
+        use statrs::distribution::ChiSquared;
+        let q = ChiSquared::new(1.0).unwrap().inverse_cdf(0.95);
+        assert!(((q - 2.0 * BOX_COX_HALF_CHI2_95) / q).abs() < 1e-9, "{q}");
+        let wiggle = |i: usize| ((i * 37) % 23) as f64 / 11.0 - 1.0;
+        let x: Vec<f64> = (0..200).map(|i| i as f64).collect();
+        let additive: Vec<f64> = (0..200)
+            .map(|i| 10.0 - 0.045 * i as f64 + 0.3 * wiggle(i))
+            .collect();
+        let multiplicative: Vec<f64> = (0..200)
+            .map(|i| (2.3 - 0.0115 * i as f64 + 0.3 * wiggle(i)).exp())
+            .collect();
+        for (y, ruled_out) in [(&additive, true), (&multiplicative, false)] {
+            let ln: Vec<f64> = y.iter().map(|v| v.ln()).collect();
+            let (m, l) = (Moments::from_points(&x, y), Moments::from_points(&x, &ln));
+            assert_eq!(
+                ln_scale_ruled_out(&m, &l),
+                ruled_out,
+                "{:?}",
+                ln_scale_advantage(&m, &l)
+            );
+        }
+    }
+
+    #[test]
+    fn ln_scale_advantage_needs_the_same_points_with_scatter() {
+        let x = [1.0, 2.0, 3.0, 4.0];
+        let y = [2.0, 4.0, 6.0, 8.0];
+        let ln: Vec<f64> = y.iter().map(|v: &f64| v.ln()).collect();
+        // An exact line on the original scale: no scatter to compare.
+        let exact = Moments::from_points(&x, &y);
+        assert_eq!(
+            ln_scale_advantage(&exact, &Moments::from_points(&x, &ln)),
+            None
+        );
+        // Different points on the two scales.
+        let y = [2.0, 4.5, 6.0, 8.0];
+        let three = Moments::from_points(&x[..3], &ln[..3]);
+        assert_eq!(
+            ln_scale_advantage(&Moments::from_points(&x, &y), &three),
+            None
+        );
+    }
 
     /// Quarterly series with a small deterministic wiggle (invented).
     fn quarterly(n: usize) -> Vec<(f64, f64)> {

@@ -66,8 +66,9 @@ pub struct Thresholds {
     pub significance_alpha: f64,
     /// A significant trend stops being so only above this p (0.10).
     pub release_alpha: f64,
-    /// Records are judged once the series held this many points before the
-    /// newcomer (10).
+    /// The leverage and influence rules judge a record once the series
+    /// held this many points before it (10). The outlier test needs only 5
+    /// (three residual degrees of freedom for its prediction t).
     pub min_n_record: usize,
     /// Trend changes are reported from this n on (10).
     pub min_n_trend: usize,
@@ -229,11 +230,26 @@ pub struct CutoffCache {
     median_f: std::collections::HashMap<usize, f64>,
 }
 
+/// The fewest points the fit a record is judged against may have for the
+/// outlier test: its prediction t then has 3 residual degrees of freedom.
+/// With 1 or 2, the scatter rests on one or two residuals, and three points
+/// that happen to lie on a line to the last digit (rounded decimal data
+/// can) leave a scatter of round-off that any newcomer would be far from.
+const MIN_N_OUTLIER: usize = 5;
+
 /// The points of the fit a record is judged against, when there are
-/// enough to judge it at all (`min_n_record`, and never fewer than 3).
-fn judged_points(judged: &Arrival, t: &Thresholds) -> Option<usize> {
+/// enough for the outlier test ([`MIN_N_OUTLIER`]), with whether there are
+/// enough for the leverage and influence rules too (`min_n_record`).
+///
+/// The outlier test is exact for any residual df under the model, and its
+/// critical value grows as the df shrink (t(1 − 0.0005, 3) = 12.92), so it
+/// can speak early: a unit slip in a young series is flagged on arrival
+/// instead of staying unflagged in the fit, where it would mask the
+/// records after it. A few points put any newcomer far out in x, so
+/// leverage and influence wait for `min_n_record`.
+fn judged_points(judged: &Arrival, t: &Thresholds) -> Option<(usize, bool)> {
     let n_before = judged.before.n() as usize;
-    (n_before >= t.min_n_record.max(3)).then_some(n_before)
+    (n_before >= MIN_N_OUTLIER).then_some((n_before, n_before >= t.min_n_record))
 }
 
 /// How much better the ln(y) scale describes a series than the original
@@ -322,7 +338,7 @@ pub fn judge_record_with(
     t: &Thresholds,
     cache: &mut CutoffCache,
 ) -> Option<RecordJudgement> {
-    let n_before = judged_points(judged, t)?;
+    let (n_before, full) = judged_points(judged, t)?;
     let n = n_before + 1;
     let nf = n as f64;
     let pf = P as f64;
@@ -431,6 +447,12 @@ pub fn judge_record_with(
                 source: CutoffSource::Fixed("2/sqrt(n) (Belsley, Kuh & Welsch 1980)"),
             });
         }
+    }
+    if !full {
+        // Too few points for the leverage and influence rules: only the
+        // outlier test speaks, and only its measure is shown.
+        kinds.retain(|k| *k == RecordKind::Outlier);
+        measures.retain(|m| m.kind == "outlier");
     }
     kinds.sort();
     Some(RecordJudgement {
@@ -751,18 +773,40 @@ mod tests {
         assert!(j.kinds.contains(&RecordKind::HighLeverage), "{j:?}");
     }
 
+    /// Below `min_n_record` only the outlier test speaks (from 5 points
+    /// on, its prediction t has df = n − 2 ≥ 3): a value far off the line is
+    /// flagged with that one measure, and a record far out in x but on the
+    /// line raises nothing. Its cutoff at 5 points is t(1 − 0.001/2, 3) =
+    /// 12.923978636688 (R 4.2.2: `qt(1 - 0.0005, 3)`).
     #[test]
-    fn short_series_are_not_judged() {
+    fn short_series_are_judged_by_the_outlier_test_alone() {
         let pts = quarterly(5);
         let mut s = SeriesState::new();
         for &(x, y) in &pts {
             s.add(x, y).unwrap();
         }
-        let a = s.add(2030.0, 100.0).unwrap();
         let span = Span {
             min: 2010.0,
             max: 2011.0,
         };
+        let off = s.clone().add(2011.25, 100.0).unwrap();
+        let j = judge_record(&off, span, 1, &Thresholds::default()).unwrap();
+        assert_eq!(j.kinds, [RecordKind::Outlier]);
+        assert_eq!(j.measures.len(), 1);
+        assert_eq!(j.measures[0].kind, "outlier");
+        assert!((j.measures[0].cutoff / 12.923_978_636_688 - 1.0).abs() < 1e-9);
+        // Twenty years beyond the range, on the fitted line: no outlier,
+        // and leverage is not judged yet.
+        let line = LineFit::from_moments(s.moments(), 0.95).unwrap();
+        let far = s.clone().add(2030.0, line.predict(2030.0)).unwrap();
+        let j = judge_record(&far, span, 1, &Thresholds::default()).unwrap();
+        assert!(j.kinds.is_empty(), "{j:?}");
+        // Four points before the newcomer: too few to judge it.
+        let mut four = SeriesState::new();
+        for &(x, y) in &pts[..4] {
+            four.add(x, y).unwrap();
+        }
+        let a = four.add(2011.0, 100.0).unwrap();
         assert!(judge_record(&a, span, 1, &Thresholds::default()).is_none());
     }
 

@@ -19,13 +19,15 @@
 //!   one clean arrival in six (common practice treats them as screening
 //!   values, not tests).
 //!
+//! The outlier test speaks from a series' fifth point; the leverage and
+//! influence rules wait for `min_n_record` (10).
+//!
 //! A second outlier screen on the ln(y) scale catches multiplicative slips
 //! (a decimal point, a unit) in series whose scatter grows with their
-//! level. It is asked only where that scale describes the series at least
-//! as well as the original one ([`ln_scale_advantage`], the Box-Cox profile
-//! likelihood): in a series with additive scatter whose level falls, the
-//! ln scale stretches the low end, and the screen would flag ordinary
-//! records there.
+//! level. It is not asked where the series itself rules that scale out
+//! ([`ln_scale_ruled_out`], the Box-Cox profile likelihood): in a series
+//! with additive scatter whose level falls, the ln scale stretches the low
+//! end, and the screen would flag ordinary records there.
 //!
 //! Trend-level findings (`sign_reversal`, `significance_change`) use
 //! hysteresis: a trend becomes significant when p falls below α and stops

@@ -302,6 +302,10 @@ pub fn record_finding(
             _ => "x".into(),
         },
         severity,
+        kinds: kinds
+            .iter()
+            .filter_map(|k| FindingKind::from_name(k))
+            .collect(),
         flags: flags(&case.judgement.measures),
         fit_with: with.as_ref().map(summary_of),
         fit_without: without.as_ref().map(summary_of),
@@ -391,6 +395,7 @@ pub fn plain_finding(
         unit: series.and_then(|s| s.unit.clone()).unwrap_or_default(),
         x_label: "x".into(),
         severity,
+        kinds: Vec::new(),
         flags: vec![Flag {
             kind: FindingKind::from_name(kind).unwrap_or(FindingKind::Quarantined),
             measure: summary.to_string(),

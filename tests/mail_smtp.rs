@@ -59,6 +59,7 @@ fn notice(finding_id: i64) -> Notice {
         unit: "mg/L".into(),
         x_label: "year".into(),
         severity: Severity::Alert,
+        kinds: Vec::new(),
         flags: vec![
             Flag {
                 kind: FindingKind::HighLeverage,

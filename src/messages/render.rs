@@ -230,7 +230,12 @@ pub struct Notice {
     pub x_label: String,
     /// How urgent the finding is.
     pub severity: Severity,
-    /// Why it was raised; at least one entry in practice.
+    /// The kinds the finding was raised for, which the subject names (a
+    /// measure reported beside them, such as |DFFITS|, is not one); empty:
+    /// the kinds of the flags.
+    pub kinds: Vec<FindingKind>,
+    /// Why it was raised, and what else crossed a cutoff; at least one
+    /// entry in practice.
     pub flags: Vec<Flag>,
     /// The fit including the record (or the current fit).
     pub fit_with: Option<FitSummary>,
@@ -378,7 +383,11 @@ fn kinds_text(kinds: impl Iterator<Item = FindingKind>) -> String {
 
 fn notice_subject(n: &Notice) -> String {
     let series = header_safe(&n.series, SUBJECT_NAME_CHARS);
-    let kinds = kinds_text(n.flags.iter().map(|f| f.kind));
+    let kinds = if n.kinds.is_empty() {
+        kinds_text(n.flags.iter().map(|f| f.kind))
+    } else {
+        kinds_text(n.kinds.iter().copied())
+    };
     let what = match &n.record {
         Some(r) => format!(
             "check record {} in series {series}",
@@ -1059,6 +1068,7 @@ pub(crate) mod tests {
             unit: "mg/L".into(),
             x_label: "year".into(),
             severity: Severity::Warning,
+            kinds: Vec::new(),
             flags: vec![
                 Flag {
                     kind: FindingKind::HighLeverage,
@@ -1141,6 +1151,43 @@ pub(crate) mod tests {
         assert_eq!(
             r.subject,
             "[slopewarden] warning: check record MW-3/2031-07 in series alder-brook/nitrate: high leverage, influential"
+        );
+    }
+
+    /// A measure reported beside the finding (|DFFITS| crossing its cutoff
+    /// while Cook's distance does not) stays in the body, but the subject
+    /// names only the kinds the finding was raised for.
+    #[test]
+    fn subject_names_only_the_kinds_raised() {
+        let mut n = sample_notice();
+        n.kinds = vec![FindingKind::Outlier];
+        n.flags = vec![
+            Flag {
+                kind: FindingKind::Outlier,
+                measure: "prediction t (externally studentized residual)".into(),
+                value: Some(-6.722),
+                cutoff: Some(4.539),
+                cutoff_source: "t(1 - 0.001/(2*5), 20)".into(),
+            },
+            Flag {
+                kind: FindingKind::Influential,
+                measure: "|DFFITS| (reported, not raised alone)".into(),
+                value: Some(1.457),
+                cutoff: Some(0.5898),
+                cutoff_source: "2*sqrt(p/n)".into(),
+            },
+        ];
+        let r = render_notice(&n);
+        assert!(
+            r.subject.ends_with("alder-brook/nitrate: outlier"),
+            "{}",
+            r.subject
+        );
+        assert!(
+            r.text
+                .contains("|DFFITS| (reported, not raised alone) = 1.457"),
+            "{}",
+            r.text
         );
     }
 

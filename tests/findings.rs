@@ -401,6 +401,14 @@ fn one_record(f: &[Value]) -> &Value {
     &f[0]
 }
 
+/// The finding about record `id` alone; fails the test if there is none.
+fn finding_about<'a>(found: &'a [Value], id: &str) -> &'a Value {
+    found
+        .iter()
+        .find(|f| record_ids(f) == [id])
+        .unwrap_or_else(|| panic!("a finding about {id}: {found:#?}"))
+}
+
 // ---------------------------------------------------------------------------
 // 1. Every kind of finding, and its clean twin.
 
@@ -466,10 +474,7 @@ fn a_unit_slip_in_a_young_series_is_an_outlier_and_does_not_hide_the_next_one() 
     site.deliver("c.csv", &csv(8, &more));
     site.deliver("d.csv", &csv(13, &[(2013.0, 10.0 * line(2013.0))]));
     let found = site.findings();
-    let slip = found
-        .iter()
-        .find(|f| record_ids(f) == ["Q013"])
-        .unwrap_or_else(|| panic!("the decimal slip is flagged: {found:#?}"));
+    let slip = finding_about(&found, "Q013");
     assert!(kinds(slip).contains(&"outlier"), "{slip:#?}");
 }
 
@@ -510,10 +515,7 @@ fn the_ln_y_screen_catches_a_slip_where_scatter_grows_with_the_level_and_is_not_
     site.deliver("a.csv", &csv(1, &falling_tenfold(true)));
     site.deliver("b.csv", &csv(122, &[(2020.25, 0.1)]));
     let found = site.findings();
-    let f = found
-        .iter()
-        .find(|f| record_ids(f) == ["Q122"])
-        .unwrap_or_else(|| panic!("the slip is flagged: {found:#?}"));
+    let f = finding_about(&found, "Q122");
     assert!(kinds(f).contains(&"outlier"), "{f:#?}");
     assert_eq!(
         outlier_measures(f),
@@ -881,10 +883,7 @@ fn without_smtp_ingest_writes_each_finding_message_as_an_eml_with_text_html_and_
     assert_eq!(ids_in_files, ids_in_rows);
 
     // The outlier's message, in detail.
-    let finding = found
-        .iter()
-        .find(|f| record_ids(f) == ["Q031"])
-        .expect("the outlier's finding");
+    let finding = finding_about(&found, "Q031");
     let id = finding["id"].as_i64().unwrap();
     let row = rows.iter().find(|r| r.finding == Some(id)).unwrap();
     let (chart_cid, chart_png, body_text): (String, Vec<u8>, String) = site

@@ -549,6 +549,29 @@ fn the_csv_exports_neutralise_formulas_and_keep_numbers_numeric() {
     assert_eq!(&verdicts[0][col(&header, "series")], QUARRY);
 }
 
+/// A report with open findings tells its reader what to do next (check
+/// the records, then give a verdict); one without says nothing of the kind.
+#[test]
+fn open_findings_come_with_what_to_do_next() {
+    let site = site();
+    slip_finding(&site);
+    let next = |raw: &str| -> Option<String> {
+        let doc = Html::parse_document(raw);
+        doc.select(&sel("header p.next")).next().map(text)
+    };
+    assert!(!site.json(&["findings", "--open", "--json"]).is_empty());
+    let said = next(&site.report_html(&[])).expect("a next step with open findings");
+    assert!(said.contains("slopewarden review ID --verdict"), "{said}");
+    assert!(said.contains("do not act on the trends"), "{said}");
+
+    // Every open finding given a verdict: no next step is left to ask for.
+    for f in site.json(&["findings", "--open", "--json"]) {
+        record_verdict(&site, f["id"].as_i64().unwrap(), "checked");
+    }
+    assert!(site.json(&["findings", "--open", "--json"]).is_empty());
+    assert_eq!(next(&site.report_html(&[])), None);
+}
+
 #[test]
 fn a_series_pattern_filters_and_an_invalid_one_is_refused() {
     let site = site();

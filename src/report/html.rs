@@ -167,6 +167,17 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
         )),
         s = if open == 1 { "" } else { "s" },
     );
+    if open > 0 {
+        // What the reader does next: the open findings' records are
+        // unverified, and the trends they touch wait on them.
+        out.push_str(
+            "<p class=\"next\">Open findings await a verdict. Check each record concerned \
+             (field sheet, chain of custody, laboratory report), then record what it was with \
+             <code>slopewarden review ID --verdict confirmed|corrected|excluded --note \"...\"</code>; \
+             <code>slopewarden show ID</code> gives a finding in full. Until then, do not act on \
+             the trends those records touch.</p>\n",
+        );
+    }
     let _ = write!(
         out,
         "<aside class=\"caution\" role=\"note\"><strong>Caution.</strong> {}</aside>\n</header>\n",

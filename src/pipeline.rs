@@ -2869,6 +2869,34 @@ mod tests {
     }
 
     #[test]
+    fn a_stored_id_in_the_middle_of_a_statement_leaves_nothing_of_the_file() {
+        // Bulk INSERTs run OR FAIL: the rows before the failing one in the
+        // same statement are written, then go with the transaction.
+        let (_dir, config, mut store, mut cache) = setup();
+        let start = assumed(&config.database, &cache);
+        // 40 new records (more than a statement's 32 rows), W0012 among
+        // the first 32.
+        let next = deliver(&config.inbox, "b.csv", 13, 40, 0.0);
+        let text = std::fs::read_to_string(&next.path).unwrap();
+        let mut lines: Vec<&str> = text.lines().collect();
+        lines.insert(11, "W0012,MW-7/nitrate,2003.0,5.0");
+        std::fs::write(&next.path, lines.join("\n") + "\n").unwrap();
+        let next = ReadyFile {
+            size: std::fs::metadata(&next.path).unwrap().len(),
+            ..next
+        };
+        let outcome = ahead(&config, &mut store, &mut cache, &next, &start);
+        refused_whole(&config.database, outcome, "record ids is stored already");
+        assert_eq!(
+            count(
+                &config.database,
+                "SELECT COUNT(*) FROM records WHERE file_id = 2"
+            ),
+            0
+        );
+    }
+
+    #[test]
     fn records_or_content_stored_already_are_caught() {
         let (_dir, config, mut store, mut cache) = setup();
         let start = assumed(&config.database, &cache);

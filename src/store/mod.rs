@@ -58,8 +58,16 @@ pub use report::{
 pub use verdicts::{NewVerdict, RecordState, ReviewTarget, VerdictRow};
 
 /// Columns of a record row, in the order [`record_columns`] gives them.
+///
+/// `OR FAIL` (here and in [`INSERT_FIT_HEAD`]): a multi-row INSERT that may
+/// abort on a constraint makes SQLite copy every page it touches into a
+/// statement journal first, to undo just that statement; with 16 KiB pages
+/// that was some 2 % of a large ingest (perf: `subjournalPageIfRequired`,
+/// `memjrnlWrite`). Nothing here undoes one statement and goes on: any
+/// failed write poisons the file's transaction, which is rolled back whole
+/// (`store::behind`), so the rows a failed statement leaves go with it.
 const INSERT_RECORD_HEAD: &str =
-    "INSERT INTO records (id, record_id, version, status, series_id, x, y,
+    "INSERT OR FAIL INTO records (id, record_id, version, status, series_id, x, y,
     censored, in_fit, fit_x, fit_y, unit, unit_as_written, sampled_at, note, attributes, file_id,
     line, raw, prev_in_series, joined_fit, leverage, standardized_residual, studentized_residual,
     cooks_distance, dffits, dfbetas_intercept, dfbetas_slope, covariance_ratio, prediction_t,
@@ -370,7 +378,7 @@ impl RecordBatch {
     }
 }
 
-const INSERT_FIT_HEAD: &str = "INSERT INTO fits (id, series_id, version, trigger_file, created_at,
+const INSERT_FIT_HEAD: &str = "INSERT OR FAIL INTO fits (id, series_id, version, trigger_file, created_at,
     transform, non_detects, n, n_censored, level, slope, intercept, slope_se, intercept_se, slope_t,
     slope_p, slope_ci_low, slope_ci_high, r_squared, residual_sd, df, theil_sen_slope,
     theil_sen_ci_low, theil_sen_ci_high, mann_kendall_s, mann_kendall_p, note, records, robust_n,
@@ -1180,14 +1188,15 @@ impl Store {
         })
     }
 
-    /// Settings for a connection that ingests. A multi-row INSERT into a
-    /// table with a unique index keeps a statement journal (the pages it
-    /// changes, to undo just that statement on a constraint failure);
-    /// above 64 KiB SQLite spills it to a temporary file, which for a
-    /// file's record batches meant some 60 page writes to `/var/tmp` per
-    /// 1,000 records (strace). Kept in memory instead: a statement touches
-    /// a few pages. Only the ingesting connection: readers' sorts of large
-    /// results keep spilling to disk.
+    /// Settings for a connection that ingests. A statement that changes
+    /// several rows and may abort keeps a statement journal (the pages it
+    /// changes, to undo just that statement); above 64 KiB SQLite spills
+    /// it to a temporary file, which for a file's record batches meant some
+    /// 60 page writes to `/var/tmp` per 1,000 records (strace), before they
+    /// ran `OR FAIL` (see [`INSERT_RECORD_HEAD`]). Kept in memory for the
+    /// statements that still keep one: each touches a few pages. Only the
+    /// ingesting connection: readers' sorts of large results keep spilling
+    /// to disk.
     pub fn for_ingest(&mut self) -> Result<()> {
         self.conn
             .pragma_update(None, "temp_store", "MEMORY")

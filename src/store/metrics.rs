@@ -132,6 +132,7 @@ impl Store {
             bulk: BulkStatements::default(),
             conn,
             path: path.to_path_buf(),
+            catch_up: Default::default(),
         })
     }
 

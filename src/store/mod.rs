@@ -35,7 +35,7 @@ mod verdicts;
 
 use std::collections::HashSet;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicI64, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicI64, Ordering};
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
@@ -1111,6 +1111,11 @@ pub struct Store {
     bulk: BulkStatements,
     conn: Connection,
     path: PathBuf,
+    /// Set by the background checkpointer when the log has grown long and
+    /// it has just copied it: the writer then copies the few frames
+    /// committed meanwhile, so that its next transaction starts the log
+    /// over (see [`checkpoint`]).
+    catch_up: Arc<AtomicBool>,
 }
 
 impl Store {
@@ -1185,6 +1190,7 @@ impl Store {
             bulk: BulkStatements::default(),
             conn,
             path,
+            catch_up: Arc::default(),
         })
     }
 
@@ -1233,6 +1239,7 @@ impl Store {
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
             bulk: std::cell::RefCell::new(&mut self.bulk),
+            catch_up: &self.catch_up,
         };
         tx.renew()?;
         Ok(tx)
@@ -1508,6 +1515,8 @@ pub struct Tx<'a> {
     findings_written: std::cell::RefCell<Vec<(i64, seal::FindingRows)>>,
     /// The connection's multi-row INSERTs of record and fit rows.
     bulk: std::cell::RefCell<&'a mut BulkStatements>,
+    /// The store's flag from the background checkpointer.
+    catch_up: &'a AtomicBool,
 }
 
 impl Tx<'_> {
@@ -2060,7 +2069,17 @@ impl Tx<'_> {
     /// Commits: everything of the file is durable when this returns.
     pub fn commit(self) -> Result<()> {
         // A failed COMMIT leaves the transaction open; the drop rolls it back.
-        self.tx.execute_batch("COMMIT").map_err(self.wrap())
+        self.tx.execute_batch("COMMIT").map_err(self.wrap())?;
+        self.after_commit();
+        Ok(())
+    }
+
+    /// Between transactions: the writer's part in keeping the log short
+    /// (see [`checkpoint`]). Never fails the commit before it.
+    fn after_commit(&self) {
+        if self.catch_up.swap(false, Ordering::Relaxed) {
+            checkpoint::catch_up(self.tx, &self.path);
+        }
     }
 
     /// Begins the next transaction on this connection (after [`Tx::end`]),
@@ -2098,6 +2117,9 @@ impl Tx<'_> {
             let done = self.tx.execute_batch("COMMIT").map_err(self.wrap());
             if done.is_err() && !self.tx.is_autocommit() {
                 let _ = self.tx.execute_batch("ROLLBACK");
+            }
+            if done.is_ok() {
+                self.after_commit();
             }
             done
         } else {

@@ -115,9 +115,7 @@ fn run(
             Err(RecvTimeoutError::Timeout) => false,
             Ok(()) | Err(RecvTimeoutError::Disconnected) => true,
         };
-        match conn.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |r| {
-            Ok((r.get::<_, i64>(1)?, r.get::<_, i64>(2)?))
-        }) {
+        match passive(conn) {
             Ok((frames, copied)) => {
                 debug!(frames, copied, "checkpoint");
                 if frames >= restart_frames {
@@ -137,12 +135,17 @@ fn run(
 /// pass left, so that the next transaction can start the log over. Never
 /// fatal: the log only stays longer.
 pub(super) fn catch_up(conn: &Connection, path: &Path) {
-    match conn.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |r| {
-        Ok((r.get::<_, i64>(1)?, r.get::<_, i64>(2)?))
-    }) {
+    match passive(conn) {
         Ok((frames, copied)) => debug!(frames, copied, "checkpoint caught up by the writer"),
         Err(e) => warn!(database = %path.display(), error = %e, "the writer's checkpoint failed"),
     }
+}
+
+/// A PASSIVE checkpoint: (frames in the log, frames copied).
+fn passive(conn: &Connection) -> rusqlite::Result<(i64, i64)> {
+    conn.query_row("PRAGMA wal_checkpoint(PASSIVE)", [], |r| {
+        Ok((r.get(1)?, r.get(2)?))
+    })
 }
 
 impl Drop for Checkpointer {

@@ -233,7 +233,11 @@ fn a_stop_asked_after_a_file_leaves_the_file_computed_ahead_in_the_inbox_untouch
             if i == 0 { Flow::Stop } else { Flow::Continue }
         },
     );
-    assert_eq!(reported, vec![0, 1], "the file already committing is reported");
+    assert_eq!(
+        reported,
+        vec![0, 1],
+        "the file already committing is reported"
+    );
     let conn = rusqlite::Connection::open(&config.database).unwrap();
     let stored: i64 = conn
         .query_row("SELECT COUNT(*) FROM source_files", [], |r| r.get(0))

@@ -1158,6 +1158,10 @@ struct Touched {
     in_file: usize,
     /// The last arrival of this file and its record id.
     last: Option<(Arrival, String)>,
+    /// The unit of this file's first record of the series that names one
+    /// (the series' own when configured): what a trend message's slopes
+    /// are in.
+    unit: Option<String>,
     /// The fit of ln(y) on x, a second screen for multiplicative slips, for
     /// series fitted on the original scale while every y is positive.
     log: Option<SeriesState>,
@@ -1623,6 +1627,7 @@ fn store_file_behind<'t, 'c: 't>(
                         awaiting,
                         in_file,
                         last: None,
+                        unit: None,
                         log,
                         window,
                         window_points,
@@ -1635,6 +1640,9 @@ fn store_file_behind<'t, 'c: 't>(
             let Some(t) = touched.get_mut(key) else {
                 unreachable!("BUG: the series was inserted just above");
             };
+            if t.unit.is_none() {
+                t.unit = t.row.unit.clone().or_else(|| record.unit.clone());
+            }
             let joins = t.row.fit_version + 1;
             let fit_point = match fit_point(record, &t.settings) {
                 Ok(p) => p,
@@ -2325,6 +2333,8 @@ struct SeriesView {
     robust: Option<(f64, f64, f64)>,
     /// The id of the file's last record of the series.
     last_id: Option<String>,
+    /// The unit of the series' values in this file.
+    unit: Option<String>,
 }
 
 /// A file's findings, owned: raised by [`raise_findings`] inside the
@@ -2374,6 +2384,7 @@ impl FindingsWork {
                     points,
                     robust: cache.robust.get(key).copied(),
                     last_id: t.last.as_ref().map(|(_, id)| id.clone()),
+                    unit: t.unit.clone(),
                 },
             );
         }
@@ -2536,7 +2547,7 @@ fn raise_findings(
             file,
             before.as_ref(),
             after,
-            t.last_id.as_deref(),
+            (t.last_id.as_deref(), t.unit.as_deref()),
             at,
             now_unix,
         )?;

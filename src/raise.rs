@@ -310,13 +310,7 @@ pub fn record_finding(
         fit_with: with.as_ref().map(summary_of),
         fit_without: without.as_ref().map(summary_of),
         ci_level: level,
-        scale_note: match case.transform {
-            Transform::None => None,
-            t => Some(format!(
-                "fitted on the {} scale; slopes are on that scale",
-                t.name()
-            )),
-        },
+        scale_note: scale_note(case.transform),
         robust: case.robust.map(|(s, a, b)| RobustSlope {
             slope: s,
             ci: Some((a, b)),
@@ -367,6 +361,7 @@ pub fn plain_finding(
 ) -> Result<i64> {
     let kinds = vec![kind.to_string()];
     let severity = severity_of(config, &kinds);
+    let transform = series.and_then(|s| Transform::from_name(&s.transform));
     let id = tx.insert_finding(&NewFinding {
         created_at: at,
         series: series.map(|s| s.id),
@@ -392,8 +387,24 @@ pub fn plain_finding(
                 .map_or_else(String::new, |f| format!("feed {f}")),
         },
         record: None,
-        unit: series.and_then(|s| s.unit.clone()).unwrap_or_default(),
-        x_label: "x".into(),
+        // A trend's detail names the unit of its series' values.
+        unit: series
+            .and_then(|s| s.unit.clone())
+            .or_else(|| {
+                detail
+                    .get("unit")
+                    .and_then(|v| v.as_str())
+                    .map(str::to_string)
+            })
+            .unwrap_or_default(),
+        x_label: match (series, file, transform) {
+            (Some(s), Some(f), Some(t))
+                if x_kind_of(config, f.1, t, s.x_span) == XKind::DecimalYear =>
+            {
+                "year".into()
+            }
+            _ => "x".into(),
+        },
         severity,
         kinds: Vec::new(),
         flags: vec![Flag {
@@ -410,7 +421,7 @@ pub fn plain_finding(
         fit_with: fits.0.map(summary_of),
         fit_without: fits.1.map(summary_of),
         ci_level: config.level,
-        scale_note: None,
+        scale_note: transform.and_then(scale_note),
         robust: None,
         judged_against: detail
             .get("judged_against")
@@ -448,7 +459,7 @@ pub fn trend_finding(
     file: (FileId, &str),
     before: Option<&LineFit>,
     after: &LineFit,
-    newest: Option<&str>,
+    (newest, unit): (Option<&str>, Option<&str>),
     at: &str,
     now_unix: i64,
 ) -> Result<i64> {
@@ -469,6 +480,7 @@ pub fn trend_finding(
         "change": change.summary,
         "caused_by_newest_record": change.caused_by_newest,
         "newest_record": newest,
+        "unit": unit,
         "fit_before": before.map(FitDetail::of),
         "fit_after": FitDetail::of(after),
         "rule": format!("becomes significant below p = {}, stops above p = {}, from n = {} (hysteresis; project defaults)",
@@ -490,6 +502,17 @@ pub fn trend_finding(
         at,
         now_unix,
     )
+}
+
+/// What a message says of its slopes' scale when the series is fitted on
+/// a transformed one.
+fn scale_note(transform: Transform) -> Option<String> {
+    (transform != Transform::None).then(|| {
+        format!(
+            "fitted on the {} scale; slopes are on that scale",
+            transform.name()
+        )
+    })
 }
 
 /// The caution every finding carries.

@@ -816,6 +816,34 @@ fn a_far_record_near_zero_reverses_a_significant_slope_and_a_plausible_twin_does
     );
 }
 
+#[test]
+fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
+    // The same far record as above; the sign reversal's message compares
+    // two slopes, so it must say what they are in: the records' unit per
+    // year (x is a date in decimal years).
+    let site = site_with_gentle_series("");
+    site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
+    let found = site.findings();
+    let reversal = found
+        .iter()
+        .find(|f| kinds(f).contains(&"sign_reversal"))
+        .unwrap_or_else(|| panic!("{found:#?}"));
+    assert_eq!(reversal["detail"]["unit"], "mg/L");
+    let body: String = site
+        .db()
+        .query_row(
+            "SELECT body_text FROM outbox WHERE finding_id = ?1",
+            [reversal["id"].as_i64().unwrap()],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert!(body.contains("Slopes are in mg/L per year."), "{body}");
+    assert!(
+        body.contains("The trend now and in the fit it is compared with"),
+        "{body}"
+    );
+}
+
 // ---------------------------------------------------------------------------
 // 2. Messages as .eml files when no SMTP server is configured.
 

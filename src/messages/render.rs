@@ -482,6 +482,15 @@ fn column_titles(n: &Notice) -> (&'static str, &'static str) {
     }
 }
 
+/// The heading over the comparison table.
+fn comparison_heading(n: &Notice) -> &'static str {
+    if n.record.is_some() {
+        "The trend with the record and without it"
+    } else {
+        "The trend now and in the fit it is compared with"
+    }
+}
+
 fn slope_unit_sentence(n: &Notice) -> String {
     match &n.scale_note {
         Some(note) => inline(note, SENTENCE_CHARS),
@@ -658,7 +667,7 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
     t.push_str(&wrap(&judged, TEXT_WIDTH, ""));
 
     let (wt, wot) = column_titles(n);
-    heading(&mut t, &format!("The trend {wt} and {wot}"));
+    heading(&mut t, comparison_heading(n));
     let rows = comparison_rows(n);
     let w0 = rows
         .iter()
@@ -811,7 +820,7 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
     }
 
     let (wt, wot) = column_titles(n);
-    putln!(h, "<h3>The trend {wt} and {wot}</h3>");
+    putln!(h, "<h3>{}</h3>", comparison_heading(n));
     putln!(
         h,
         "<table style=\"border-collapse:collapse\">\n<tr><th {TD}></th><th {TD}>{wt}</th><th {TD}>{wot}</th></tr>"

@@ -44,6 +44,7 @@ caption { text-align: left; font-size: .85rem; color: #444444; padding-bottom: .
 th, td { border-bottom: 1px solid #d6d6d6; padding: .24rem .45rem; text-align: left; vertical-align: top; }
 thead th { border-bottom: 1.5px solid #1a1a1a; font-weight: 600; background: #f3f3f3; }
 th.num, td.num { text-align: right; white-space: nowrap; }
+td.num .aside { display: block; white-space: normal; }
 td.text { overflow-wrap: break-word; }
 td.when { white-space: nowrap; }
 sup { font-size: .72em; line-height: 0; vertical-align: .5em; }
@@ -620,7 +621,7 @@ fn as_of(robust: &ReportFitRow, current: &ReportFitRow) -> String {
         String::new()
     } else {
         format!(
-            " <span class=\"muted\">(as of version {}, n = {}; recomputed when the series doubles)</span>",
+            " <span class=\"muted aside\">(as of version {}, n = {}; recomputed when the series doubles)</span>",
             robust.version, robust.n
         )
     }

@@ -9,7 +9,10 @@
 #     summary page plus one page or more per series),
 #   - dump the DOM it built (checked: the script-named series is a text
 #     node, no script element exists, the charts are inline SVG, the
-#     flagged record is labelled).
+#     flagged record is labelled),
+#   - lay it out 1,200 pixels wide inside a test page of its own (the
+#     report itself carries no script) and measure it (checked: nothing
+#     is wider than the page; a figures table once was).
 # Exits non-zero on the first failure. Installs Chromium when missing.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
@@ -97,4 +100,25 @@ grep -q '<svg' "$WORK/dom.html" || fail "no inline SVG in the rendered DOM"
 grep -q 'class="flag-label"[^>]*>QL-021</text>' "$WORK/dom.html" \
   || fail "the flagged record QL-021 is not labelled"
 
-echo "report_screenshot: ok: $ART/report.png ($size bytes), $pages PDF pages; DOM checked"
+# Laid out at a common laptop width, nothing may stick out sideways: the
+# test page frames the report and writes its widths into its own DOM.
+cat >"$WORK/measure.html" <<'EOF'
+<!doctype html><html><body><p id="out">not measured</p>
+<iframe id="f" src="report.html" style="width:1200px;height:900px"></iframe>
+<script>
+document.getElementById('f').addEventListener('load', function () {
+  var d = this.contentDocument.documentElement;
+  document.getElementById('out').textContent =
+    'widths ' + d.scrollWidth + ' ' + d.clientWidth;
+});
+</script></body></html>
+EOF
+browser measure --allow-file-access-from-files --virtual-time-budget=5000 \
+  --dump-dom "file://$WORK/measure.html" >"$WORK/measure-dom.html" \
+  || fail "chromium --dump-dom of the measuring page"
+read -r scroll client < <(grep -o 'widths [0-9]* [0-9]*' "$WORK/measure-dom.html" | cut -d' ' -f2,3) \
+  || fail "the report was not measured: $(grep -o 'id="out">[^<]*' "$WORK/measure-dom.html")"
+[ "$scroll" -le "$client" ] \
+  || fail "the report is $scroll pixels wide in a $client-pixel page: something sticks out sideways"
+
+echo "report_screenshot: ok: $ART/report.png ($size bytes), $pages PDF pages; DOM checked; ${scroll}px wide in ${client}px"

@@ -137,6 +137,13 @@ fn run(
 pub(super) fn catch_up(conn: &Connection, path: &Path) {
     match passive(conn) {
         Ok((frames, copied)) => debug!(frames, copied, "checkpoint caught up by the writer"),
+        // Another checkpoint is running (a reader's, or the checkpointer's
+        // next pass): the next request will do.
+        Err(rusqlite::Error::SqliteFailure(e, _))
+            if e.code == rusqlite::ErrorCode::DatabaseBusy =>
+        {
+            debug!("the writer's checkpoint found another running");
+        }
         Err(e) => warn!(database = %path.display(), error = %e, "the writer's checkpoint failed"),
     }
 }

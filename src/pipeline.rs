@@ -1789,11 +1789,11 @@ fn store_file_behind<'t, 'c: 't>(
                     // outlier there, and not where the series (before the
                     // record) rules that scale out: with additive scatter
                     // and a falling level, the ln scale stretches the low
-                    // end and would flag ordinary records.
+                    // end and would flag ordinary records. (Asked last:
+                    // only a record the screen would flag needs it.)
                     if let (Some(j), Some(lj), Some(mj), Some(_)) =
                         (judgement.as_mut(), log_judged, judged, t.row.x_span)
                         && !j.kinds.contains(&RecordKind::Outlier)
-                        && !ln_scale_ruled_out(&mj.before, &lj.before)
                         && let Some(m) = outlier_measure(
                             &lj,
                             t.in_file,
@@ -1801,6 +1801,7 @@ fn store_file_behind<'t, 'c: 't>(
                             &mut cache.cutoffs,
                         )
                         && m.crossed
+                        && !ln_scale_ruled_out(&mj.before, &lj.before)
                     {
                         j.kinds.push(RecordKind::Outlier);
                         j.kinds.sort();

@@ -263,7 +263,9 @@ fn records(conn: &mut rusqlite::Connection, files: &[PathBuf], lean: bool) {
     );
 }
 
-/// Rows of one table written `CHUNK` to a statement, as the store writes them.
+/// Rows of one table written `CHUNK` to a statement, as the store writes them
+/// (`OR FAIL`, so SQLite keeps no statement journal; see the store's
+/// `INSERT_RECORD_HEAD`).
 struct Chunked {
     many: String,
     one: String,
@@ -273,7 +275,10 @@ struct Chunked {
 impl Chunked {
     fn new(table: &str, columns: &[&str]) -> Chunked {
         let group = format!("({})", vec!["?"; columns.len()].join(", "));
-        let head = format!("INSERT INTO {table} ({}) VALUES ", columns.join(", "));
+        let head = format!(
+            "INSERT OR FAIL INTO {table} ({}) VALUES ",
+            columns.join(", ")
+        );
         Chunked {
             many: format!("{head}{}", vec![group.as_str(); CHUNK].join(", ")),
             one: format!("{head}{group}"),

@@ -564,6 +564,7 @@ mod commands {
 
     pub fn ingest(config: Option<&Path>, json_logs: bool, paths: &[PathBuf]) -> ExitCode {
         init_logs(json_logs, true);
+        let with_config = config.map_or_else(String::new, |c| format!(" --config {}", c.display()));
         let (config, mut store) = match setup_creating(config) {
             Ok(v) => v,
             Err(code) => return code,
@@ -596,6 +597,9 @@ mod commands {
                     "{} file(s) ingested, {} already ingested, {} quarantined, {} failed; {} new record(s)",
                     t.ingested, t.duplicates, t.quarantined, t.failed, t.records
                 );
+                for line in ingest_next_steps(&t, &config, &store, &with_config) {
+                    println!("{line}");
+                }
                 if stop.load(std::sync::atomic::Ordering::SeqCst) {
                     eprintln!(
                         "slopewarden ingest: interrupted; the files not yet taken stay where they are, run the same command again to go on"
@@ -612,6 +616,40 @@ mod commands {
                 ExitCode::from(EXIT_BAD_INPUT)
             }
         }
+    }
+
+    /// What the person who ran `ingest` does next: the open findings to
+    /// check, the files set aside, the files to run again.
+    fn ingest_next_steps(
+        t: &daemon::RunTotals,
+        config: &Config,
+        store: &Store,
+        with_config: &str,
+    ) -> Vec<String> {
+        let mut lines = Vec::new();
+        match store.open_findings(0) {
+            Ok((_, open)) if open > 0 => lines.push(format!(
+                "{open} open finding(s) await a check of their records: list them with \
+                 `slopewarden findings --open{with_config}`, read one with \
+                 `slopewarden show ID{with_config}`, then record a verdict with \
+                 `slopewarden review ID --verdict confirmed|corrected|excluded --note \"...\"{with_config}`"
+            )),
+            Ok(_) => {}
+            Err(e) => lines.push(format!("(open findings not counted: {e})")),
+        }
+        if t.quarantined > 0 {
+            lines.push(format!(
+                "files set aside whole are in {}, each with a .reason.txt that says what to fix",
+                config.quarantine.display()
+            ));
+        }
+        if t.failed > 0 {
+            lines.push(
+                "files that failed stayed where they were; the log above says why; run the same command again once it is fixed"
+                    .to_string(),
+            );
+        }
+        lines
     }
 
     pub fn check_config(file: Option<&Path>) -> ExitCode {

@@ -1,8 +1,9 @@
 //! An operator's first month, with the real binary: a backup taken while
 //! the daemon writes, a disk that runs short (files wait, one finding),
 //! a configuration reloaded on SIGHUP (with restart-only keys named), an
-//! interrupted `ingest` with its own exit code, `--version`, and read
-//! commands refusing a database that does not exist.
+//! interrupted `ingest` with its own exit code, an `ingest` that says what
+//! to do next, `--version`, and read commands refusing a database that
+//! does not exist.
 //!
 //! Series and record names are invented.
 
@@ -278,6 +279,29 @@ fn an_interrupted_ingest_exits_130_and_a_second_run_finishes_the_job() {
         .unwrap();
     assert!(again.status.success());
     assert_eq!(site.count(&db, "SELECT COUNT(*) FROM records"), 150 * 400);
+}
+
+#[test]
+fn an_ingest_says_what_to_do_next_about_findings_and_files_set_aside() {
+    let site = Site::new("");
+    // Twenty quiet readings, then one a hundred times too large, and a
+    // file that is not records at all.
+    let mut text = well_file("OP-NX", "op-well-9/nitrate", 20);
+    text.push_str("OP-NX-slip,op-well-9/nitrate,2005.25,1150,mg/L\n");
+    std::fs::write(site.path("inbox/a.csv"), text).unwrap();
+    std::fs::write(site.path("inbox/b.csv"), [0u8, 159, 146, 150, 0, 1, 2]).unwrap();
+    let out = site.cmd(&["ingest", "inbox"]);
+    let said = String::from_utf8_lossy(&out.stdout);
+    assert!(said.contains("1 file(s) ingested"), "{said}");
+    assert!(said.contains("1 quarantined"), "{said}");
+    let config = format!("--config {}", site.path("slopewarden.toml").display());
+    assert!(said.contains("open finding(s) await a check"), "{said}");
+    assert!(
+        said.contains(&format!("slopewarden findings --open {config}")),
+        "{said}"
+    );
+    assert!(said.contains("slopewarden review ID --verdict"), "{said}");
+    assert!(said.contains(".reason.txt that says what to fix"), "{said}");
 }
 
 #[test]

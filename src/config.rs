@@ -111,6 +111,18 @@ pub struct SeriesSettings {
     /// The analysis window of the fit (None: all points). A window set
     /// with the `window` command overrides this one.
     pub window: Option<crate::window::Window>,
+    /// What x measures, such as "distance from the source" (labels only).
+    pub x_name: Option<String>,
+    /// The unit x is recorded in, such as "m": slopes read "mg/kg per m".
+    pub x_unit: Option<String>,
+}
+
+/// Whether a configured `x_unit` names years ("year", "years", "yr", "a"):
+/// x is then read as decimal years.
+pub fn unit_is_year(unit: &str) -> bool {
+    ["year", "years", "yr", "a"]
+        .iter()
+        .any(|y| unit.trim().eq_ignore_ascii_case(y))
 }
 
 impl SeriesSettings {
@@ -316,6 +328,8 @@ struct SeriesOverrides {
     non_detects: Option<NonDetectPolicy>,
     /// Some(None): `window = "all"`.
     window: Option<Option<crate::window::Window>>,
+    x_name: Option<String>,
+    x_unit: Option<String>,
 }
 
 impl Config {
@@ -477,6 +491,8 @@ impl Config {
             non_detects: d.non_detects.unwrap_or(NonDetectPolicy::Exclude),
             findings: Thresholds::default(),
             window: d.window.flatten(),
+            x_name: d.x_name.clone(),
+            x_unit: d.x_unit.clone(),
         };
         let mut series = Vec::new();
         for (i, entry) in w.array_of_tables(t, "series").into_iter().enumerate() {
@@ -611,6 +627,12 @@ impl Config {
             }
             if let Some(w) = o.window {
                 s.window = w;
+            }
+            if o.x_name.is_some() {
+                s.x_name.clone_from(&o.x_name);
+            }
+            if o.x_unit.is_some() {
+                s.x_unit.clone_from(&o.x_unit);
             }
         }
         s.x_range = range_of(lo, hi);
@@ -1017,6 +1039,8 @@ impl Walker {
             "non_detects",
             "substitute_fraction",
             "window",
+            "x_name",
+            "x_unit",
         ];
         if with_match {
             keys.push("match");
@@ -1104,7 +1128,36 @@ impl Walker {
             non_detects,
             window,
             findings,
+            x_name: self.label(t, at, "x_name", 60, "distance from the source"),
+            x_unit: self.label(t, at, "x_unit", 16, "m"),
         }
+    }
+
+    /// A short label shown in messages and reports: one line of printable
+    /// text, at most `max` characters.
+    fn label(
+        &mut self,
+        t: &Table,
+        at: &str,
+        key: &str,
+        max: usize,
+        example: &str,
+    ) -> Option<String> {
+        let text = self.string(t, at, key)?;
+        let trimmed = text.trim();
+        if trimmed.is_empty()
+            || trimmed.chars().count() > max
+            || trimmed.chars().any(char::is_control)
+        {
+            self.problem(
+                &join(at, key),
+                format!(
+                    "write one line of at most {max} characters without control characters, such as \"{example}\""
+                ),
+            );
+            return None;
+        }
+        Some(trimmed.to_string())
     }
 
     fn feed(&mut self, t: &Table, at: &str) -> Option<Feed> {
@@ -1294,6 +1347,43 @@ mod tests {
         );
         // The secret itself never appears in a message.
         assert!(problems.iter().all(|p| !p.message.contains("hunter2")));
+    }
+
+    #[test]
+    fn x_name_and_unit_come_from_the_defaults_and_the_matching_entries() {
+        let text = r#"
+            [series_defaults]
+            x_unit = "year"
+            [[series]]
+            match = "*-transect/*"
+            x_name = "  distance from the source "
+            x_unit = "m"
+        "#;
+        let c = Config::from_toml(text, Path::new(".")).unwrap();
+        let t = c.series_settings(&SeriesId("SP-transect/lead".into()));
+        assert_eq!(t.x_name.as_deref(), Some("distance from the source"));
+        assert_eq!(t.x_unit.as_deref(), Some("m"));
+        let w = c.series_settings(&SeriesId("MW-1/nitrate".into()));
+        assert_eq!(w.x_name, None);
+        assert_eq!(w.x_unit.as_deref(), Some("year"));
+        assert!(unit_is_year("Year") && unit_is_year("yr") && !unit_is_year("m"));
+    }
+
+    #[test]
+    fn an_x_label_that_would_break_a_line_or_a_layout_is_refused() {
+        let text =
+            "[[series]]\nmatch = \"*\"\nx_unit = \"m\\r\\nBcc: all@example.net\"\nx_name = \"\"\n";
+        let problems = Config::from_toml(text, Path::new(".")).unwrap_err();
+        let keys: Vec<&str> = problems.iter().map(|p| p.key.as_str()).collect();
+        assert_eq!(
+            keys,
+            ["series[0].x_name", "series[0].x_unit"],
+            "{problems:?}"
+        );
+        assert!(problems[1].message.contains("at most 16 characters"));
+        let long = format!("[series_defaults]\nx_name = \"{}\"\n", "d".repeat(61));
+        let problems = Config::from_toml(&long, Path::new(".")).unwrap_err();
+        assert_eq!(problems[0].key, "series_defaults.x_name");
     }
 
     #[test]

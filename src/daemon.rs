@@ -261,6 +261,29 @@ fn record_config(config: &Config, store: &mut Store) -> Result<(), DaemonError> 
     Ok(())
 }
 
+/// Keeps each series' stored x name and unit equal to the configuration's
+/// (at start-up and reload): the report and the HTTP overview read their
+/// axis and slope labels from the store alone.
+fn apply_config_axes(config: &Config, store: &mut Store) -> Result<(), DaemonError> {
+    let tx = store.begin()?;
+    let mut changed = 0usize;
+    for a in tx.series_axes()? {
+        let s = config.series_settings(&crate::records::SeriesId(a.key));
+        if s.x_name != a.name || s.x_unit != a.unit {
+            tx.set_series_axis(a.id, s.x_name.as_deref(), s.x_unit.as_deref())?;
+            changed += 1;
+        }
+    }
+    if changed > 0 {
+        tx.commit()?;
+        info!(
+            series = changed,
+            "x names and units taken from the configuration"
+        );
+    }
+    Ok(())
+}
+
 /// Records and refits the series whose configured analysis window changed
 /// since their last fit (a changed configuration takes effect at start-up).
 fn apply_config_windows(config: &Config, store: &mut Store) -> Result<(), DaemonError> {
@@ -342,6 +365,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
         &format!("started; watching {}", config.inbox.display()),
     )?;
     record_config(config, store)?;
+    apply_config_axes(config, store)?;
     apply_config_windows(config, store)?;
     info!(inbox = %config.inbox.display(), database = %store.path().display(), "watching");
     let mut current = config.clone();
@@ -367,6 +391,7 @@ fn watch(config: &Config, store: &mut Store, stop: &AtomicBool) -> Result<RunTot
             settler = Settler::new(current.settle);
             cache.clear();
             record_config(&current, store)?;
+            apply_config_axes(&current, store)?;
             apply_config_windows(&current, store)?;
             dirty = true;
             info!("configuration reloaded");
@@ -542,6 +567,7 @@ pub fn ingest_paths(
     mut progress: impl FnMut(usize, usize, &Path, &Result<Outcome, PipelineError>),
 ) -> Result<RunTotals, DaemonError> {
     record_config(config, store)?;
+    apply_config_axes(config, store)?;
     apply_config_windows(config, store)?;
     let _checkpoints = store.checkpoint_in_background()?;
     let mut files: Vec<(Candidate, bool)> = Vec::new();

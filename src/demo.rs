@@ -63,6 +63,8 @@ match = "*-transect/*"
 transform = "log-y"
 unit = "mg/kg"
 matrix = "soil"
+x_name = "distance from the kiln stack"
+x_unit = "m"
 x_min = 0
 x_max = 5000
 

@@ -1557,6 +1557,8 @@ fn store_file_behind<'t, 'c: 't>(
                             settings.unit.as_deref(),
                             settings.transform.name(),
                             &settings.non_detects.name(),
+                            settings.x_name.as_deref(),
+                            settings.x_unit.as_deref(),
                         )?,
                     },
                 };

@@ -9,7 +9,7 @@
 use serde::Serialize;
 use serde_json::json;
 
-use crate::config::Config;
+use crate::config::{Config, SeriesSettings};
 use crate::findings::advice::{AdviceInput, advise};
 use crate::findings::causes::{Candidate, CauseInput, XKind, rank_causes};
 use crate::findings::rules::{CutoffSource, Measured, RecordJudgement, TrendChange};
@@ -17,7 +17,7 @@ use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
     RobustSlope, Severity, render_notice, render_notice_heading,
 };
-use crate::records::Record;
+use crate::records::{Record, SeriesId};
 use crate::stats::{LineFit, Transform};
 use crate::store::seal::SealScope;
 use crate::store::{AuditKind, FileId, NewFinding, NewMessage, SeriesRow, StoreError, Tx};
@@ -59,7 +59,8 @@ pub struct RecordCase<'a> {
 }
 
 /// What x measures for a record of `file_name`: decimal years when the
-/// feed takes x from a date column, or when the series' surveyed x range
+/// feed takes x from a date column, when the series' configured `x_unit`
+/// names years, or (no unit configured) when the series' surveyed x range
 /// lies in calendar years; never guessed from the record itself, whose x
 /// may be the typo.
 fn x_kind_of(
@@ -67,11 +68,19 @@ fn x_kind_of(
     file_name: &str,
     transform: Transform,
     span_before: Option<(f64, f64)>,
+    x_unit: Option<&str>,
 ) -> XKind {
     let from_date = matches!(
         config.feed_for(std::path::Path::new(file_name)).1.x,
         crate::records::XSource::Date { .. }
     );
+    if let (false, Some(unit)) = (from_date, x_unit) {
+        return if crate::config::unit_is_year(unit) {
+            XKind::DecimalYear
+        } else {
+            XKind::Distance
+        };
+    }
     let span_in_years = span_before.is_some_and(|(lo, hi)| {
         transform == Transform::None
             && (1800.0..=2200.0).contains(&lo)
@@ -110,7 +119,13 @@ pub fn likely_causes(
         y: record.y.number(),
         x_raw: &x_raw,
         y_raw: &y_raw,
-        x_kind: x_kind_of(config, file_name, transform, span_before),
+        x_kind: x_kind_of(
+            config,
+            file_name,
+            transform,
+            span_before,
+            config.series_settings(&record.series).x_unit.as_deref(),
+        ),
         unit: record.unit.as_deref(),
         others,
         max: 4,
@@ -146,9 +161,19 @@ pub fn record_finding(
         )
     };
 
-    let x_kind = x_kind_of(config, file.1, case.transform, case.span_before);
+    let settings = config.series_settings(&SeriesId(case.series.key.clone()));
+    let x_kind = x_kind_of(
+        config,
+        file.1,
+        case.transform,
+        case.span_before,
+        settings.x_unit.as_deref(),
+    );
     let x_raw = format!("{}", r.x);
     let y_raw = format!("{}", r.y.number());
+    let unit = r.unit.clone().unwrap_or_default();
+    let (x_label, x_unit) = (x_label(x_kind, &settings), x_unit(x_kind, &settings));
+    let scale_note = scale_note(case.transform, &unit, &per_x(&x_label, &x_unit));
     let causes = case.causes;
     let advice = if case
         .judgement
@@ -296,11 +321,9 @@ pub fn record_finding(
             x: x_raw.clone(),
             y: y_raw.clone(),
         }),
-        unit: r.unit.clone().unwrap_or_default(),
-        x_label: match x_kind {
-            XKind::DecimalYear => "year".into(),
-            _ => "x".into(),
-        },
+        unit,
+        x_label,
+        x_unit,
         severity,
         kinds: kinds
             .iter()
@@ -310,7 +333,7 @@ pub fn record_finding(
         fit_with: with.as_ref().map(summary_of),
         fit_without: without.as_ref().map(summary_of),
         ci_level: level,
-        scale_note: scale_note(case.transform),
+        scale_note,
         robust: case.robust.map(|(s, a, b)| RobustSlope {
             slope: s,
             ci: Some((a, b)),
@@ -362,6 +385,13 @@ pub fn plain_finding(
     let kinds = vec![kind.to_string()];
     let severity = severity_of(config, &kinds);
     let transform = series.and_then(|s| Transform::from_name(&s.transform));
+    let settings = series.map(|s| config.series_settings(&SeriesId(s.key.clone())));
+    let x_kind = match (series, file, transform, &settings) {
+        (Some(s), Some(f), Some(t), Some(set)) => {
+            Some(x_kind_of(config, f.1, t, s.x_span, set.x_unit.as_deref()))
+        }
+        _ => None,
+    };
     let id = tx.insert_finding(&NewFinding {
         created_at: at,
         series: series.map(|s| s.id),
@@ -375,6 +405,21 @@ pub fn plain_finding(
         summary,
         detail: &detail.to_string(),
     })?;
+    // A trend's detail names the unit of its series' values.
+    let unit = series
+        .and_then(|s| s.unit.clone())
+        .or_else(|| {
+            detail
+                .get("unit")
+                .and_then(|v| v.as_str())
+                .map(str::to_string)
+        })
+        .unwrap_or_default();
+    let (x_label, x_unit) = match (x_kind, &settings) {
+        (Some(k), Some(set)) => (x_label(k, set), x_unit(k, set)),
+        _ => ("x".to_string(), String::new()),
+    };
+    let scale_note = transform.and_then(|t| scale_note(t, &unit, &per_x(&x_label, &x_unit)));
     let notice = Notice {
         finding_id: id,
         instance: message_domain(tx, config)?,
@@ -387,24 +432,9 @@ pub fn plain_finding(
                 .map_or_else(String::new, |f| format!("feed {f}")),
         },
         record: None,
-        // A trend's detail names the unit of its series' values.
-        unit: series
-            .and_then(|s| s.unit.clone())
-            .or_else(|| {
-                detail
-                    .get("unit")
-                    .and_then(|v| v.as_str())
-                    .map(str::to_string)
-            })
-            .unwrap_or_default(),
-        x_label: match (series, file, transform) {
-            (Some(s), Some(f), Some(t))
-                if x_kind_of(config, f.1, t, s.x_span) == XKind::DecimalYear =>
-            {
-                "year".into()
-            }
-            _ => "x".into(),
-        },
+        unit,
+        x_label,
+        x_unit,
         severity,
         kinds: Vec::new(),
         flags: vec![Flag {
@@ -421,7 +451,7 @@ pub fn plain_finding(
         fit_with: fits.0.map(summary_of),
         fit_without: fits.1.map(summary_of),
         ci_level: config.level,
-        scale_note: transform.and_then(scale_note),
+        scale_note,
         robust: None,
         judged_against: detail
             .get("judged_against")
@@ -506,13 +536,53 @@ pub fn trend_finding(
 
 /// What a message says of its slopes' scale when the series is fitted on
 /// a transformed one.
-fn scale_note(transform: Transform) -> Option<String> {
-    (transform != Transform::None).then(|| {
-        format!(
-            "fitted on the {} scale; slopes are on that scale",
-            transform.name()
-        )
-    })
+/// What a message calls x: "year" for decimal years (the renderer's cue
+/// for "per year"), else the configured `x_name`, else "x".
+fn x_label(kind: XKind, settings: &SeriesSettings) -> String {
+    match (kind, &settings.x_name) {
+        (XKind::DecimalYear, _) => "year".into(),
+        (_, Some(name)) => name.clone(),
+        (_, None) => "x".into(),
+    }
+}
+
+/// x's unit in a message: the configured `x_unit` unless x is years
+/// (which the label already says); empty when not configured.
+fn x_unit(kind: XKind, settings: &SeriesSettings) -> String {
+    match kind {
+        XKind::DecimalYear => String::new(),
+        _ => settings.x_unit.clone().unwrap_or_default(),
+    }
+}
+
+/// What a slope is per: "year", the unit of x, or "unit of x".
+fn per_x(x_label: &str, x_unit: &str) -> String {
+    if x_label == "year" {
+        "year".into()
+    } else if x_unit.is_empty() {
+        "unit of x".into()
+    } else {
+        x_unit.to_string()
+    }
+}
+
+/// The sentence saying what the slopes of a transformed fit are in (None
+/// on the plain scale, where the message states the unit itself).
+fn scale_note(transform: Transform, unit: &str, per: &str) -> Option<String> {
+    let y = if unit.is_empty() { "y" } else { unit };
+    match transform {
+        Transform::None => None,
+        Transform::LogY => Some(format!(
+            "Fitted on the ln(y) scale: slopes are in ln({y}) per {per}; a slope b is a change of 100 × (e^b − 1) % per {per}."
+        )),
+        Transform::LogX => Some(format!(
+            "Fitted on the ln(x) scale: slopes are in {y} per unit of ln x."
+        )),
+        Transform::LogLog => Some(
+            "Fitted on the ln(y)-ln(x) scale: slopes are power-law exponents (ln y per ln x)."
+                .to_string(),
+        ),
+    }
 }
 
 /// The caution every finding carries.
@@ -794,6 +864,26 @@ fn line(t: Transform, f: &LineFit, lo: f64, hi: f64) -> Vec<(f64, f64)> {
 mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
+
+    #[test]
+    fn a_transformed_fit_says_what_its_slopes_are_in() {
+        let note = scale_note(Transform::LogY, "mg/kg", &per_x("distance", "m")).unwrap();
+        assert_eq!(
+            note,
+            "Fitted on the ln(y) scale: slopes are in ln(mg/kg) per m; a slope b is a change of 100 × (e^b − 1) % per m."
+        );
+        assert!(
+            scale_note(Transform::LogY, "", &per_x("year", ""))
+                .unwrap()
+                .contains("ln(y) per year")
+        );
+        assert!(
+            scale_note(Transform::LogX, "µg/L", &per_x("x", ""))
+                .unwrap()
+                .contains("µg/L per unit of ln x")
+        );
+        assert_eq!(scale_note(Transform::None, "mg/L", "year"), None);
+    }
 
     /// The detail text is byte for byte what the same document built as a
     /// `serde_json::Value` writes (keys in byte order, non-finite numbers as

@@ -844,6 +844,99 @@ fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
     );
 }
 
+#[test]
+fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the_report() {
+    // The gentle series laid along a transect instead of in time: 40 m a
+    // year, so x runs 0 to 290 m, and the far record of the test above
+    // sits at 2,000 m with a value of zero. An affine change of x leaves
+    // the signs and p-values of the slopes as they were (R 4.2.2,
+    // summary(lm) of the dated series), so the sign reversal is raised as
+    // before; what changes is what its slopes are in.
+    const TRANSECT: &str = "SP-transect/lead";
+    let along = |rows: &[(f64, f64)], first: usize| -> String {
+        let mut s = String::from("record_id,series,x,y,unit\n");
+        for (i, (x, y)) in rows.iter().enumerate() {
+            let metres = (x - 2010.0) * 40.0;
+            s.push_str(&format!(
+                "T{:03},{TRANSECT},{metres},{y},mg/kg\n",
+                first + i
+            ));
+        }
+        s
+    };
+    let axis = |unit: &str| {
+        format!(
+            "[[series]]\nmatch = \"*-transect/*\"\nx_name = \"distance from the source\"\nx_unit = \"{unit}\"\n"
+        )
+    };
+    let site = Site::new("", &axis("m"));
+    site.deliver("a.csv", &along(&gentle(), 1));
+    assert_eq!(
+        site.findings(),
+        Vec::<Value>::new(),
+        "the baseline is clean"
+    );
+    site.deliver("b.csv", &along(&[(2060.0, 0.0)], 31));
+    let found = site.findings();
+    let body_of = |kind: &str| -> String {
+        let f = found
+            .iter()
+            .find(|f| kinds(f).contains(&kind))
+            .unwrap_or_else(|| panic!("a {kind} finding: {found:#?}"));
+        site.db()
+            .query_row(
+                "SELECT body_text FROM outbox WHERE finding_id = ?1",
+                [f["id"].as_i64().unwrap()],
+                |r| r.get(0),
+            )
+            .unwrap()
+    };
+    let trend = body_of("sign_reversal");
+    assert!(trend.contains("Slopes are in mg/kg per m."), "{trend}");
+    let record = body_of("high_leverage");
+    assert!(
+        record.contains("distance from the source = 2000 m"),
+        "{record}"
+    );
+
+    let report = site.path("report.html");
+    let out = site
+        .command(&["report", "--out", report.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let html = std::fs::read_to_string(&report).unwrap();
+    assert!(html.contains("mg/kg per m"), "the slope unit in the report");
+    assert!(html.contains("Distance from the source (m)"), "the x axis");
+    assert!(!html.contains("per unit of x"));
+
+    // The unit changed in the configuration: the next start (here an
+    // ingest with nothing new) takes it, and the report follows.
+    std::fs::write(
+        site.path("slopewarden.toml"),
+        std::fs::read_to_string(site.path("slopewarden.toml"))
+            .unwrap()
+            .replace("x_unit = \"m\"", "x_unit = \"ft\""),
+    )
+    .unwrap();
+    site.ingest();
+    let out = site
+        .command(&["report", "--out", report.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let html = std::fs::read_to_string(&report).unwrap();
+    assert!(
+        html.contains("mg/kg per ft"),
+        "the changed unit in the report"
+    );
+    assert!(!html.contains("mg/kg per m<"));
+}
+
 // ---------------------------------------------------------------------------
 // 2. Messages as .eml files when no SMTP server is configured.
 

@@ -58,6 +58,7 @@ fn notice(finding_id: i64) -> Notice {
         }),
         unit: "mg/L".into(),
         x_label: "year".into(),
+        x_unit: String::new(),
         severity: Severity::Alert,
         kinds: Vec::new(),
         flags: vec![

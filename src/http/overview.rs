@@ -10,7 +10,7 @@
 use std::fmt::Write as _;
 
 use crate::report::{
-    STYLE, escape_html as html, html_number, level_text, opt_p, series_labels, sig,
+    STYLE, XMeasure, escape_html as html, html_number, level_text, opt_p, series_labels, sig,
 };
 use crate::stats::Transform;
 use crate::store::{MetricsSnapshot, OpenFinding, SeriesGlance};
@@ -112,7 +112,8 @@ fn slope_unit(s: &SeriesGlance) -> String {
         matches!((f.x_min, f.x_max), (Some(lo), Some(hi))
             if (1800.0..=2200.0).contains(&lo) && (1800.0..=2200.0).contains(&hi))
     });
-    series_labels(transform, unit, x_is_year).slope_unit
+    let x = XMeasure::of(s.row.x_name.as_deref(), s.row.x_unit.as_deref(), x_is_year);
+    series_labels(transform, unit, x).slope_unit
 }
 
 fn num(v: Option<f64>) -> String {
@@ -348,6 +349,8 @@ mod tests {
                 latest_fit: Some(id),
                 records,
                 open_findings: open,
+                x_name: None,
+                x_unit: None,
             },
             fit: Some(GlanceFit {
                 version: 2,

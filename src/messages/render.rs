@@ -226,8 +226,11 @@ pub struct Notice {
     pub record: Option<RecordInfo>,
     /// The unit of y, e.g. `mg/L`.
     pub unit: String,
-    /// What x is, e.g. `year` or `distance (m)`.
+    /// What x is, e.g. `year` or `distance from the source`.
     pub x_label: String,
+    /// The unit of x, e.g. `m`; empty when not configured, and for years
+    /// (which `x_label` names).
+    pub x_unit: String,
     /// How urgent the finding is.
     pub severity: Severity,
     /// The kinds the finding was raised for, which the subject names (a
@@ -491,12 +494,35 @@ fn comparison_heading(n: &Notice) -> &'static str {
     }
 }
 
+/// " m" after a value of x when its unit is known; empty otherwise.
+fn x_unit_suffix(n: &Notice) -> String {
+    if n.x_unit.is_empty() {
+        String::new()
+    } else {
+        format!(" {}", inline(&n.x_unit, FIELD_CHARS))
+    }
+}
+
+/// The chart's x-axis title: what x is, with its unit when known.
+fn x_axis_title(n: &Notice) -> String {
+    if n.x_unit.is_empty() {
+        n.x_label.clone()
+    } else {
+        format!("{} ({})", n.x_label, n.x_unit)
+    }
+}
+
 fn slope_unit_sentence(n: &Notice) -> String {
     match &n.scale_note {
         Some(note) => inline(note, SENTENCE_CHARS),
         None if n.x_label == "year" => {
             format!("Slopes are in {} per year.", inline(&n.unit, FIELD_CHARS))
         }
+        None if !n.x_unit.is_empty() => format!(
+            "Slopes are in {} per {}.",
+            inline(&n.unit, FIELD_CHARS),
+            inline(&n.x_unit, FIELD_CHARS)
+        ),
         None => format!(
             "Slopes are in {} per unit of {}.",
             inline(&n.unit, FIELD_CHARS),
@@ -575,6 +601,7 @@ pub fn render_notice(n: &Notice) -> Rendered {
         ("current fit", "compared fit")
     };
     let record_label = n.record.as_ref().map(|r| inline(&r.id, 32));
+    let x_title = x_axis_title(n);
     let (chart, chart_problem) = if n.points.is_empty() {
         (None, None)
     } else {
@@ -582,7 +609,7 @@ pub fn render_notice(n: &Notice) -> Rendered {
             points: &n.points,
             line_with: &n.line_with,
             line_without: &n.line_without,
-            x_label: &n.x_label,
+            x_label: &x_title,
             y_label: &y_label,
             record_label: record_label.as_deref(),
             with_legend,
@@ -644,9 +671,10 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
             );
             putln!(
                 t,
-                "  {} = {}    value = {} {}",
+                "  {} = {}{}    value = {} {}",
                 inline(&n.x_label, FIELD_CHARS),
                 inline(&r.x, FIELD_CHARS),
+                x_unit_suffix(n),
                 inline(&r.y, FIELD_CHARS),
                 inline(&n.unit, FIELD_CHARS)
             );
@@ -783,12 +811,13 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
         Some(r) => {
             putln!(
                 h,
-                "<p>Record <b>{}</b> from <code>{}</code>, line {}: {} = {}, value = {} {}</p>",
+                "<p>Record <b>{}</b> from <code>{}</code>, line {}: {} = {}{}, value = {} {}</p>",
                 e(&r.id, FIELD_CHARS),
                 e(&r.file, FIELD_CHARS),
                 r.line,
                 e(&n.x_label, FIELD_CHARS),
                 e(&r.x, FIELD_CHARS),
+                html(&x_unit_suffix(n)),
                 e(&r.y, FIELD_CHARS),
                 e(&n.unit, FIELD_CHARS)
             );
@@ -1076,6 +1105,7 @@ pub(crate) mod tests {
             }),
             unit: "mg/L".into(),
             x_label: "year".into(),
+            x_unit: String::new(),
             severity: Severity::Warning,
             kinds: Vec::new(),
             flags: vec![

@@ -155,7 +155,15 @@ impl SeriesData {
 
     /// Labels for axes and slopes.
     pub fn labels(&self) -> Labels {
-        labels(self.transform(), self.unit(), self.x_is_year())
+        labels(
+            self.transform(),
+            self.unit(),
+            XMeasure::of(
+                self.row.x_name.as_deref(),
+                self.row.x_unit.as_deref(),
+                self.x_is_year(),
+            ),
+        )
     }
 }
 
@@ -174,23 +182,61 @@ pub struct Labels {
     pub scale: String,
 }
 
-/// Axis and slope labels for a transform, a unit of y and the kind of x.
-pub fn labels(transform: Transform, unit: Option<&str>, x_is_year: bool) -> Labels {
+/// What x is, for labels: decimal years, or a quantity with what it
+/// measures and its unit when the configuration names them (`x_name`,
+/// `x_unit`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum XMeasure<'a> {
+    /// Decimal years.
+    Year,
+    /// Anything else (a distance, a depth), as recorded.
+    Quantity {
+        /// What x measures, such as "distance from the source".
+        name: Option<&'a str>,
+        /// Its unit, such as "m".
+        unit: Option<&'a str>,
+    },
+}
+
+impl<'a> XMeasure<'a> {
+    /// The configured name and unit when there are any (a configured
+    /// "year" unit reads as years), else decimal years when x reads so.
+    pub fn of(name: Option<&'a str>, unit: Option<&'a str>, x_is_year: bool) -> Self {
+        let named = name.is_some() || unit.is_some();
+        let unit_is_year = unit.is_some_and(crate::config::unit_is_year);
+        if unit_is_year || (x_is_year && !named) {
+            XMeasure::Year
+        } else {
+            XMeasure::Quantity { name, unit }
+        }
+    }
+}
+
+/// Axis and slope labels for a transform, a unit of y and what x is.
+pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labels {
     let unit = unit.unwrap_or("unit not stated");
-    let per_x = if x_is_year {
-        "per year"
-    } else {
-        "per unit of x"
-    };
-    let x_plain = if x_is_year {
-        "Year (decimal)".to_string()
-    } else {
-        "x (as recorded)".to_string()
-    };
-    let x_log = if x_is_year {
-        "ln year".to_string()
-    } else {
-        "ln x (x as recorded)".to_string()
+    let (per_x, x_plain, x_log) = match x {
+        XMeasure::Year => (
+            "per year".to_string(),
+            "Year (decimal)".to_string(),
+            "ln year".to_string(),
+        ),
+        XMeasure::Quantity { name, unit: x_unit } => {
+            let per = x_unit.map_or_else(|| "per unit of x".to_string(), |u| format!("per {u}"));
+            let plain = match (name, x_unit) {
+                (Some(n), Some(u)) => format!("{} ({u})", capitalised(n)),
+                (Some(n), None) => capitalised(n),
+                (None, Some(u)) => format!("x ({u})"),
+                (None, None) => "x (as recorded)".to_string(),
+            };
+            let log = match (name, x_unit) {
+                (Some(n), Some(u)) => format!("ln {n} (in {u})"),
+                (Some(n), None) => format!("ln {n}"),
+                (None, Some(u)) => format!("ln x (x in {u})"),
+                (None, None) => "ln x (x as recorded)".to_string(),
+            };
+            (per, plain, log)
+        }
     };
     match transform {
         Transform::None => Labels {
@@ -221,6 +267,15 @@ pub fn labels(transform: Transform, unit: Option<&str>, x_is_year: bool) -> Labe
             y_unit: format!("ln({unit})"),
             scale: "ln y on ln x".into(),
         },
+    }
+}
+
+/// `text` with its first letter in capitals, for an axis title.
+fn capitalised(text: &str) -> String {
+    let mut chars = text.chars();
+    match chars.next() {
+        Some(first) => first.to_uppercase().chain(chars).collect(),
+        None => String::new(),
     }
 }
 
@@ -277,16 +332,49 @@ mod tests {
 
     #[test]
     fn labels_name_the_scale_and_the_unit() {
-        let l = labels(Transform::None, Some("mg/L"), true);
+        let plain = XMeasure::of(None, None, false);
+        let l = labels(
+            Transform::None,
+            Some("mg/L"),
+            XMeasure::of(None, None, true),
+        );
         assert_eq!(l.x_axis, "Year (decimal)");
         assert_eq!(l.y_axis, "Concentration (mg/L)");
         assert_eq!(l.slope_unit, "mg/L per year");
-        let l = labels(Transform::LogY, Some("mg/kg"), false);
+        let l = labels(Transform::LogY, Some("mg/kg"), plain);
         assert_eq!(l.y_axis, "ln concentration (concentration in mg/kg)");
         assert_eq!(l.slope_unit, "ln(mg/kg) per unit of x");
-        let l = labels(Transform::LogLog, None, false);
+        let l = labels(Transform::LogLog, None, plain);
         assert_eq!(l.x_axis, "ln x (x as recorded)");
         assert_eq!(l.y_unit, "ln(unit not stated)");
+    }
+
+    #[test]
+    fn a_configured_x_name_and_unit_label_the_axis_and_the_slope() {
+        let distance = XMeasure::of(Some("distance from the source"), Some("m"), false);
+        let l = labels(Transform::LogY, Some("mg/kg"), distance);
+        assert_eq!(l.x_axis, "Distance from the source (m)");
+        assert_eq!(l.slope_unit, "ln(mg/kg) per m");
+        let l = labels(Transform::None, Some("mg/kg"), distance);
+        assert_eq!(l.slope_unit, "mg/kg per m");
+        let l = labels(Transform::LogX, Some("mg/kg"), distance);
+        assert_eq!(l.x_axis, "ln distance from the source (in m)");
+        // A configured unit wins over the reading of x as years (a transect
+        // 1,800 to 2,200 m long), and a unit alone still labels the axis.
+        let l = labels(
+            Transform::None,
+            Some("mg/kg"),
+            XMeasure::of(None, Some("m"), true),
+        );
+        assert_eq!(l.x_axis, "x (m)");
+        assert_eq!(l.slope_unit, "mg/kg per m");
+        // "year" configured reads as years.
+        let l = labels(
+            Transform::None,
+            Some("mg/L"),
+            XMeasure::of(None, Some("year"), false),
+        );
+        assert_eq!(l.slope_unit, "mg/L per year");
     }
 
     #[test]

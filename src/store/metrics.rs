@@ -218,7 +218,8 @@ impl Store {
                         (SELECT COUNT(*) FROM findings g WHERE g.status = 'open' AND g.series_id = s.id),
                         (SELECT r.unit FROM records r WHERE r.id = s.latest_record),
                         f.version, f.created_at, f.n, f.level, f.slope, f.slope_ci_low,
-                        f.slope_ci_high, f.slope_p, f.x_min, f.x_max, f.transform
+                        f.slope_ci_high, f.slope_p, f.x_min, f.x_max, f.transform,
+                        s.x_name, s.x_unit
                  FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
                  ORDER BY s.key",
             )
@@ -252,6 +253,8 @@ impl Store {
                         latest_fit: r.get(5)?,
                         records: r.get(6)?,
                         open_findings: r.get(7)?,
+                        x_name: r.get(20)?,
+                        x_unit: r.get(21)?,
                     },
                     fit,
                 })

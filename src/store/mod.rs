@@ -55,7 +55,7 @@ pub use metrics::{GlanceFit, MetricsSnapshot, OpenFinding, SeriesGlance};
 pub use report::{
     ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,
 };
-pub use verdicts::{NewVerdict, RecordState, ReviewTarget, VerdictRow};
+pub use verdicts::{NewVerdict, RecordState, ReviewTarget, SeriesAxis, VerdictRow};
 
 /// Columns of a record row, in the order [`record_columns`] gives them.
 ///
@@ -716,6 +716,10 @@ const MIGRATIONS: &[(&str, &str)] = &[
     (
         "0004_log_screen",
         include_str!("../../migrations/0004_log_screen.sql"),
+    ),
+    (
+        "0005_x_axis",
+        include_str!("../../migrations/0005_x_axis.sql"),
     ),
 ];
 
@@ -1612,12 +1616,15 @@ impl Tx<'_> {
         unit: Option<&str>,
         transform: &str,
         non_detects: &str,
+        x_name: Option<&str>,
+        x_unit: Option<&str>,
     ) -> Result<SeriesRow> {
         self.tx
             .prepare_cached(
-                "INSERT INTO series (key, unit, transform, non_detects) VALUES (?1, ?2, ?3, ?4)",
+                "INSERT INTO series (key, unit, transform, non_detects, x_name, x_unit) \
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
             )
-            .and_then(|mut s| s.execute(params![key, unit, transform, non_detects]))
+            .and_then(|mut s| s.execute(params![key, unit, transform, non_detects, x_name, x_unit]))
             .map_err(self.wrap())?;
         Ok(SeriesRow {
             id: SeriesRowId(self.tx.last_insert_rowid()),
@@ -2406,7 +2413,7 @@ mod tests {
         tx.insert_bad_row(file, &bad_row(2, None, "kein Wert — leer"))
             .unwrap();
         let mut row = tx
-            .create_series("MW-Ü/nitrate", Some("µg/L"), "log", "exclude")
+            .create_series("MW-Ü/nitrate", Some("µg/L"), "log", "exclude", None, None)
             .unwrap();
         let mut state = SeriesState::new();
         let mut arrivals = Vec::new();
@@ -2562,7 +2569,9 @@ mod tests {
         let tx = store.begin().unwrap();
         let a = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
         let b = tx.insert_file(&new_file("b.csv", "bb")).unwrap();
-        let row = tx.create_series("S", None, "none", "exclude").unwrap();
+        let row = tx
+            .create_series("S", None, "none", "exclude", None, None)
+            .unwrap();
         let records: Vec<Record> = (0..5)
             .map(|i| record(&format!("X{i}"), f64::from(i), Measure::Detected(1.0), 1))
             .collect();
@@ -2612,7 +2621,9 @@ mod tests {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
         let file = tx.insert_file(&new_file("big.csv", "bb")).unwrap();
-        let row = tx.create_series("S", None, "none", "exclude").unwrap();
+        let row = tx
+            .create_series("S", None, "none", "exclude", None, None)
+            .unwrap();
         // Several times the test budget of encoded rows.
         let records: Vec<Record> = (0..2_000)
             .map(|i| record(&format!("B{i:05}"), f64::from(i), Measure::Detected(2.5), 1))
@@ -2668,7 +2679,7 @@ mod tests {
         }
         let tx = store.begin().unwrap();
         let mut row = tx
-            .create_series("MW-1/nitrate", Some("mg/L"), "none", "exclude")
+            .create_series("MW-1/nitrate", Some("mg/L"), "none", "exclude", None, None)
             .unwrap();
         row.moments = m;
         row.fit_version = 3;

@@ -28,6 +28,10 @@ pub struct ReportSeriesRow {
     pub records: i64,
     /// Open findings.
     pub open_findings: i64,
+    /// What x measures, as configured (`x_name`).
+    pub x_name: Option<String>,
+    /// x's unit, as configured (`x_unit`).
+    pub x_unit: Option<String>,
 }
 
 /// One fit version, with what triggered it.
@@ -244,7 +248,8 @@ impl Store {
             .prepare(
                 "SELECT s.id, s.key, s.unit, s.transform, s.non_detects, s.latest_fit,
                         COALESCE(f.records, 0),
-                        (SELECT COUNT(*) FROM findings g WHERE g.series_id = s.id AND g.status = 'open')
+                        (SELECT COUNT(*) FROM findings g WHERE g.series_id = s.id AND g.status = 'open'),
+                        s.x_name, s.x_unit
                  FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
                  ORDER BY s.key",
             )
@@ -261,6 +266,8 @@ impl Store {
                     latest_fit: r.get(5)?,
                     records: r.get(6)?,
                     open_findings: r.get(7)?,
+                    x_name: r.get(8)?,
+                    x_unit: r.get(9)?,
                 })
             })
             .map_err(self.wrap())?

@@ -71,6 +71,20 @@ pub struct VerdictRow {
     pub at: String,
 }
 
+/// What a series' x measures and its unit, as stored (`series.x_name`,
+/// `series.x_unit`; None: not configured).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SeriesAxis {
+    /// The series row.
+    pub id: super::SeriesRowId,
+    /// The series key.
+    pub key: String,
+    /// What x measures, such as "distance from the source".
+    pub name: Option<String>,
+    /// x's unit, such as "m".
+    pub unit: Option<String>,
+}
+
 /// A verdict about to be stored.
 #[derive(Debug, Clone, PartialEq)]
 pub struct NewVerdict<'a> {
@@ -378,6 +392,40 @@ impl Tx<'_> {
             .map_err(self.wrap())?;
         let rows = stmt.query_map([], |r| r.get(0)).map_err(self.wrap())?;
         rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
+    /// Every series' row id and key with its stored x name and unit, in
+    /// order.
+    pub fn series_axes(&self) -> Result<Vec<SeriesAxis>> {
+        let mut stmt = self
+            .tx
+            .prepare_cached("SELECT id, key, x_name, x_unit FROM series ORDER BY id")
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([], |r| {
+                Ok(SeriesAxis {
+                    id: super::SeriesRowId(r.get(0)?),
+                    key: r.get(1)?,
+                    name: r.get(2)?,
+                    unit: r.get(3)?,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
+    /// Stores what a series' x measures and its unit.
+    pub fn set_series_axis(
+        &self,
+        id: super::SeriesRowId,
+        name: Option<&str>,
+        unit: Option<&str>,
+    ) -> Result<()> {
+        self.tx
+            .prepare_cached("UPDATE series SET x_name = ?2, x_unit = ?3 WHERE id = ?1")
+            .and_then(|mut s| s.execute(params![id.0, name, unit]))
+            .map_err(self.wrap())?;
+        Ok(())
     }
 
     /// A series' row by key (for a verdict, outside the ingest cache).

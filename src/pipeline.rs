@@ -1173,6 +1173,38 @@ struct Touched {
     head_before: Option<i64>,
     /// The fits without the records left out of judging.
     judging: Option<JudgingBase>,
+    /// The low end of the judging fit's x range, when known.
+    judged_low: Option<JudgedLow>,
+}
+
+/// The smallest x among a series' fit points other than its suspects
+/// `awaiting[start..]` (those left out of the judging fit), kept from
+/// record to record.
+#[derive(Debug, Clone, Copy)]
+struct JudgedLow {
+    start: usize,
+    low: f64,
+}
+
+/// The smallest x of `points` (stored before the file) and `new` (the
+/// file's so far) once each of `left_out` is taken away (as a multiset:
+/// a suspect repeated is left out as often as it is listed).
+fn low_without(points: &[(f64, f64)], new: &[(f64, f64)], left_out: &[(f64, f64)]) -> f64 {
+    let mut skip: HashMap<(u64, u64), usize> = HashMap::default();
+    for p in left_out {
+        *skip.entry((p.0.to_bits(), p.1.to_bits())).or_default() += 1;
+    }
+    let mut low = f64::INFINITY;
+    for p in points.iter().chain(new) {
+        if let Some(c) = skip.get_mut(&(p.0.to_bits(), p.1.to_bits()))
+            && *c > 0
+        {
+            *c -= 1;
+            continue;
+        }
+        low = low.min(p.0);
+    }
+    low
 }
 
 /// A series' fits (both scales) without the suspects awaiting review from
@@ -1635,6 +1667,7 @@ fn store_file_behind<'t, 'c: 't>(
                         window_points,
                         head_before,
                         judging: None,
+                        judged_low: None,
                     },
                 );
                 order.push(key.to_string());
@@ -1777,7 +1810,51 @@ fn store_file_behind<'t, 'c: 't>(
                         }
                         None => None,
                     };
-                    let mut judgement = match (judged, t.row.x_span) {
+                    // The low end of the range judged against leaves out the
+                    // suspects too: a date typed ten years early sets it
+                    // otherwise, and the next such typo then looks like the
+                    // usual spacing. The high end keeps every point: a time
+                    // series grows there, and with a suspect at its newest
+                    // end left out, each record after it would look far out
+                    // in turn.
+                    let judged_span = match t.row.x_span {
+                        Some((lo, hi)) if left_out.iter().any(|q| q.0 <= lo) => {
+                            let low = match t.judged_low {
+                                Some(m) if m.start == start => m.low,
+                                Some(m) if m.start < start => {
+                                    // Older suspects are back in the judging fit.
+                                    let back = &t.awaiting[m.start..start];
+                                    back.iter().fold(m.low, |l, q| l.min(q.0))
+                                }
+                                _ => {
+                                    let stored = match cache.points.get(key) {
+                                        Some(p) => Arc::clone(p),
+                                        None => {
+                                            let p: Vec<(f64, f64)> = b
+                                                .tx()?
+                                                .fit_points_with_rows(t.head_before)?
+                                                .into_iter()
+                                                .map(|(_, x, y)| (x, y))
+                                                .collect();
+                                            let p = Arc::new(p);
+                                            if t.window.is_none() {
+                                                cache
+                                                    .points
+                                                    .insert(key.to_string(), Arc::clone(&p));
+                                            }
+                                            p
+                                        }
+                                    };
+                                    low_without(&stored, &t.new_points, left_out)
+                                }
+                            };
+                            t.judged_low = Some(JudgedLow { start, low });
+                            Some((if low.is_finite() { low.max(lo) } else { lo }, hi))
+                        }
+                        other => other,
+                    };
+                    let awaiting_before = t.awaiting.len();
+                    let mut judgement = match (judged, judged_span) {
                         (Some(judged), Some((lo, hi))) => judge_record_with(
                             &judged,
                             Span { min: lo, max: hi },
@@ -1840,6 +1917,13 @@ fn store_file_behind<'t, 'c: 't>(
                         None => (p.0, p.0),
                     });
                     t.state = probe;
+                    // So does the low end of its range (a new suspect is among
+                    // those left out, and changes nothing there).
+                    if let Some(m) = t.judged_low.as_mut()
+                        && t.awaiting.len() == awaiting_before
+                    {
+                        m.low = m.low.min(p.0);
+                    }
                     // The judging base takes the point too, unless it became a
                     // suspect (then the base is rebuilt for the next record).
                     match t.judging.as_mut() {

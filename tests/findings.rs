@@ -608,6 +608,48 @@ fn a_record_a_decade_beyond_the_range_on_the_line_has_high_leverage_and_nothing_
 }
 
 #[test]
+fn a_second_date_typed_years_early_is_judged_against_the_range_without_the_first() {
+    // The flat series, then two records whose dates were typed ten years
+    // early (2016.00 and 2016.25 as 2006.00 and 2006.25), their values
+    // ordinary. The first is far below the range and has high leverage.
+    // While it awaits review it is left out of the fit the second is
+    // judged against, and so is the low end of the range it set: judged
+    // from 2010.00, where the series starts, the second is as far out as
+    // the first was. (Judged from 2006.00 it looked like the next step
+    // down and raised nothing.)
+    let site = Site::new("", "");
+    site.deliver("a.csv", &csv(1, &flat()));
+    site.deliver("b.csv", &csv(25, &[(2006.0, 5.0)]));
+    let first = site.findings();
+    let f = one_record(&first);
+    assert_eq!(record_ids(f), ["Q025"]);
+    assert_eq!(kinds(f), ["high_leverage"]);
+    assert_eq!(f["status"], "open");
+
+    site.deliver("c.csv", &csv(26, &[(2006.25, 5.05)]));
+    let found = site.findings();
+    let f = finding_about(&found, "Q026");
+    assert_eq!(kinds(f), ["high_leverage"]);
+    // statsmodels 0.13.5 (Debian), OLSInfluence(OLS(y, [1, x])).hat_matrix_diag
+    // over the flat series and this record alone: 0.39478993070777335; a
+    // record one step before the series' start (2009.75) would have had
+    // 0.15076923076919968, which the rule doubles (a project default).
+    let lev = measure(f, "leverage");
+    assert!(
+        close(lev["value"].as_f64().unwrap(), 0.394_789_930_707_773_35),
+        "{lev}"
+    );
+    assert!(
+        close(
+            f["detail"]["expected_leverage"].as_f64().unwrap(),
+            0.150_769_230_769_199_68
+        ),
+        "{f}"
+    );
+    assert!(lev["crossed"].as_bool().unwrap());
+}
+
+#[test]
 fn a_record_far_in_x_and_off_the_line_is_influential_without_being_an_outlier() {
     // Ten years beyond the range and 0.8 below the trend. R 4.2.2 on the
     // same points: its prediction t against the fit before it is -2.69

@@ -941,17 +941,20 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
         "{record}"
     );
 
-    let report = site.path("report.html");
-    let out = site
-        .command(&["report", "--out", report.to_str().unwrap()])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let html = std::fs::read_to_string(&report).unwrap();
+    let report_html = || -> String {
+        let report = site.path("report.html");
+        let out = site
+            .command(&["report", "--out", report.to_str().unwrap()])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        std::fs::read_to_string(&report).unwrap()
+    };
+    let html = report_html();
     assert!(html.contains("mg/kg per m"), "the slope unit in the report");
     assert!(html.contains("Distance from the source (m)"), "the x axis");
     assert!(!html.contains("per unit of x"));
@@ -966,12 +969,7 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
     )
     .unwrap();
     site.ingest();
-    let out = site
-        .command(&["report", "--out", report.to_str().unwrap()])
-        .output()
-        .unwrap();
-    assert!(out.status.success());
-    let html = std::fs::read_to_string(&report).unwrap();
+    let html = report_html();
     assert!(
         html.contains("mg/kg per ft"),
         "the changed unit in the report"

@@ -232,6 +232,11 @@ pub fn record_finding(
             line: r.line,
             unit: r.unit.as_deref(),
             x: r.x,
+            x_name: settings
+                .x_name
+                .as_deref()
+                .filter(|_| x_kind != XKind::DecimalYear),
+            x_unit: (!x_unit.is_empty()).then_some(x_unit.as_str()),
             y: r.y.number(),
         },
         robust: case
@@ -534,8 +539,6 @@ pub fn trend_finding(
     )
 }
 
-/// What a message says of its slopes' scale when the series is fitted on
-/// a transformed one.
 /// What a message calls x: "year" for decimal years (the renderer's cue
 /// for "per year"), else the configured `x_name`, else "x".
 fn x_label(kind: XKind, settings: &SeriesSettings) -> String {
@@ -815,6 +818,11 @@ struct RecordFacts<'a> {
     line: u64,
     unit: Option<&'a str>,
     x: f64,
+    /// What x measures and its unit, when configured (and x is not years).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    x_name: Option<&'a str>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    x_unit: Option<&'a str>,
     y: f64,
 }
 
@@ -930,6 +938,8 @@ mod tests {
                 line: 634,
                 unit: None,
                 x: 10.6,
+                x_name: Some("distance"),
+                x_unit: Some("m"),
                 y: 203.0,
             },
             robust: Some(RobustDetail {
@@ -943,7 +953,8 @@ mod tests {
         .unwrap();
         let value = json!({
             "record": {"id": "R1", "x": 10.6, "y": 203.0, "censored": true,
-                       "unit": None::<&str>, "file": "ü \"x\".csv", "line": 634},
+                       "unit": None::<&str>, "file": "ü \"x\".csv", "line": 634,
+                       "x_name": "distance", "x_unit": "m"},
             "judged_against": "the fit of the series before this record",
             "measures": [{"kind": "influential", "measure": "Cook's distance",
                 "value": 0.3327495477634257, "cutoff": 0.6979259801646126, "crossed": false,

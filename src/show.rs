@@ -65,11 +65,15 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
     if r.is_object() {
         let _ = writeln!(
             o,
-            "\nrecord {}  ({} line {})\n  x = {}  y = {} {}{}",
+            "\nrecord {}  ({} line {})\n  {} = {}{}  y = {} {}{}",
             r["id"].as_str().unwrap_or("?"),
             r["file"].as_str().unwrap_or("?"),
             r["line"],
+            r["x_name"].as_str().unwrap_or("x"),
             num(&r["x"]),
+            r["x_unit"]
+                .as_str()
+                .map_or(String::new(), |u| format!(" {u}")),
             num(&r["y"]),
             r["unit"].as_str().unwrap_or(""),
             if r["censored"].as_bool() == Some(true) {
@@ -258,6 +262,7 @@ mod tests {
         let open = describe_finding(&row("open", d.clone()), &[]);
         for want in [
             "record Q-17  (march.csv line 12)",
+            "x = 2025.5  y = 41 mg/L",
             "! prediction t",
             "with     slope 0.5 [0.1, 0.9]",
             "without  slope 0.1",

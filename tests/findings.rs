@@ -940,6 +940,20 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
         record.contains("distance from the source = 2000 m"),
         "{record}"
     );
+    // `show` reads the same from the finding's stored detail.
+    let leverage = found
+        .iter()
+        .find(|f| kinds(f).contains(&"high_leverage"))
+        .unwrap();
+    let shown = site
+        .command(&["show", &leverage["id"].to_string()])
+        .output()
+        .unwrap();
+    let shown = String::from_utf8_lossy(&shown.stdout);
+    assert!(
+        shown.contains("distance from the source = 2000 m  y = 0 mg/kg"),
+        "{shown}"
+    );
 
     let report_html = || -> String {
         let report = site.path("report.html");

@@ -971,6 +971,10 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
     let html = report_html();
     assert!(html.contains("mg/kg per m"), "the slope unit in the report");
     assert!(html.contains("Distance from the source (m)"), "the x axis");
+    assert!(
+        html.contains("T031 (version 1): distance from the source = 2000 m, y = 0 mg/kg"),
+        "a point's tip"
+    );
     assert!(!html.contains("per unit of x"));
 
     // The unit changed in the configuration: the next start (here an

@@ -487,6 +487,13 @@ fn scatter_figure(
     let transform = s.transform();
     let fit = s.current_fit();
     let unit = s.unit().unwrap_or("unit not stated");
+    // What x is called in a point's tip: its configured name and unit.
+    let x_name = s.row.x_name.as_deref().unwrap_or("x");
+    let x_unit = s
+        .row
+        .x_unit
+        .as_deref()
+        .map_or(String::new(), |u| format!(" {u}"));
     let mut unplottable = 0usize;
     let points: Vec<PlotPoint> = s
         .records
@@ -498,7 +505,7 @@ fn scatter_figure(
             };
             let flag = flags.get(&r.row).cloned();
             let tip = format!(
-                "{} (version {}): x = {}, y = {}{} {}; {}{}{}{}",
+                "{} (version {}): {x_name} = {}{x_unit}, y = {}{} {}; {}{}{}{}",
                 r.record_id,
                 r.version,
                 trimmed(r.x, 6),

@@ -114,6 +114,8 @@ pub struct SeriesCache {
     points: HashMap<String, Arc<Vec<(f64, f64)>>>,
     /// Points of records awaiting review, per series.
     awaiting: HashMap<String, Vec<(f64, f64)>>,
+    /// The low end of each series' judging fit, kept with `awaiting`.
+    judged_low: HashMap<String, JudgedLow>,
     /// Critical values of the finding rules.
     cutoffs: CutoffCache,
     /// The last robust slope and interval computed per series.
@@ -140,6 +142,7 @@ impl SeriesCache {
         self.rows.clear();
         self.points.clear();
         self.awaiting.clear();
+        self.judged_low.clear();
         self.robust.clear();
         self.log.clear();
         self.windows.clear();
@@ -1179,7 +1182,7 @@ struct Touched {
 
 /// The smallest x among a series' fit points other than its suspects
 /// `awaiting[start..]` (those left out of the judging fit), kept from
-/// record to record.
+/// record to record and from file to file.
 #[derive(Debug, Clone, Copy)]
 struct JudgedLow {
     start: usize,
@@ -1614,9 +1617,11 @@ fn store_file_behind<'t, 'c: 't>(
                     Some((_, w)) => w.select(&b.tx()?.fit_points(&row)?, |p| p.0).into(),
                     None => std::collections::VecDeque::new(),
                 };
-                let awaiting = match cache.awaiting.remove(key) {
-                    Some(a) => a,
-                    None => b.tx()?.awaiting_review(row.id)?,
+                // The low end of the judging fit is kept with the list of
+                // suspects it leaves out, and only with it.
+                let (awaiting, judged_low) = match cache.awaiting.remove(key) {
+                    Some(a) => (a, cache.judged_low.remove(key)),
+                    None => (b.tx()?.awaiting_review(row.id)?, None),
                 };
                 let log = match cache.log.remove(key) {
                     // The ln(y) screen follows all points; a windowed fit goes
@@ -1667,7 +1672,7 @@ fn store_file_behind<'t, 'c: 't>(
                         window_points,
                         head_before,
                         judging: None,
-                        judged_low: None,
+                        judged_low,
                     },
                 );
                 order.push(key.to_string());
@@ -2235,6 +2240,9 @@ fn store_file_behind<'t, 'c: 't>(
     // the caller clears the cache.
     for (key, t) in touched {
         cache.awaiting.insert(key.clone(), t.awaiting);
+        if let Some(m) = t.judged_low {
+            cache.judged_low.insert(key.clone(), m);
+        }
         cache.log.insert(key.clone(), t.log);
         cache.rows.insert(key, t.row);
     }

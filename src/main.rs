@@ -768,14 +768,18 @@ mod commands {
                 interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
                 r.open_findings,
-                r.min_detectable_relative_error
-                    .map_or("-".into(), |e| format!("±{:.0}%", 100.0 * e)),
+                r.min_detectable_relative_error.map_or("-".into(), |e| {
+                    slopewarden::findings::rules::detectable_text(
+                        e,
+                        matches!(r.transform.as_str(), "log-y" | "log-log"),
+                    )
+                }),
                 r.last_arrival.unwrap_or_default(),
                 r.non_detects
             );
         }
         println!(
-            "(ND: non-detects stored; n: points in the fit; p is '-' with no scatter or fewer than 3 points)"
+            "(ND: non-detects stored; n: points in the fit; p is '-' with no scatter or fewer than 3 points;\n catches: the smallest error in y the outlier test flags at the current scatter, a share of the level,\n or on a ln(y) scale a factor too high or too low)"
         );
         ExitCode::SUCCESS
     }

@@ -114,6 +114,20 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
         "{}",
         first_cause(filed)
     );
+    // `status` says what error each series would catch: a share of the
+    // level for a well fitted as it is, a factor for a transect fitted on
+    // the ln(y) scale (a share above 100 % would read as impossible below).
+    let status = run(&["status"]);
+    let line_of = |key: &str| -> &str {
+        status
+            .lines()
+            .find(|l| l.starts_with(key))
+            .unwrap_or_else(|| panic!("{key} in {status}"))
+    };
+    assert!(line_of("AB-MW1/nitrate ").contains(" ±"), "{status}");
+    assert!(line_of("ABN-transect/lead ").contains(" ×/÷"), "{status}");
+    assert!(!line_of("ABN-transect/lead ").contains('±'), "{status}");
+
     // The correct extreme beside the kiln wall and the non-detect raise nothing.
     assert!(about("ABN-transect-LE01").is_none());
     assert!(about("ABS-transect-PB40").is_none());

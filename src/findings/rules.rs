@@ -574,11 +574,38 @@ pub fn smallest_detectable_error(
     }
 }
 
+/// [`smallest_detectable_error`] for people: "±14%" on the original
+/// scale; on a ln(y) scale, where the error is a factor and a value can be
+/// too high or too low by it, "×/÷3.2" (a value 3.2 times too high or too
+/// low would be caught).
+pub fn detectable_text(error: f64, log_y: bool) -> String {
+    if !log_y {
+        return format!("±{:.0}%", 100.0 * error);
+    }
+    let factor = 1.0 + error;
+    if factor >= 1000.0 {
+        "×/÷>999".to_string()
+    } else if factor >= 10.0 {
+        format!("×/÷{factor:.0}")
+    } else {
+        format!("×/÷{factor:.1}")
+    }
+}
+
 #[cfg(test)]
 mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
     use crate::stats::{SeriesState, fit_line};
+
+    #[test]
+    fn the_detectable_error_reads_as_a_share_or_as_a_factor() {
+        assert_eq!(detectable_text(0.1412, false), "±14%");
+        // exp(2.42) − 1 = 10.2: eleven times too high or too low.
+        assert_eq!(detectable_text(2.42f64.exp_m1(), true), "×/÷11");
+        assert_eq!(detectable_text(0.35, true), "×/÷1.4");
+        assert_eq!(detectable_text(5000.0, true), "×/÷>999");
+    }
 
     /// ℓ(0) − ℓ(1) of the Box-Cox profile likelihood against R 4.2.2's
     /// MASS 7.3-58.2 (Debian bookworm r-cran-mass),

@@ -42,6 +42,10 @@ pub struct FitReport {
     pub raw_y: Vec<f64>,
     /// File line of each point.
     pub lines: Vec<u64>,
+    /// Record ids naming the points instead of file lines, for a series
+    /// read from the store (`slopewarden diagnostics`), whose x and y are
+    /// on the series' fitted scale rather than as written in a file.
+    pub record_ids: Option<Vec<String>>,
     /// The least-squares fit.
     pub fit: LineFit,
     /// Diagnostics of every point, in file order.
@@ -142,6 +146,7 @@ pub fn analyse(
         raw_x,
         raw_y,
         lines,
+        record_ids: None,
         fit,
         points,
     })
@@ -453,14 +458,44 @@ impl FitReport {
                 String::new()
             }
         )?;
+        // A record id can be longer than a line number: the column is as
+        // wide as the longest shown.
+        let name_of = |i: usize| match &self.record_ids {
+            Some(ids) => ids.get(i).cloned().unwrap_or_default(),
+            None => self.lines.get(i).copied().unwrap_or(0).to_string(),
+        };
+        let width = flagged
+            .iter()
+            .take(TEXT_TABLE_ROWS)
+            .map(|(i, _)| name_of(*i).chars().count())
+            .max()
+            .unwrap_or(0)
+            .max(7);
         writeln!(
             out,
-            "  {:>7} {:>12} {:>12} {:>8} {:>8} {:>8} {:>8} {:>8} {:>12}  crosses",
-            "line", "x", "y", "h", "t", "D", "DFFITS", "DFB(b)", "slope w/o"
+            "  {:>width$} {:>12} {:>12} {:>8} {:>8} {:>8} {:>8} {:>8} {:>12}  crosses",
+            if self.record_ids.is_some() {
+                "record"
+            } else {
+                "line"
+            },
+            "x",
+            "y",
+            "h",
+            "t",
+            "D",
+            "DFFITS",
+            "DFB(b)",
+            "slope w/o"
         )?;
         writeln!(
             out,
-            "  (x and y as written in the file; h leverage, t studentized residual, D Cook's distance, DFB(b) DFBETAS of the slope, slope w/o the slope refitted without that point)"
+            "  ({}; h leverage, t studentized residual, D Cook's distance, DFB(b) DFBETAS of the slope, slope w/o the slope refitted without that point)",
+            if self.record_ids.is_some() {
+                "x and y on the series' fitted scale"
+            } else {
+                "x and y as written in the file"
+            }
         )?;
         for (i, crossings) in flagged.iter().take(TEXT_TABLE_ROWS) {
             let p = &self.points[*i];
@@ -471,8 +506,8 @@ impl FitReport {
             let labels: Vec<&str> = crossings.iter().map(|c| c.label()).collect();
             writeln!(
                 out,
-                "  {:>7} {:>12} {:>12} {:>8} {:>8} {:>8} {:>8} {:>8} {:>12}  {}",
-                self.lines.get(*i).copied().unwrap_or(0),
+                "  {:>width$} {:>12} {:>12} {:>8} {:>8} {:>8} {:>8} {:>8} {:>12}  {}",
+                name_of(*i),
                 num(self.raw_x[*i]),
                 num(self.raw_y[*i]),
                 cell(p.leverage()),

@@ -813,7 +813,10 @@ mod commands {
             row.non_detects
         );
         let report = match analyse(&source, "x", "y", columns, Transform::None, config.level) {
-            Ok(r) => r,
+            Ok(r) => slopewarden::fitreport::FitReport {
+                record_ids: Some(points.iter().map(|p| p.record_id.clone()).collect()),
+                ..r
+            },
             Err(e) => {
                 eprintln!("slopewarden: {e}");
                 return ExitCode::from(EXIT_BAD_INPUT);

@@ -128,6 +128,20 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
     assert!(line_of("ABN-transect/lead ").contains(" ×/÷"), "{status}");
     assert!(!line_of("ABN-transect/lead ").contains('±'), "{status}");
 
+    // `diagnostics` names a stored series' points by record id, on the
+    // fitted scale (not by file line, as `fit` does for a file).
+    let diagnostics = run(&["diagnostics", "ABN-transect/lead"]);
+    assert!(
+        diagnostics.contains("x and y on the series' fitted scale"),
+        "{diagnostics}"
+    );
+    assert!(
+        diagnostics
+            .lines()
+            .any(|l| l.trim_start().starts_with("ABN-transect-PB99 ")),
+        "{diagnostics}"
+    );
+
     // The correct extreme beside the kiln wall and the non-detect raise nothing.
     assert!(about("ABN-transect-LE01").is_none());
     assert!(about("ABS-transect-PB40").is_none());

@@ -170,6 +170,59 @@ fn ranges(spec: &ChartSpec<'_>) -> Option<((f64, f64), (f64, f64))> {
     Some((pad(x0, x1), pad(y0, y1)))
 }
 
+/// The corner of the plot whose legend-sized area covers the fewest
+/// points and line vertices (the upper left on a tie): a falling transect
+/// has its highest values in the upper left, a rising series in the upper
+/// right, and a legend there would hide them.
+fn legend_corner(
+    spec: &ChartSpec<'_>,
+    x_range: (f64, f64),
+    y_range: (f64, f64),
+) -> SeriesLabelPosition {
+    // About the legend's share of the plot: four rows of text, 170 px of
+    // a 640 px wide area.
+    const WIDTH: f64 = 0.32;
+    const HEIGHT: f64 = 0.30;
+    let (xs, ys) = (x_range.1 - x_range.0, y_range.1 - y_range.0);
+    let at = |(x, y): (f64, f64)| ((x - x_range.0) / xs, (y - y_range.0) / ys);
+    let marks: Vec<(f64, f64)> = spec
+        .points
+        .iter()
+        .map(|p| (p.x, p.y))
+        .chain(spec.line_with.iter().copied())
+        .chain(spec.line_without.iter().copied())
+        .filter(|(x, y)| x.is_finite() && y.is_finite())
+        .map(at)
+        .collect();
+    // Points count for more than line vertices: hiding a record is worse.
+    let weight = |i: usize| if i < spec.points.len() { 4 } else { 1 };
+    let covered = |left: bool, upper: bool| -> usize {
+        marks
+            .iter()
+            .enumerate()
+            .filter(|(_, (u, v))| {
+                let in_x = if left { *u <= WIDTH } else { *u >= 1.0 - WIDTH };
+                let in_y = if upper {
+                    *v >= 1.0 - HEIGHT
+                } else {
+                    *v <= HEIGHT
+                };
+                in_x && in_y
+            })
+            .map(|(i, _)| weight(i))
+            .sum()
+    };
+    [
+        (SeriesLabelPosition::UpperLeft, covered(true, true)),
+        (SeriesLabelPosition::UpperRight, covered(false, true)),
+        (SeriesLabelPosition::LowerLeft, covered(true, false)),
+        (SeriesLabelPosition::LowerRight, covered(false, false)),
+    ]
+    .into_iter()
+    .min_by_key(|(_, c)| *c)
+    .map_or(SeriesLabelPosition::UpperLeft, |(p, _)| p)
+}
+
 fn pad(lo: f64, hi: f64) -> (f64, f64) {
     let span = hi - lo;
     if span > 0.0 && span.is_finite() {
@@ -346,7 +399,7 @@ fn draw_into(
 
     chart
         .configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
+        .position(legend_corner(spec, x_range, y_range))
         .label_font((FONT, 12).into_font())
         .background_style(WHITE.mix(0.85))
         .border_style(RGBColor(160, 160, 160))
@@ -435,6 +488,32 @@ mod tests {
             count_colour(&rgb, RECORD_COLOUR) > 60,
             "record ring missing"
         );
+    }
+
+    #[test]
+    fn the_legend_goes_where_it_hides_the_fewest_records() {
+        let spec = |pts: &[ChartPoint]| {
+            let spec = ChartSpec {
+                points: pts,
+                line_with: &[],
+                line_without: &[],
+                x_label: "",
+                y_label: "",
+                record_label: None,
+                with_legend: "",
+                without_legend: "",
+            };
+            let (xr, yr) = ranges(&spec).unwrap();
+            legend_corner(&spec, xr, yr)
+        };
+        // Rising: the upper left is empty.
+        assert!(matches!(spec(&points(11)), SeriesLabelPosition::UpperLeft));
+        // Falling, as along a transect from its source: the upper right.
+        let falling: Vec<ChartPoint> = points(11)
+            .into_iter()
+            .map(|p| ChartPoint { y: 10.0 - p.y, ..p })
+            .collect();
+        assert!(matches!(spec(&falling), SeriesLabelPosition::UpperRight));
     }
 
     #[test]

@@ -11,7 +11,7 @@ use serde_json::json;
 
 use crate::config::{Config, SeriesSettings};
 use crate::findings::advice::{AdviceInput, advise};
-use crate::findings::causes::{Candidate, CauseInput, XKind, rank_causes};
+use crate::findings::causes::{Candidate, CauseInput, Change, XKind, rank_causes};
 use crate::findings::rules::{CutoffSource, Measured, RecordJudgement, TrendChange};
 use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
@@ -175,6 +175,14 @@ pub fn record_finding(
     let (x_label, x_unit) = (x_label(x_kind, &settings), x_unit(x_kind, &settings));
     let scale_note = scale_note(case.transform, &unit, &per_x(&x_label, &x_unit));
     let causes = case.causes;
+    let cause_lines: Vec<Cause> = causes
+        .iter()
+        .map(|c| Cause {
+            label: c.label.clone(),
+            other_series: matches!(c.change, Change::OtherSeries { .. }),
+            score_p: c.score.p,
+        })
+        .collect();
     let advice = if case
         .judgement
         .kinds
@@ -344,14 +352,7 @@ pub fn record_finding(
             ci: Some((a, b)),
         }),
         judged_against,
-        causes: causes
-            .iter()
-            .map(|c| Cause {
-                label: c.label.clone(),
-                corrected_value: format!("x = {}, y = {}", c.x, c.y),
-                score_p: c.score.p,
-            })
-            .collect(),
+        causes: cause_lines,
         sampling_advice: advice,
         nondetect_policy: config.series_settings(&r.series).non_detects.name(),
         points,

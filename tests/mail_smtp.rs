@@ -99,8 +99,8 @@ fn notice(finding_id: i64) -> Notice {
         }),
         judged_against: "the fit without 1 record awaiting review".into(),
         causes: vec![Cause {
-            label: "decimal point shifted one place".into(),
-            corrected_value: "1.16 mg/L".into(),
+            label: "decimal point slipped 1 place: 1.16 mg/L instead of 11.6 mg/L".into(),
+            other_series: false,
             score_p: 0.02,
         }],
         sampling_advice: Some("A sample between 2029 and 2031 would test the rise.".into()),

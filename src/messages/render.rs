@@ -183,13 +183,15 @@ pub struct RobustSlope {
     pub ci: Option<(f64, f64)>,
 }
 
-/// A possible cause of a suspicious value, with the value it would imply.
+/// A possible cause of a suspicious value.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Cause {
-    /// What may have happened, e.g. `decimal point shifted one place`.
+    /// What may have happened and the value it implies, e.g. `decimal
+    /// point slipped 1 place: 4.12 mg/L instead of 41.2 mg/L`.
     pub label: String,
-    /// The value if that is what happened, as text with its unit.
-    pub corrected_value: String,
+    /// The record may belong to another series, judged against that
+    /// series' trend with its value unchanged.
+    pub other_series: bool,
     /// How well the corrected value fits the trend (a p-value; higher is a
     /// better fit).
     pub score_p: f64,
@@ -494,6 +496,22 @@ fn comparison_heading(n: &Notice) -> &'static str {
     }
 }
 
+/// A likely cause in words: its label (which says what the record would
+/// become) and how well that fits the trend (another series' trend for a
+/// record that may belong there).
+fn cause_text(c: &Cause, inline: fn(&str, usize) -> String) -> String {
+    format!(
+        "{} (fit to {} trend: p = {})",
+        inline(&c.label, FIELD_CHARS),
+        if c.other_series {
+            "that series'"
+        } else {
+            "the"
+        },
+        pval(c.score_p)
+    )
+}
+
 /// " m" after a value of x when its unit is known; empty otherwise.
 fn x_unit_suffix(n: &Notice) -> String {
     if n.x_unit.is_empty() {
@@ -728,13 +746,7 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
     if !n.causes.is_empty() {
         heading(&mut t, "Possible causes, most likely first");
         for (i, c) in n.causes.iter().enumerate() {
-            let line = format!(
-                "{}. {}: the value would be {} (fit to the trend: p = {})",
-                i + 1,
-                inline(&c.label, FIELD_CHARS),
-                inline(&c.corrected_value, FIELD_CHARS),
-                pval(c.score_p)
-            );
+            let line = format!("{}. {}", i + 1, cause_text(c, inline));
             t.push_str(&wrap_hanging(&line, TEXT_WIDTH, "  ", "     "));
         }
     }
@@ -872,13 +884,7 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
     if !n.causes.is_empty() {
         h.push_str("<h3>Possible causes, most likely first</h3>\n<ol>\n");
         for c in &n.causes {
-            putln!(
-                h,
-                "<li>{}: the value would be {} (fit to the trend: p = {})</li>",
-                e(&c.label, FIELD_CHARS),
-                e(&c.corrected_value, FIELD_CHARS),
-                html(&pval(c.score_p))
-            );
+            putln!(h, "<li>{}</li>", html(&cause_text(c, inline)));
         }
         h.push_str("</ol>\n");
     }
@@ -1146,8 +1152,8 @@ pub(crate) mod tests {
             }),
             judged_against: "the fit without 1 record awaiting review".into(),
             causes: vec![Cause {
-                label: "decimal point shifted one place".into(),
-                corrected_value: "4.12 mg/L".into(),
+                label: "decimal point slipped 1 place: 4.12 mg/L instead of 41.2 mg/L".into(),
+                other_series: false,
                 score_p: 0.61,
             }],
             sampling_advice: Some(
@@ -1245,7 +1251,7 @@ pub(crate) mod tests {
             "[0.91, 2.77]",
             "< 0.0001",
             "Theil–Sen",
-            "decimal point shifted one place: the value would be 4.12 mg/L",
+            "decimal point slipped 1 place: 4.12 mg/L instead of 41.2 mg/L (fit to the trend: p = 0.61)",
             "A record between 2028 and 2031",
             "chain-of-custody",
             "calibration log",

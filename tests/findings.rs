@@ -972,6 +972,10 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
     assert!(html.contains("mg/kg per m"), "the slope unit in the report");
     assert!(html.contains("Distance from the source (m)"), "the x axis");
     assert!(
+        html.contains("<dt>x</dt><dd>distance from the source, in m</dd>"),
+        "the series' facts"
+    );
+    assert!(
         html.contains("T031 (version 1): distance from the source = 2000 m, y = 0 mg/kg"),
         "a point's tip"
     );

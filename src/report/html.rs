@@ -380,6 +380,17 @@ fn series_section(out: &mut String, s: &SeriesData) {
     let proposed = s.records.iter().filter(|r| r.status == "proposed").count();
     out.push_str("<dl class=\"facts\">\n");
     let _ = writeln!(out, "<dt>Unit of y</dt><dd>{}</dd>", html(unit));
+    // What x is: as configured, else as read from its range.
+    let x_is = match (s.row.x_name.as_deref(), s.row.x_unit.as_deref()) {
+        (Some(name), Some(u)) => format!("{name}, in {u}"),
+        (Some(name), None) => format!("{name} (unit not stated)"),
+        (None, Some(u)) => format!("in {u}"),
+        (None, None) if s.x_is_year() => "the sampling date, as a decimal year".to_string(),
+        (None, None) => {
+            "as recorded (its name and unit are not configured: x_name, x_unit)".to_string()
+        }
+    };
+    let _ = writeln!(out, "<dt>x</dt><dd>{}</dd>", html(&x_is));
     let _ = writeln!(
         out,
         "<dt>Fitted scale</dt><dd>{} (slope in {})</dd>",

@@ -976,6 +976,10 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
         "the series' facts"
     );
     assert!(
+        html.contains("Intercept at x = 0 m"),
+        "the intercept's place"
+    );
+    assert!(
         html.contains("T031 (version 1): distance from the source = 2000 m, y = 0 mg/kg"),
         "a point's tip"
     );

@@ -180,6 +180,8 @@ pub struct Labels {
     pub y_unit: String,
     /// The fitted scale in words.
     pub scale: String,
+    /// Where the intercept lies, for its row in the figures.
+    pub intercept: String,
 }
 
 /// What x is, for labels: decimal years, or a quantity with what it
@@ -238,6 +240,15 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             (per, plain, log)
         }
     };
+    let intercept = match (transform, x) {
+        (Transform::LogX | Transform::LogLog, XMeasure::Quantity { unit: Some(u), .. }) => {
+            format!("Intercept at ln x = 0 (x = 1 {u})")
+        }
+        (Transform::LogX | Transform::LogLog, _) => "Intercept at ln x = 0 (x = 1)".to_string(),
+        (_, XMeasure::Year) => "Intercept at year 0 (far outside the data)".to_string(),
+        (_, XMeasure::Quantity { unit: Some(u), .. }) => format!("Intercept at x = 0 {u}"),
+        (_, XMeasure::Quantity { unit: None, .. }) => "Intercept at x = 0".to_string(),
+    };
     match transform {
         Transform::None => Labels {
             x_axis: x_plain,
@@ -245,6 +256,7 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             slope_unit: format!("{unit} {per_x}"),
             y_unit: unit.to_string(),
             scale: "y on x (no transform)".into(),
+            intercept,
         },
         Transform::LogY => Labels {
             x_axis: x_plain,
@@ -252,6 +264,7 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             slope_unit: format!("ln({unit}) {per_x}"),
             y_unit: format!("ln({unit})"),
             scale: "ln y on x".into(),
+            intercept,
         },
         Transform::LogX => Labels {
             x_axis: x_log,
@@ -259,6 +272,7 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             slope_unit: format!("{unit} per unit of ln x"),
             y_unit: unit.to_string(),
             scale: "y on ln x".into(),
+            intercept,
         },
         Transform::LogLog => Labels {
             x_axis: x_log,
@@ -266,6 +280,7 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             slope_unit: "power-law exponent (ln y per ln x)".into(),
             y_unit: format!("ln({unit})"),
             scale: "ln y on ln x".into(),
+            intercept,
         },
     }
 }
@@ -341,7 +356,9 @@ mod tests {
         assert_eq!(l.x_axis, "Year (decimal)");
         assert_eq!(l.y_axis, "Concentration (mg/L)");
         assert_eq!(l.slope_unit, "mg/L per year");
+        assert_eq!(l.intercept, "Intercept at year 0 (far outside the data)");
         let l = labels(Transform::LogY, Some("mg/kg"), plain);
+        assert_eq!(l.intercept, "Intercept at x = 0");
         assert_eq!(l.y_axis, "ln concentration (concentration in mg/kg)");
         assert_eq!(l.slope_unit, "ln(mg/kg) per unit of x");
         let l = labels(Transform::LogLog, None, plain);
@@ -357,8 +374,10 @@ mod tests {
         assert_eq!(l.slope_unit, "ln(mg/kg) per m");
         let l = labels(Transform::None, Some("mg/kg"), distance);
         assert_eq!(l.slope_unit, "mg/kg per m");
+        assert_eq!(l.intercept, "Intercept at x = 0 m");
         let l = labels(Transform::LogX, Some("mg/kg"), distance);
         assert_eq!(l.x_axis, "ln distance from the source (in m)");
+        assert_eq!(l.intercept, "Intercept at ln x = 0 (x = 1 m)");
         // A configured unit wins over the reading of x as years (a transect
         // 1,800 to 2,200 m long), and a unit alone still labels the axis.
         let l = labels(

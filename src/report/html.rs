@@ -444,21 +444,14 @@ fn series_section(out: &mut String, s: &SeriesData) {
             .iter()
             .filter(|r| r.version <= f.version && r.theil_sen_slope.is_some())
             .max_by_key(|r| r.version);
-        figures_table(
-            out,
-            f,
-            robust,
-            transform,
-            &labels.slope_unit,
-            &labels.y_unit,
-        );
+        figures_table(out, f, robust, transform, &labels);
     }
 
     // The scatter.
     let flags = flagged(s);
     out.push_str(&scatter_figure(s, &flags, window));
 
-    with_without(out, s, &labels.slope_unit, &labels.y_unit);
+    with_without(out, s, &labels);
     diagnostics_table(out, s, &flags, window);
     slope_history(out, s, &labels.slope_unit);
 
@@ -650,9 +643,9 @@ fn figures_table(
     f: &ReportFitRow,
     robust: Option<&ReportFitRow>,
     transform: Transform,
-    slope_unit: &str,
-    y_unit: &str,
+    labels: &super::data::Labels,
 ) {
+    let (slope_unit, y_unit) = (labels.slope_unit.as_str(), labels.y_unit.as_str());
     let mean_x = f.origin + f.mean_x_shifted;
     let mut cells: Vec<(String, String)> = vec![
         (
@@ -677,7 +670,7 @@ fn figures_table(
             format!("{} {}", html_number(&sig(f.mean_y, DIGITS)), html(y_unit)),
         ),
         (
-            "Intercept at x = 0".into(),
+            labels.intercept.clone(),
             format!("{} {}", num(f.intercept), html(y_unit)),
         ),
         ("R²".into(), num(f.r_squared)),
@@ -749,7 +742,7 @@ fn figures_table(
     }
 }
 
-fn with_without(out: &mut String, s: &SeriesData, slope_unit: &str, y_unit: &str) {
+fn with_without(out: &mut String, s: &SeriesData, labels: &super::data::Labels) {
     let rows: Vec<(&ReportFindingRow, Option<DetailFit>, Option<DetailFit>)> = s
         .findings
         .iter()
@@ -769,9 +762,10 @@ fn with_without(out: &mut String, s: &SeriesData, slope_unit: &str, y_unit: &str
     }
     let _ = write!(
         out,
-        "<table class=\"with-without\">\n<caption>As computed when each finding was raised. Slope in {}; intercept at x = 0 in {}.</caption>\n<thead><tr><th>Finding</th><th>Record</th><th>Fit</th><th class=\"num\">n</th><th class=\"num\">Slope</th><th class=\"num\">Confidence interval</th><th class=\"num\">p</th><th class=\"num\">Intercept</th></tr></thead>\n<tbody>\n",
-        html(slope_unit),
-        html(y_unit)
+        "<table class=\"with-without\">\n<caption>As computed when each finding was raised. Slope in {}; {} in {}.</caption>\n<thead><tr><th>Finding</th><th>Record</th><th>Fit</th><th class=\"num\">n</th><th class=\"num\">Slope</th><th class=\"num\">Confidence interval</th><th class=\"num\">p</th><th class=\"num\">Intercept</th></tr></thead>\n<tbody>\n",
+        html(&labels.slope_unit),
+        html(&labels.intercept.replacen("Intercept", "intercept", 1)),
+        html(&labels.y_unit)
     );
     for (f, with, without) in rows {
         let record = if f.record_ids.is_empty() {

@@ -880,6 +880,8 @@ fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
         )
         .unwrap();
     assert!(body.contains("Slopes are in mg/L per year."), "{body}");
+    // An intercept at year 0 would mean nothing to the reader.
+    assert!(!body.contains("intercept"), "{body}");
     assert!(
         body.contains("The trend now and in the fit it is compared with"),
         "{body}"
@@ -935,6 +937,7 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
     };
     let trend = body_of("sign_reversal");
     assert!(trend.contains("Slopes are in mg/kg per m."), "{trend}");
+    assert!(trend.contains("intercept (x = 0 m)"), "{trend}");
     let record = body_of("high_leverage");
     assert!(
         record.contains("distance from the source = 2000 m"),

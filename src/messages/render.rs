@@ -450,7 +450,7 @@ fn comparison_rows(n: &Notice) -> Vec<(String, String, String)> {
     } else {
         "CI of slope".to_string()
     };
-    vec![
+    let mut rows = vec![
         (
             "slope".to_string(),
             cell(w, &|f| num(f.slope)),
@@ -471,12 +471,21 @@ fn comparison_rows(n: &Notice) -> Vec<(String, String, String)> {
             cell(w, &|f| f.n.to_string()),
             cell(wo, &|f| f.n.to_string()),
         ),
-        (
-            "intercept".to_string(),
+    ];
+    // At year 0 the intercept is far outside any record and means nothing
+    // to a reader; elsewhere x = 0 may be the source itself.
+    if n.x_label != "year" {
+        rows.push((
+            if n.x_unit.is_empty() {
+                "intercept (x = 0)".to_string()
+            } else {
+                format!("intercept (x = 0 {})", inline(&n.x_unit, FIELD_CHARS))
+            },
             cell(w, &|f| num(f.intercept)),
             cell(wo, &|f| num(f.intercept)),
-        ),
-    ]
+        ));
+    }
+    rows
 }
 
 fn column_titles(n: &Notice) -> (&'static str, &'static str) {

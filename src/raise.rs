@@ -112,6 +112,7 @@ pub fn likely_causes(
     };
     let x_raw = format!("{}", record.x);
     let y_raw = format!("{}", record.y.number());
+    let settings = config.series_settings(&record.series);
     rank_causes(&CauseInput {
         fit_without: fit,
         transform,
@@ -124,9 +125,10 @@ pub fn likely_causes(
             file_name,
             transform,
             span_before,
-            config.series_settings(&record.series).x_unit.as_deref(),
+            settings.x_unit.as_deref(),
         ),
         unit: record.unit.as_deref(),
+        x_unit: settings.x_unit.as_deref(),
         others,
         max: 4,
     })

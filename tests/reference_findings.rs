@@ -145,6 +145,7 @@ impl CauseCase {
                 other => panic!("x_kind {other}"),
             },
             unit: self.json["unit"].as_str(),
+            x_unit: None,
             others: &others,
             max: self.json["max"].as_u64().unwrap() as usize,
         };

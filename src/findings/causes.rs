@@ -256,6 +256,9 @@ pub struct CauseInput<'a> {
     pub x_kind: XKind,
     /// The series' unit as configured, e.g. "mg/L".
     pub unit: Option<&'a str>,
+    /// x's unit as configured (`x_unit`), e.g. "m"; shown after a
+    /// corrected x that is not a year.
+    pub x_unit: Option<&'a str>,
     /// Other series (name, fit) on the same unit and fitted scale.
     pub others: &'a [(&'a str, &'a LineFit)],
     /// At most this many candidates are listed.
@@ -673,7 +676,11 @@ fn label_of(input: &CauseInput<'_>, kind: CauseKind, change: &Change, x: f64, y:
         None => show(v),
     };
     let of_y = |what: String| format!("{what}: {} instead of {}", shown(y), shown(input.y));
-    let of_x = |what: String| format!("{what}: {} instead of {}", show(x), show(input.x));
+    let shown_x = |v: f64| match input.x_unit.filter(|_| input.x_kind != XKind::DecimalYear) {
+        Some(u) => format!("{} {u}", show(v)),
+        None => show(v),
+    };
+    let of_x = |what: String| format!("{what}: {} instead of {}", shown_x(x), shown_x(input.x));
     let xword = input.x_kind.word();
     match (kind, change) {
         (CauseKind::UnitMixUp, Change::ScaleY { power }) => {
@@ -972,6 +979,7 @@ mod tests {
             y_raw,
             x_kind: XKind::DecimalYear,
             unit: Some("mg/L"),
+            x_unit: None,
             others: &[],
             max: DEFAULT_MAX,
         }
@@ -992,6 +1000,42 @@ mod tests {
                 .starts_with("decimal point slipped 1 place: 4.38 mg/L instead of 43.8"),
             "{}",
             first.label
+        );
+    }
+
+    #[test]
+    fn a_slip_in_a_distance_is_shown_in_the_distance_unit() {
+        // Invented: a transect every 50 m, falling 0.01 per m, and a record
+        // whose 200 m was written 2000.
+        let x: Vec<f64> = (0..10).map(|i| 50.0 * f64::from(i)).collect();
+        let noise = [0.3, -0.2, 0.1, -0.4, 0.2, 0.0, -0.1, 0.3, -0.3, 0.2];
+        let y: Vec<f64> = x
+            .iter()
+            .zip(noise)
+            .map(|(x, e)| 9.0 - 0.01 * x + e)
+            .collect();
+        let fit = fit_line(&x, &y, 0.95).unwrap();
+        let r = rank_causes(&CauseInput {
+            fit_without: &fit,
+            transform: Transform::None,
+            x: 2000.0,
+            y: 7.0,
+            x_raw: "2000",
+            y_raw: "7.0",
+            x_kind: XKind::Distance,
+            unit: Some("mg/kg"),
+            x_unit: Some("m"),
+            others: &[],
+            max: DEFAULT_MAX,
+        });
+        let slip = r
+            .candidates
+            .iter()
+            .find(|c| c.change == Change::ScaleX { power: -1 })
+            .unwrap_or_else(|| panic!("{:?}", r.candidates));
+        assert_eq!(
+            slip.label,
+            "decimal point slipped in the distance: 200 m instead of 2000 m"
         );
     }
 
@@ -1110,6 +1154,7 @@ mod tests {
                 y_raw: &y_raw,
                 x_kind: XKind::DecimalYear,
                 unit: Some("mg/L"),
+                x_unit: None,
                 others: &[],
                 max,
             };
@@ -1173,6 +1218,7 @@ mod tests {
                 y_raw: &y_raw,
                 x_kind: XKind::DecimalYear,
                 unit: Some("mg/L"),
+                x_unit: None,
                 others: &others,
                 max,
             };

@@ -968,6 +968,7 @@ mod commands {
         by: Option<&str>,
     ) -> ExitCode {
         use slopewarden::review::{Review, ReviewError, review};
+        let config_path = config;
         let (config, mut store) = match setup(config) {
             Ok(v) => v,
             Err(code) => return code,
@@ -991,6 +992,20 @@ mod commands {
                     println!("series {series} refitted as version {v}");
                     println!("  before: {}", fit_summary(&done.before));
                     println!("  after:  {}", fit_summary(&done.after));
+                }
+                if !done.caused_trends.is_empty() {
+                    println!(
+                        "this record alone caused these open trend findings; compare them with the refit above, then close each with a verdict:"
+                    );
+                    let with_config =
+                        config_path.map_or(String::new(), |p| format!(" --config {}", p.display()));
+                    for (id, summary) in &done.caused_trends {
+                        println!("  {id}: {summary}");
+                        println!(
+                            "      slopewarden review {id} --verdict confirmed --note \"caused by the record of finding {finding}, {} by verdict {}\"{with_config}",
+                            done.verdict, done.verdict_id
+                        );
+                    }
                 }
                 ExitCode::SUCCESS
             }

@@ -88,6 +88,10 @@ pub struct Reviewed {
     pub new_record_row: Option<i64>,
     /// The finding's status now.
     pub finding_status: String,
+    /// Open trend findings of the series that the record corrected or
+    /// excluded here caused alone: (id, summary). They stay open (a
+    /// verdict is the analyst's), but the refit may have undone them.
+    pub caused_trends: Vec<(i64, String)>,
 }
 
 /// Why a review was refused or failed.
@@ -255,6 +259,17 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
             )
         }
     };
+    // The trend changes this record caused alone, for the analyst to look
+    // at again against the refit (only for a record that now changed).
+    let caused_trends = match (&target.series, r.action, record_row) {
+        (Some(key), Action::Verdict(Verdict::Corrected { .. } | Verdict::Excluded), Some(row)) => {
+            match tx.record_state(row)? {
+                Some(rec) => tx.trend_findings_caused_by(key, &rec.record_id, r.finding)?,
+                None => Vec::new(),
+            }
+        }
+        _ => Vec::new(),
+    };
     let verdict_id = tx.insert_verdict(&NewVerdict {
         finding: r.finding,
         verdict: &name,
@@ -319,6 +334,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
         after,
         new_record_row,
         finding_status,
+        caused_trends,
     })
 }
 

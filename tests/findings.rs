@@ -859,6 +859,63 @@ fn a_far_record_near_zero_reverses_a_significant_slope_and_a_plausible_twin_does
 }
 
 #[test]
+fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
+    // The far record of the test above reverses the gentle series' slope
+    // on its own (R 4.2.2, coef(lm): 0.2 per year before, -0.102 with
+    // it). Once the analyst excludes it, `review` names the sign reversal
+    // it caused, which stays open for a verdict of its own.
+    let site = site_with_gentle_series("");
+    site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
+    let found = site.findings();
+    let reversal = found
+        .iter()
+        .find(|f| kinds(f).contains(&"sign_reversal"))
+        .unwrap_or_else(|| panic!("{found:#?}"));
+    let record = finding_about(&found, "Q031");
+    let out = site
+        .command(&[
+            "review",
+            &record["id"].to_string(),
+            "--verdict",
+            "excluded",
+            "--note",
+            "the sample was taken at another site",
+        ])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let said = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        said.contains("this record alone caused these open trend findings"),
+        "{said}"
+    );
+    assert!(
+        said.contains(&format!(
+            "slopewarden review {} --verdict confirmed",
+            reversal["id"]
+        )),
+        "{said}"
+    );
+    assert!(
+        said.contains(&format!("--config {}", site.config())),
+        "{said}"
+    );
+    let status: String = site
+        .db()
+        .query_row(
+            "SELECT status FROM findings WHERE id = ?1",
+            [reversal["id"].as_i64().unwrap()],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(status, "open");
+}
+
+#[test]
 fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
     // The same far record as above; the sign reversal's message compares
     // two slopes, so it must say what they are in: the records' unit per

@@ -191,6 +191,34 @@ impl Tx<'_> {
             .map_err(self.wrap())
     }
 
+    /// Open trend findings of a series that its newest record `record_id`
+    /// alone caused (a sign reversal or a significance change that would
+    /// not have happened without it), other than `finding`: (id, summary),
+    /// oldest first.
+    pub fn trend_findings_caused_by(
+        &self,
+        series: &str,
+        record_id: &str,
+        finding: i64,
+    ) -> Result<Vec<(i64, String)>> {
+        let mut stmt = self
+            .tx
+            .prepare_cached(
+                "SELECT f.id, f.summary FROM findings f JOIN series s ON s.id = f.series_id
+                 WHERE s.key = ?1 AND f.status = 'open' AND f.id != ?3 AND f.record_row IS NULL
+                   AND json_extract(f.detail, '$.caused_by_newest_record') = 1
+                   AND json_extract(f.detail, '$.newest_record') = ?2
+                 ORDER BY f.id",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map(params![series, record_id, finding], |r| {
+                Ok((r.get(0)?, r.get(1)?))
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
     /// The verdicts of a finding, oldest first.
     pub fn verdicts_of(&self, finding: i64) -> Result<Vec<VerdictRow>> {
         verdicts_of(self.tx, Some(finding)).map_err(self.wrap())

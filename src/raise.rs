@@ -163,7 +163,7 @@ pub fn record_finding(
         )
     };
 
-    let settings = config.series_settings(&SeriesId(case.series.key.clone()));
+    let settings = config.series_settings(&r.series);
     let x_kind = x_kind_of(
         config,
         file.1,
@@ -219,7 +219,7 @@ pub fn record_finding(
         case.series.key,
         kinds.join(", ").replace('_', " ")
     );
-    let non_detects = config.series_settings(&r.series).non_detects.name();
+    let non_detects = settings.non_detects.name();
     let detail = serde_json::to_string(&RecordDetail {
         causes: causes.iter().map(CauseDetail::of).collect(),
         caution: CAUTION,
@@ -356,7 +356,7 @@ pub fn record_finding(
         judged_against,
         causes: cause_lines,
         sampling_advice: advice,
-        nondetect_policy: config.series_settings(&r.series).non_detects.name(),
+        nondetect_policy: non_detects,
         points,
         line_with: with
             .as_ref()

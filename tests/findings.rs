@@ -168,6 +168,17 @@ impl Site {
         .unwrap()
     }
 
+    /// The text body of a finding's message.
+    fn message_text(&self, finding: &Value) -> String {
+        self.db()
+            .query_row(
+                "SELECT body_text FROM outbox WHERE finding_id = ?1",
+                [finding["id"].as_i64().unwrap()],
+                |r| r.get(0),
+            )
+            .unwrap()
+    }
+
     /// The outbox rows, oldest first.
     fn outbox(&self) -> Vec<OutboxRow> {
         let conn = self.db();
@@ -399,6 +410,14 @@ fn findings_after(second: &str) -> Vec<Value> {
 fn one_record(f: &[Value]) -> &Value {
     assert_eq!(f.len(), 1, "exactly one finding expected: {f:#?}");
     &f[0]
+}
+
+/// The first finding raised for `kind`; fails the test if there is none.
+fn first_of_kind<'a>(found: &'a [Value], kind: &str) -> &'a Value {
+    found
+        .iter()
+        .find(|f| kinds(f).contains(&kind))
+        .unwrap_or_else(|| panic!("a {kind} finding: {found:#?}"))
 }
 
 /// The finding about record `id` alone; fails the test if there is none.
@@ -867,10 +886,7 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
     let site = site_with_gentle_series("");
     site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
     let found = site.findings();
-    let reversal = found
-        .iter()
-        .find(|f| kinds(f).contains(&"sign_reversal"))
-        .unwrap_or_else(|| panic!("{found:#?}"));
+    let reversal = first_of_kind(&found, "sign_reversal");
     let record = finding_about(&found, "Q031");
     let out = site
         .command(&[
@@ -923,19 +939,9 @@ fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
     let site = site_with_gentle_series("");
     site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
     let found = site.findings();
-    let reversal = found
-        .iter()
-        .find(|f| kinds(f).contains(&"sign_reversal"))
-        .unwrap_or_else(|| panic!("{found:#?}"));
+    let reversal = first_of_kind(&found, "sign_reversal");
     assert_eq!(reversal["detail"]["unit"], "mg/L");
-    let body: String = site
-        .db()
-        .query_row(
-            "SELECT body_text FROM outbox WHERE finding_id = ?1",
-            [reversal["id"].as_i64().unwrap()],
-            |r| r.get(0),
-        )
-        .unwrap();
+    let body = site.message_text(reversal);
     assert!(body.contains("Slopes are in mg/L per year."), "{body}");
     // An intercept at year 0 would mean nothing to the reader.
     assert!(!body.contains("intercept"), "{body}");
@@ -979,32 +985,16 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
     );
     site.deliver("b.csv", &along(&[(2060.0, 0.0)], 31));
     let found = site.findings();
-    let body_of = |kind: &str| -> String {
-        let f = found
-            .iter()
-            .find(|f| kinds(f).contains(&kind))
-            .unwrap_or_else(|| panic!("a {kind} finding: {found:#?}"));
-        site.db()
-            .query_row(
-                "SELECT body_text FROM outbox WHERE finding_id = ?1",
-                [f["id"].as_i64().unwrap()],
-                |r| r.get(0),
-            )
-            .unwrap()
-    };
-    let trend = body_of("sign_reversal");
+    let trend = site.message_text(first_of_kind(&found, "sign_reversal"));
     assert!(trend.contains("Slopes are in mg/kg per m."), "{trend}");
     assert!(trend.contains("intercept (x = 0 m)"), "{trend}");
-    let record = body_of("high_leverage");
+    let leverage = first_of_kind(&found, "high_leverage");
+    let record = site.message_text(leverage);
     assert!(
         record.contains("distance from the source = 2000 m"),
         "{record}"
     );
     // `show` reads the same from the finding's stored detail.
-    let leverage = found
-        .iter()
-        .find(|f| kinds(f).contains(&"high_leverage"))
-        .unwrap();
     let shown = site
         .command(&["show", &leverage["id"].to_string()])
         .output()

@@ -412,6 +412,16 @@ fn one_record(f: &[Value]) -> &Value {
     &f[0]
 }
 
+/// The gentle series, then a record fifty years beyond its range with a
+/// value of zero, which reverses its slope on its own (R 4.2.2, coef(lm):
+/// -0.102 with it): the site and its findings.
+fn reversed_by_a_far_record() -> (Site, Vec<Value>) {
+    let site = site_with_gentle_series("");
+    site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
+    let found = site.findings();
+    (site, found)
+}
+
 /// The first finding raised for `kind`; fails the test if there is none.
 fn first_of_kind<'a>(found: &'a [Value], kind: &str) -> &'a Value {
     found
@@ -883,9 +893,7 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
     // on its own (R 4.2.2, coef(lm): 0.2 per year before, -0.102 with
     // it). Once the analyst excludes it, `review` names the sign reversal
     // it caused, which stays open for a verdict of its own.
-    let site = site_with_gentle_series("");
-    site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
-    let found = site.findings();
+    let (site, found) = reversed_by_a_far_record();
     let reversal = first_of_kind(&found, "sign_reversal");
     let record = finding_about(&found, "Q031");
     let out = site
@@ -936,9 +944,7 @@ fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
     // The same far record as above; the sign reversal's message compares
     // two slopes, so it must say what they are in: the records' unit per
     // year (x is a date in decimal years).
-    let site = site_with_gentle_series("");
-    site.deliver("b.csv", &csv(31, &[(2060.0, 0.0)]));
-    let found = site.findings();
+    let (site, found) = reversed_by_a_far_record();
     let reversal = first_of_kind(&found, "sign_reversal");
     assert_eq!(reversal["detail"]["unit"], "mg/L");
     let body = site.message_text(reversal);

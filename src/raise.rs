@@ -12,7 +12,7 @@ use serde_json::json;
 use crate::config::{Config, SeriesSettings};
 use crate::findings::advice::{AdviceInput, advise};
 use crate::findings::causes::{Candidate, CauseInput, Change, XKind, rank_causes};
-use crate::findings::rules::{CutoffSource, Measured, RecordJudgement, TrendChange};
+use crate::findings::rules::{CutoffSource, Measured, RecordJudgement, RecordKind, TrendChange};
 use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
     RobustSlope, Severity, render_notice, render_notice_heading,
@@ -185,11 +185,7 @@ pub fn record_finding(
             score_p: c.score.p,
         })
         .collect();
-    let advice = if case
-        .judgement
-        .kinds
-        .contains(&crate::findings::rules::RecordKind::HighLeverage)
-    {
+    let advice = if case.judgement.kinds.contains(&RecordKind::HighLeverage) {
         let xs: Vec<f64> = case
             .points
             .iter()
@@ -208,10 +204,13 @@ pub fn record_finding(
             bound: 10_000,
         })
         .ok()
-        .map(|a| a.sentence())
+        .map(|a| a.sentence(&x_unit))
     } else {
         None
     };
+
+    let no_cause = (causes.is_empty() && without.is_some())
+        .then(|| no_cause_sentence(&case.judgement.kinds, x_kind, &x_label));
 
     let summary = format!(
         "record {} in {}: {}",
@@ -234,6 +233,7 @@ pub fn record_finding(
             .iter()
             .map(MeasureDetail::of)
             .collect(),
+        no_cause: no_cause.as_deref(),
         non_detects: &non_detects,
         record: RecordFacts {
             censored: r.y.is_censored(),
@@ -275,13 +275,7 @@ pub fn record_finding(
             .judgement
             .kinds
             .iter()
-            .any(|k| {
-                matches!(
-                    k,
-                    crate::findings::rules::RecordKind::Outlier
-                        | crate::findings::rules::RecordKind::HighLeverage
-                )
-            })
+            .any(|k| matches!(k, RecordKind::Outlier | RecordKind::HighLeverage))
             .then_some(case.fit_point),
         summary: &summary,
         detail: &detail,
@@ -355,6 +349,7 @@ pub fn record_finding(
         }),
         judged_against,
         causes: cause_lines,
+        no_cause,
         sampling_advice: advice,
         nondetect_policy: non_detects,
         points,
@@ -467,6 +462,7 @@ pub fn plain_finding(
             .unwrap_or("the previous fit of the series")
             .to_string(),
         causes: Vec::new(),
+        no_cause: None,
         sampling_advice: None,
         nondetect_policy: series.map_or_else(String::new, |s| s.non_detects.clone()),
         points: Vec::new(),
@@ -550,6 +546,32 @@ fn x_label(kind: XKind, settings: &SeriesSettings) -> String {
         (_, Some(name)) => name.clone(),
         (_, None) => "x".into(),
     }
+}
+
+/// Why a record finding lists no likely entry error: which errors were
+/// tried, and what is left to check. Said only when they were tried (the
+/// series had a fit without the record) and none fitted markedly better.
+fn no_cause_sentence(kinds: &[RecordKind], x_kind: XKind, x_label: &str) -> String {
+    let x_errors = match x_kind {
+        XKind::DecimalYear => "a year off by 1 or 10".to_string(),
+        XKind::Distance | XKind::Other => format!("a {x_label} ten times too large or too small"),
+    };
+    let tried = format!(
+        "None of the entry errors tried (a slipped decimal point, a unit mix-up, a lost minus sign, transposed digits, {x_errors}, a record filed under the wrong series) fits the trend without the record markedly better than the record as written."
+    );
+    let next = if kinds.contains(&RecordKind::Outlier) && kinds.contains(&RecordKind::HighLeverage)
+    {
+        format!(
+            "If its value and {x_label} are right, the sample lies beyond the range surveyed so far and departs from the trend, which there rests on this record alone: check the sample itself (where and how it was taken) and see the sampling advice."
+        )
+    } else if kinds.contains(&RecordKind::Outlier) {
+        "If its value is as the laboratory reported it, check the sample itself: where, at what depth and how it was taken, its holding time, and anything unusual noted on the field sheet.".to_string()
+    } else {
+        format!(
+            "Its value is not far from that trend: the record weighs on the trend through its {x_label}, so check that first."
+        )
+    };
+    format!("{tried} {next}")
 }
 
 /// x's unit in a message: the configured `x_unit` unless x is years
@@ -726,6 +748,9 @@ struct RecordDetail<'a> {
     judged_against: &'a str,
     leverage: f64,
     measures: Vec<MeasureDetail<'a>>,
+    /// Why no likely entry error is listed (set only when none is).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    no_cause: Option<&'a str>,
     non_detects: &'a str,
     record: RecordFacts<'a>,
     robust: Option<RobustDetail>,
@@ -933,6 +958,7 @@ mod tests {
             judged_against: "the fit of the series before this record",
             leverage: f64::INFINITY,
             measures: vec![MeasureDetail::of(&measured)],
+            no_cause: None,
             non_detects: "exclude",
             record: RecordFacts {
                 censored: true,

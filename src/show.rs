@@ -183,11 +183,11 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
             );
         }
     }
-    if let Some(a) = d["sampling_advice"].as_object() {
-        let _ = writeln!(o, "\nsampling advice");
-        for (k, v) in a {
-            let _ = writeln!(o, "  {k}: {v}");
-        }
+    if let Some(note) = d["no_cause"].as_str() {
+        let _ = writeln!(o, "\nlikely entry errors to check\n  none listed. {note}");
+    }
+    if let Some(a) = d["sampling_advice"].as_str() {
+        let _ = writeln!(o, "\nsampling advice\n  {a}");
     }
     let _ = writeln!(o, "\nverdicts");
     if verdicts.is_empty() {

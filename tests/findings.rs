@@ -1010,6 +1010,30 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
         shown.contains("distance from the source = 2000 m  y = 0 mg/kg"),
         "{shown}"
     );
+    // The sampling advice places its samples in metres, and, no entry
+    // error fitting a zero, the message says which were tried instead of
+    // leaving the causes out; `show` prints both.
+    let advice = leverage["detail"]["sampling_advice"].as_str().unwrap();
+    assert!(advice.contains(" more samples at 2000 m"), "{advice}");
+    assert!(!advice.contains("x = "), "{advice}");
+    let no_cause = leverage["detail"]["no_cause"].as_str().unwrap();
+    assert!(
+        no_cause.starts_with("None of the entry errors tried")
+            && no_cause.contains("a distance from the source ten times too large or too small"),
+        "{no_cause}"
+    );
+    assert!(
+        record.contains("Possible causes\n---------------\nNone of the entry errors tried"),
+        "{record}"
+    );
+    assert!(
+        shown.contains("sampling advice\n  Its leverage is") && shown.contains(advice),
+        "{shown}"
+    );
+    assert!(
+        shown.contains("none listed. None of the entry errors"),
+        "{shown}"
+    );
 
     let report_html = || -> String {
         let report = site.path("report.html");

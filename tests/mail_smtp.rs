@@ -103,6 +103,7 @@ fn notice(finding_id: i64) -> Notice {
             other_series: false,
             score_p: 0.02,
         }],
+        no_cause: None,
         sampling_advice: Some("A sample between 2029 and 2031 would test the rise.".into()),
         nondetect_policy: "non-detects enter the fit at their reporting limit".into(),
         points,

@@ -577,7 +577,7 @@ fn sample_counts_match_a_search_over_r_hatvalues() {
             fill_needed(&s, x[record], edge, multiplier, bound),
             a.fill_gap
         );
-        let sentence = a.sentence();
+        let sentence = a.sentence("");
         if let (Some(r), Some(f)) = (a.replicates, a.fill_gap) {
             assert!(sentence.contains(&format!("{r} more")), "{sentence}");
             assert!(
@@ -609,5 +609,9 @@ fn stricter_multiplier_needs_fewer_samples() {
         bound: 300,
     })
     .unwrap();
-    assert!(a3.sentence().contains("3p/n cutoff"), "{}", a3.sentence());
+    assert!(
+        a3.sentence("").contains("3p/n cutoff"),
+        "{}",
+        a3.sentence("")
+    );
 }

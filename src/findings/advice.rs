@@ -297,9 +297,21 @@ impl Advice {
     /// cutoff of 0.33 (n = 12). 2 more samples at x = 2031.5, or 4 spread
     /// evenly between x = 2024 and 2031.5, would bring it to the cutoff or
     /// below (the cutoff falls as n grows)."
-    pub fn sentence(&self) -> String {
+    ///
+    /// `x_unit` is x's unit ("m"), empty when x has none to name (a year, or
+    /// not configured): with one, places read "at 1850 m" and "between 600 m
+    /// and 1850 m"; without, "at x = 1850".
+    pub fn sentence(&self, x_unit: &str) -> String {
         let rule = rule_name(self.multiplier);
-        let x0 = show_digits(self.record_x, SENTENCE_DIGITS);
+        let at = |v: f64| {
+            let v = show_digits(v, SENTENCE_DIGITS);
+            if x_unit.is_empty() {
+                format!("x = {v}")
+            } else {
+                format!("{v} {x_unit}")
+            }
+        };
+        let x0 = at(self.record_x);
         let head = format!(
             "Its leverage is {}, above the {rule} cutoff of {} (n = {}).",
             show_digits(self.leverage, 2),
@@ -313,32 +325,37 @@ impl Advice {
             } else {
                 (self.record_x, edge)
             };
+            let high = show_digits(high, SENTENCE_DIGITS);
             format!(
-                "{m} spread evenly{} between x = {} and {}",
+                "{m} spread evenly{} between {} and {}",
                 if self.log_x { " on the log scale" } else { "" },
-                show_digits(low, SENTENCE_DIGITS),
-                show_digits(high, SENTENCE_DIGITS)
+                at(low),
+                if x_unit.is_empty() {
+                    high
+                } else {
+                    format!("{high} {x_unit}")
+                }
             )
         };
         let tail = "would bring it to the cutoff or below (the cutoff falls as n grows).";
         let body = match (self.replicates, self.fill_gap, self.edge_x) {
             (Some(r), Some(f), Some(edge)) => format!(
-                "{r} more {} at x = {x0}, or {}, {tail}",
+                "{r} more {} at {x0}, or {}, {tail}",
                 plural(r),
                 spread(f, edge)
             ),
             (Some(r), _, _) => format!(
-                "{r} more {} at x = {x0} {tail} Spreading up to {} samples toward the rest of the data would not.",
+                "{r} more {} at {x0} {tail} Spreading up to {} samples toward the rest of the data would not.",
                 plural(r),
                 self.bound
             ),
             (None, Some(f), Some(edge)) => format!(
-                "{} more samples, {tail} Up to {} samples at x = {x0} alone would not.",
+                "{} more samples, {tail} Up to {} samples at {x0} alone would not.",
                 spread(f, edge),
                 self.bound
             ),
             _ => format!(
-                "Even {} more samples at x = {x0} or toward the rest of the data would not bring it to the cutoff.",
+                "Even {} more samples at {x0} or toward the rest of the data would not bring it to the cutoff.",
                 self.bound
             ),
         };
@@ -541,7 +558,7 @@ mod tests {
         .unwrap();
         assert_eq!(a.edge_x, Some(2023.75));
         let (r, f) = (a.replicates.unwrap(), a.fill_gap.unwrap());
-        let s = a.sentence();
+        let s = a.sentence("");
         assert!(
             s.contains(&format!("{r} more samples at x = 2031.5")),
             "{s}"
@@ -551,5 +568,12 @@ mod tests {
             "{s}"
         );
         assert!(s.contains("2p/n cutoff"), "{s}");
+        // With x's unit configured, the places are given in it.
+        let s = a.sentence("m");
+        assert!(s.contains(&format!("{r} more samples at 2031.5 m")), "{s}");
+        assert!(
+            s.contains(&format!("{f} spread evenly between 2023.75 m and 2031.5 m")),
+            "{s}"
+        );
     }
 }

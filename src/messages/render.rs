@@ -258,6 +258,9 @@ pub struct Notice {
     pub judged_against: String,
     /// Possible causes, most likely first.
     pub causes: Vec<Cause>,
+    /// Why no possible cause is listed, when the likely entry errors were
+    /// tried and none fitted.
+    pub no_cause: Option<String>,
     /// A sentence of sampling advice, when there is one.
     pub sampling_advice: Option<String>,
     /// How non-detects were treated, e.g. `non-detects enter the fit at half
@@ -758,6 +761,9 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
             let line = format!("{}. {}", i + 1, cause_text(c, inline));
             t.push_str(&wrap_hanging(&line, TEXT_WIDTH, "  ", "     "));
         }
+    } else if let Some(note) = &n.no_cause {
+        heading(&mut t, "Possible causes");
+        t.push_str(&wrap(&inline(note, SENTENCE_CHARS), TEXT_WIDTH, ""));
     }
 
     if let Some(advice) = &n.sampling_advice {
@@ -896,6 +902,12 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
             putln!(h, "<li>{}</li>", html(&cause_text(c, inline)));
         }
         h.push_str("</ol>\n");
+    } else if let Some(note) = &n.no_cause {
+        putln!(
+            h,
+            "<h3>Possible causes</h3>\n<p>{}</p>",
+            e(note, SENTENCE_CHARS)
+        );
     }
 
     if let Some(advice) = &n.sampling_advice {
@@ -1165,6 +1177,7 @@ pub(crate) mod tests {
                 other_series: false,
                 score_p: 0.61,
             }],
+            no_cause: None,
             sampling_advice: Some(
                 "A record between 2028 and 2031 would show whether the rise is real.".into(),
             ),

@@ -566,9 +566,13 @@ fn no_cause_sentence(kinds: &[RecordKind], x_kind: XKind, x_label: &str) -> Stri
         )
     } else if kinds.contains(&RecordKind::Outlier) {
         "If its value is as the laboratory reported it, check the sample itself: where, at what depth and how it was taken, its holding time, and anything unusual noted on the field sheet.".to_string()
+    } else if kinds.contains(&RecordKind::HighLeverage) {
+        format!(
+            "It is not far enough from that trend to be an outlier, but its {x_label} lies far beyond the series' usual spacing: check that first, and if it is right, see the sampling advice."
+        )
     } else {
         format!(
-            "Its value is not far from that trend: the record weighs on the trend through its {x_label}, so check that first."
+            "It is not far enough from that trend to be an outlier: it weighs on the trend through its {x_label} together with its departure from it, as a correct record often does while a series is short. Check its {x_label} and its value; if both are right, confirm it."
         )
     };
     format!("{tried} {next}")

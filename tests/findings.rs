@@ -698,6 +698,16 @@ fn a_record_far_in_x_and_off_the_line_is_influential_without_being_an_outlier() 
     assert!(cooks["value"].as_f64().unwrap() > 2.0 * cooks["cutoff"].as_f64().unwrap());
     let t = measures.iter().find(|m| m["kind"] == "outlier").unwrap();
     assert!(!t["crossed"].as_bool().unwrap());
+    // No entry error fits markedly better (ten years earlier, the value
+    // would lie 1.2 above the trend), so the message says which were tried
+    // and that the year is the thing to check.
+    assert_eq!(f["detail"]["causes"], serde_json::json!([]));
+    let no_cause = f["detail"]["no_cause"].as_str().unwrap();
+    assert!(
+        no_cause.contains("a year off by 1 or 10")
+            && no_cause.contains("its year lies far beyond the series' usual spacing"),
+        "{no_cause}"
+    );
 
     // The twin: the next quarter, slightly below the trend.
     assert_eq!(

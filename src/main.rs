@@ -731,7 +731,20 @@ mod commands {
                 return ExitCode::from(EXIT_STORE);
             }
         };
+        // What each slope is in, as the report and the overview say it.
+        let mut slope_units: std::collections::HashMap<String, String> = match store.series_glance()
+        {
+            Ok(glances) => glances
+                .iter()
+                .map(|g| (g.row.key.clone(), slopewarden::report::glance_slope_unit(g)))
+                .collect(),
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
         for r in &mut rows {
+            r.slope_unit = slope_units.remove(&r.series);
             r.min_detectable_relative_error = match (r.residual_sd, r.level) {
                 (Some(sd), Some(level)) => slopewarden::findings::rules::smallest_detectable_error(
                     r.n.max(0) as usize,
@@ -753,19 +766,37 @@ mod commands {
             );
             return ExitCode::SUCCESS;
         }
+        let unit_width = rows
+            .iter()
+            .filter_map(|r| r.slope_unit.as_ref())
+            .map(|u| u.chars().count())
+            .max()
+            .unwrap_or(0)
+            .max("slope in".len());
         println!(
-            "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9} {:>5} {:>8}  {:<22}  non-detects",
-            "series", "records", "ND", "n", "slope", "CI", "p", "open", "catches", "last arrival"
+            "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26}  {:<unit_width$} {:>9} {:>5} {:>8}  {:<22}  non-detects",
+            "series",
+            "records",
+            "ND",
+            "n",
+            "slope",
+            "CI",
+            "slope in",
+            "p",
+            "open",
+            "catches",
+            "last arrival"
         );
         for r in rows {
             println!(
-                "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26} {:>9} {:>5} {:>8}  {:<22}  {}",
+                "{:<32} {:>8} {:>4} {:>6} {:>12} {:>26}  {:<unit_width$} {:>9} {:>5} {:>8}  {:<22}  {}",
                 r.series,
                 r.records,
                 r.censored,
                 r.n,
                 opt(r.slope),
                 interval(r.slope_ci_low, r.slope_ci_high),
+                r.slope_unit.as_deref().unwrap_or("-"),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
                 r.open_findings,
                 r.min_detectable_relative_error.map_or("-".into(), |e| {

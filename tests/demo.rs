@@ -127,6 +127,27 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
     assert!(line_of("AB-MW1/nitrate ").contains(" ±"), "{status}");
     assert!(line_of("ABN-transect/lead ").contains(" ×/÷"), "{status}");
     assert!(!line_of("ABN-transect/lead ").contains('±'), "{status}");
+    // ... and what each slope is in: the records' unit per year for a
+    // well, per metre of distance on the ln(y) scale for a transect.
+    assert!(
+        line_of("AB-MW1/nitrate ").contains(" mg/L per year "),
+        "{status}"
+    );
+    assert!(
+        line_of("ABN-transect/lead ").contains(" ln(mg/kg) per m "),
+        "{status}"
+    );
+    let listed: Vec<Value> = serde_json::from_str(&run(&["status", "--json"])).unwrap();
+    let unit_of = |key: &str| {
+        listed
+            .iter()
+            .find(|s| s["series"] == key)
+            .map(|s| s["slope_unit"].clone())
+    };
+    assert_eq!(
+        unit_of("AB-MW3/trichloroethene"),
+        Some(Value::from("µg/L per year"))
+    );
 
     // `diagnostics` names a stored series' points by record id, on the
     // fitted scale (not by file line, as `fit` does for a file).

@@ -10,9 +10,8 @@
 use std::fmt::Write as _;
 
 use crate::report::{
-    STYLE, XMeasure, escape_html as html, html_number, level_text, opt_p, series_labels, sig,
+    STYLE, escape_html as html, glance_slope_unit, html_number, level_text, opt_p, sig,
 };
-use crate::stats::Transform;
 use crate::store::{MetricsSnapshot, OpenFinding, SeriesGlance};
 
 /// At most this many charts on the page: each reads its series' records.
@@ -90,30 +89,6 @@ pub struct Overview {
     /// The chart of each chosen series, in the same order: HTML from the
     /// report's renderer, which escapes everything from the store.
     pub charts: Vec<String>,
-}
-
-/// The slope unit of a series, from its transform, unit and the x range
-/// of its fit (decimal years when within 1800–2200, as the report reads
-/// it from the records).
-fn slope_unit(s: &SeriesGlance) -> String {
-    let transform = s
-        .fit
-        .as_ref()
-        .and_then(|f| Transform::from_name(&f.transform))
-        .or_else(|| Transform::from_name(&s.row.transform))
-        .unwrap_or_default();
-    let unit = s
-        .row
-        .unit
-        .as_deref()
-        .or(s.row.record_unit.as_deref())
-        .filter(|u| !u.trim().is_empty());
-    let x_is_year = s.fit.as_ref().is_some_and(|f| {
-        matches!((f.x_min, f.x_max), (Some(lo), Some(hi))
-            if (1800.0..=2200.0).contains(&lo) && (1800.0..=2200.0).contains(&hi))
-    });
-    let x = XMeasure::of(s.row.x_name.as_deref(), s.row.x_unit.as_deref(), x_is_year);
-    series_labels(transform, unit, x).slope_unit
 }
 
 fn num(v: Option<f64>) -> String {
@@ -230,7 +205,7 @@ fn series_table(out: &mut String, o: &Overview) {
             "<tr><td class=\"text\">{key}</td><td class=\"num n\">{n}</td><td class=\"num slope\">{slope}</td><td>{unit}</td><td class=\"num ci\">{ci}</td><td class=\"num p\">{p}</td><td class=\"num open\">{open}</td><td class=\"when\">{at}</td></tr>",
             n = f.map_or(0, |f| f.n),
             slope = num(f.and_then(|f| f.slope)),
-            unit = html(&slope_unit(s)),
+            unit = html(&glance_slope_unit(s)),
             ci = f.map_or("—".into(), |f| interval(
                 f.slope_ci_low,
                 f.slope_ci_high,

@@ -9,7 +9,7 @@ use globset::Glob;
 use crate::stats::Transform;
 use crate::store::{
     ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,
-    SeriesRowId, Store,
+    SeriesGlance, SeriesRowId, Store,
 };
 
 use super::ReportError;
@@ -283,6 +283,31 @@ pub fn labels(transform: Transform, unit: Option<&str>, x: XMeasure<'_>) -> Labe
             intercept,
         },
     }
+}
+
+/// The slope unit of a series, from its transform, unit and the x range
+/// of its fit (decimal years when within 1800–2200, as the report reads
+/// it from the records), read without touching its records: for the
+/// overview page and `status`.
+pub fn glance_slope_unit(s: &SeriesGlance) -> String {
+    let transform = s
+        .fit
+        .as_ref()
+        .and_then(|f| Transform::from_name(&f.transform))
+        .or_else(|| Transform::from_name(&s.row.transform))
+        .unwrap_or_default();
+    let unit = s
+        .row
+        .unit
+        .as_deref()
+        .or(s.row.record_unit.as_deref())
+        .filter(|u| !u.trim().is_empty());
+    let x_is_year = s.fit.as_ref().is_some_and(|f| {
+        matches!((f.x_min, f.x_max), (Some(lo), Some(hi))
+            if (1800.0..=2200.0).contains(&lo) && (1800.0..=2200.0).contains(&hi))
+    });
+    let x = XMeasure::of(s.row.x_name.as_deref(), s.row.x_unit.as_deref(), x_is_year);
+    labels(transform, unit, x).slope_unit
 }
 
 /// `text` with its first letter in capitals, for an axis title.

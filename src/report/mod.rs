@@ -35,7 +35,7 @@ pub use escape::{html as escape_html, spreadsheet_text};
 
 // For the HTTP overview page (`crate::http`), which shows the same
 // figures and charts as the report.
-pub(crate) use data::{XMeasure, labels as series_labels};
+pub use data::glance_slope_unit;
 pub(crate) use format::{html_number, level as level_text, opt_p, sig};
 pub(crate) use html::STYLE;
 

@@ -1093,6 +1093,9 @@ pub struct SeriesStatus {
     pub non_detects: String,
     /// Unit.
     pub unit: Option<String>,
+    /// What the slope and its interval are in, such as "mg/L per year" or
+    /// "ln(mg/kg) per m" (filled by the caller, as the report words it).
+    pub slope_unit: Option<String>,
 }
 
 /// A point of a series' current fit, for `diagnostics`.
@@ -1291,6 +1294,7 @@ impl Store {
                     residual_sd: r.get(14)?,
                     level: r.get(15)?,
                     min_detectable_relative_error: None,
+                    slope_unit: None,
                 })
             })
             .map_err(self.wrap())?;

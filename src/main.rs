@@ -987,7 +987,40 @@ mod commands {
                 "verdicts": verdicts,
             }));
         }
-        print!("{}", slopewarden::show::describe_finding(&row, &verdicts));
+        // A trend change one record caused: what became of that record.
+        let since = match (
+            row.series.as_deref(),
+            row.detail["newest_record"].as_str(),
+            row.detail["caused_by_newest_record"].as_bool(),
+        ) {
+            (Some(series), Some(record), Some(true)) => {
+                let read =
+                    || -> Result<slopewarden::show::Since, slopewarden::store::StoreError> {
+                        let mut about_record = Vec::new();
+                        for g in store.record_findings_of(series, record)? {
+                            let vs = store.verdicts(Some(g.id))?;
+                            about_record.push((g, vs));
+                        }
+                        let current = store.history(series)?.and_then(|mut h| h.pop());
+                        Ok(slopewarden::show::Since {
+                            about_record,
+                            current,
+                        })
+                    };
+                match read() {
+                    Ok(s) => Some(s),
+                    Err(e) => {
+                        eprintln!("slopewarden: {e}");
+                        return ExitCode::from(EXIT_STORE);
+                    }
+                }
+            }
+            _ => None,
+        };
+        print!(
+            "{}",
+            slopewarden::show::describe_finding(&row, &verdicts, since.as_ref())
+        );
         ExitCode::SUCCESS
     }
 

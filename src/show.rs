@@ -7,7 +7,29 @@ use std::fmt::Write;
 use serde_json::Value;
 
 use crate::raise::CAUTION;
-use crate::store::{FindingRow, VerdictRow};
+use crate::store::{FindingRow, FitHistoryRow, VerdictRow};
+
+/// What became, since a trend finding was raised, of the record it hinged
+/// on: read by the caller for a finding whose change the newest record
+/// alone caused.
+#[derive(Debug, Clone, Default)]
+pub struct Since {
+    /// The record findings about that record, each with its verdicts,
+    /// oldest first.
+    pub about_record: Vec<(FindingRow, Vec<VerdictRow>)>,
+    /// The series' current fit.
+    pub current: Option<FitHistoryRow>,
+}
+
+/// The verdict that set a closed finding's status (the newest of that
+/// name), if any.
+fn deciding(f: &FindingRow, verdicts: &[VerdictRow]) -> Option<VerdictRow> {
+    verdicts
+        .iter()
+        .rev()
+        .find(|v| v.verdict == f.status && v.reverts.is_none())
+        .cloned()
+}
 
 fn num(v: &Value) -> String {
     match v.as_f64() {
@@ -37,8 +59,9 @@ fn fit_line(label: &str, f: &Value) -> String {
     )
 }
 
-/// The finding as text, with its verdicts.
-pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
+/// The finding as text, with its verdicts; for a trend finding caused by
+/// one record, what became of that record since (`since`).
+pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&Since>) -> String {
     let d = &f.detail;
     let mut o = String::new();
     let _ = writeln!(
@@ -189,6 +212,54 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
     if let Some(a) = d["sampling_advice"].as_str() {
         let _ = writeln!(o, "\nsampling advice\n  {a}");
     }
+    // A trend change one record caused: has that record been answered?
+    let mut settled_by: Option<(i64, VerdictRow)> = None;
+    if let (Some(since), Some(record)) = (since, d["newest_record"].as_str()) {
+        let _ = writeln!(o, "\nsince then");
+        if since.about_record.is_empty() {
+            let _ = writeln!(o, "  no finding about record {record}");
+        }
+        for (g, vs) in &since.about_record {
+            match deciding(g, vs) {
+                Some(v) => {
+                    let _ = writeln!(
+                        o,
+                        "  finding {} about record {record}: {} by verdict {}{} (by {}: {})",
+                        g.id,
+                        g.status,
+                        v.id,
+                        v.value.map_or(String::new(), |x| format!(", to {x}")),
+                        v.by,
+                        v.note
+                    );
+                    if matches!(v.verdict.as_str(), "corrected" | "excluded") {
+                        settled_by = Some((g.id, v));
+                    }
+                }
+                None => {
+                    let _ = writeln!(
+                        o,
+                        "  finding {} about record {record}: {}, no verdict yet",
+                        g.id, g.status
+                    );
+                }
+            }
+        }
+        if let Some(c) = &since.current {
+            let v = |x: Option<f64>| num(&x.map_or(Value::Null, Value::from));
+            let _ = writeln!(
+                o,
+                "  the series now, fit version {}: slope {} [{}, {}]  p = {}  n = {}",
+                c.version,
+                v(c.slope),
+                v(c.slope_ci_low),
+                v(c.slope_ci_high),
+                p_text(&c.slope_p.map_or(Value::Null, Value::from)),
+                c.n
+            );
+        }
+    }
+
     let _ = writeln!(o, "\nverdicts");
     if verdicts.is_empty() {
         let _ = writeln!(o, "  none yet");
@@ -206,7 +277,13 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow]) -> String {
             v.note
         );
     }
-    if f.status == "open" && !r.is_object() {
+    if let (true, Some((finding, v))) = (f.status == "open", &settled_by) {
+        let _ = writeln!(
+            o,
+            "\nthe record this change hinged on has been {}; compare the series now (above) with the change, then close this finding:\n  slopewarden review {} --verdict confirmed --note \"caused by the record of finding {finding}, {} by verdict {}\"",
+            v.verdict, f.id, v.verdict, v.id
+        );
+    } else if f.status == "open" && !r.is_object() {
         let _ = writeln!(
             o,
             "\nthis finding concerns no single record; once it has been looked into:\n  slopewarden review {} --verdict confirmed --note \"...\"",
@@ -259,7 +336,7 @@ mod tests {
             "fit_without": {"slope": 0.1, "slope_ci_low": -0.1, "slope_ci_high": 0.3, "slope_p": 0.3, "n": 22, "intercept": 1.0},
             "causes": [{"label": "decimal point slipped 1 place: 4.1 mg/L instead of 41 mg/L", "prediction_t": 0.3, "p": 0.76, "y": 4.1}],
         });
-        let open = describe_finding(&row("open", d.clone()), &[]);
+        let open = describe_finding(&row("open", d.clone()), &[], None);
         for want in [
             "record Q-17  (march.csv line 12)",
             "x = 2025.5  y = 41 mg/L",
@@ -284,7 +361,7 @@ mod tests {
             by: "A. Ruiz".into(),
             at: "2026-03-02T00:00:00Z".into(),
         };
-        let closed = describe_finding(&row("corrected", d), &[v]);
+        let closed = describe_finding(&row("corrected", d), &[v], None);
         assert!(
             closed.contains("verdict 3: corrected to 4.1 by A. Ruiz: lab report"),
             "{closed}"
@@ -295,7 +372,11 @@ mod tests {
 
     #[test]
     fn a_finding_without_a_record_offers_only_confirmed() {
-        let text = describe_finding(&row("open", json!({"change": "the trend reversed"})), &[]);
+        let text = describe_finding(
+            &row("open", json!({"change": "the trend reversed"})),
+            &[],
+            None,
+        );
         assert!(text.contains("--verdict confirmed"), "{text}");
         assert!(!text.contains("--verdict excluded"), "{text}");
     }

@@ -906,6 +906,21 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
     let (site, found) = reversed_by_a_far_record();
     let reversal = first_of_kind(&found, "sign_reversal");
     let record = finding_about(&found, "Q031");
+    let show = |id: &Value| -> String {
+        let out = site.command(&["show", &id.to_string()]).output().unwrap();
+        assert!(out.status.success());
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    let before = show(&reversal["id"]);
+    // A p-value far below 0.001 is said so, not rounded to "p = 0.000".
+    assert!(before.contains("-0.1025 now (p < 0.001)"), "{before}");
+    assert!(
+        before.contains(&format!(
+            "since then\n  finding {} about record Q031: open, no verdict yet",
+            record["id"]
+        )),
+        "{before}"
+    );
     let out = site
         .command(&[
             "review",
@@ -947,6 +962,31 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
         )
         .unwrap();
     assert_eq!(status, "open");
+    // `show` of the reversal now says what became of the record, the
+    // series' refit without it, and how to close the reversal.
+    let after = show(&reversal["id"]);
+    // Without Q031 the series is the gentle one again (R 4.2.2,
+    // summary(lm): p = 6.5e-12).
+    assert!(
+        after.contains(
+            "the series now, fit version 3: slope 0.208 [0.1702, 0.2458]  p = 6.516e-12  n = 30"
+        ),
+        "{after}"
+    );
+    assert!(
+        after.contains(&format!(
+            "finding {} about record Q031: excluded by verdict 1",
+            record["id"]
+        )),
+        "{after}"
+    );
+    assert!(
+        after.contains(&format!(
+            "slopewarden review {} --verdict confirmed --note \"caused by the record of finding {}, excluded by verdict 1\"",
+            reversal["id"], record["id"]
+        )),
+        "{after}"
+    );
 }
 
 #[test]

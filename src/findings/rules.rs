@@ -509,13 +509,18 @@ pub fn judge_trend(
     if n < t.min_n_trend || prev_n < t.min_n_trend {
         return (now_sig, out);
     }
-    let p_text = |p: Option<f64>| p.map_or("undefined".to_string(), |p| format!("{p:.3}"));
+    // "p = 0.128", or "p < 0.001" where three decimals would read 0.000.
+    let p_text = |p: Option<f64>| match p {
+        None => "p undefined".to_string(),
+        Some(p) if p < 0.001 => "p < 0.001".to_string(),
+        Some(p) => format!("p = {p:.3}"),
+    };
     if prev_sig && prev_slope.signum() != new_fit.slope.signum() && new_fit.slope != 0.0 {
         let caused = without_newest.map(|(s, _)| s.signum() == prev_slope.signum());
         out.push(TrendChange {
             kind: "sign_reversal",
             summary: format!(
-                "the slope changed sign: {prev_slope:.4} before, {:.4} now (p = {})",
+                "the slope changed sign: {prev_slope:.4} before, {:.4} now ({})",
                 new_fit.slope,
                 p_text(new_fit.slope_p)
             ),
@@ -529,14 +534,14 @@ pub fn judge_trend(
             kind: "significance_change",
             summary: if now_sig {
                 format!(
-                    "the trend became significant: p = {} < {} (it stops being so only above {})",
+                    "the trend became significant: {}, below {} (it stops being so only above {})",
                     p_text(new_fit.slope_p),
                     t.significance_alpha,
                     t.release_alpha
                 )
             } else {
                 format!(
-                    "the trend is no longer significant: p = {} > {}",
+                    "the trend is no longer significant: {}, above {}",
                     p_text(new_fit.slope_p),
                     t.release_alpha
                 )

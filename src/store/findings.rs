@@ -361,6 +361,24 @@ impl Store {
             .map_err(self.wrap())
     }
 
+    /// The record findings about `record_id` in `series` (any version of
+    /// the record), oldest first: what `show` reports of the record a trend
+    /// finding hinged on.
+    pub fn record_findings_of(&self, series: &str, record_id: &str) -> Result<Vec<FindingRow>> {
+        let mut stmt = self
+            .conn
+            .prepare(&format!(
+                "{FINDING_SELECT} WHERE s.key = ?1 AND g.record_row IS NOT NULL
+                   AND EXISTS (SELECT 1 FROM json_each(g.record_ids) WHERE value = ?2)
+                 ORDER BY g.id"
+            ))
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map(params![series, record_id], finding_row)
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
     /// Pending messages due at `now_unix`, oldest first.
     pub fn due_messages(&self, now_unix: i64, limit: usize) -> Result<Vec<OutboxMessage>> {
         let mut stmt = self

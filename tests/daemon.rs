@@ -464,7 +464,8 @@ fn malformed_files_are_set_aside_while_the_daemon_stays_up_and_good_files_are_st
 fn the_robust_slope_kept_between_files_equals_one_computed_from_the_store() {
     let site = Site::new();
     // One ingest run over three files, so the writer's cached points are
-    // used at the n = 16 checkpoint (first computed at n = 8).
+    // used at the second and third refits (a series this short has its
+    // robust slope recomputed at every refit).
     site.drop_file("f1.csv", &well_file(1, &quarterly(8, 0)));
     site.drop_file("f2.csv", &well_file(9, &quarterly(4, 8)));
     site.drop_file("f3.csv", &well_file(13, &quarterly(6, 12)));
@@ -472,11 +473,9 @@ fn the_robust_slope_kept_between_files_equals_one_computed_from_the_store() {
     let out = site.cmd(&["history", "MW-01/nitrate", "--json"]);
     let h: Value = serde_json::from_slice(&out.stdout).unwrap();
     let versions = h.as_array().unwrap();
-    assert!(
-        versions[0]["theil_sen_slope"].is_number(),
-        "first checkpoint at n = 8: {:?}",
-        versions[0]
-    );
+    for v in versions {
+        assert!(v["theil_sen_slope"].is_number(), "{v:?}");
+    }
     let last = versions.last().unwrap().clone();
     assert_eq!(last["n"], 18);
     let kept = last["theil_sen_slope"]
@@ -486,6 +485,65 @@ fn the_robust_slope_kept_between_files_equals_one_computed_from_the_store() {
     let d: Value = serde_json::from_slice(&out.stdout).unwrap();
     let fresh = d["robust"]["theil_sen_slope"].as_f64().unwrap();
     assert_eq!(kept, fresh);
+}
+
+#[test]
+fn the_robust_slope_is_recomputed_at_every_refit_up_to_100_points_then_as_the_series_doubles() {
+    let site = Site::new();
+    // Monthly from 1990, falling gently (quarterly readings would run into
+    // the future and below zero): 60, 90, 110, 180 and 190 points after
+    // each file.
+    let monthly = |n: usize, start: usize| -> Vec<(f64, f64)> {
+        (start..start + n)
+            .map(|k| {
+                let t = 1990.0 + k as f64 / 12.0;
+                (
+                    t,
+                    12.0 - 0.2 * (t - 1990.0) + if k % 2 == 0 { 0.3 } else { -0.25 },
+                )
+            })
+            .collect()
+    };
+    site.drop_file("f1.csv", &well_file(1, &monthly(60, 0)));
+    site.drop_file("f2.csv", &well_file(61, &monthly(30, 60)));
+    site.drop_file("f3.csv", &well_file(91, &monthly(20, 90)));
+    site.drop_file("f4.csv", &well_file(111, &monthly(70, 110)));
+    site.drop_file("f5.csv", &well_file(181, &monthly(10, 180)));
+    assert!(site.ingest_inbox().status.success());
+    let out = site.cmd(&["history", "MW-01/nitrate", "--json"]);
+    let h: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let versions = h.as_array().unwrap();
+    let computed: Vec<(i64, bool)> = versions
+        .iter()
+        .map(|v| (v["n"].as_i64().unwrap(), v["theil_sen_slope"].is_number()))
+        .collect();
+    // At 110 points the series has not doubled since 90: the robust slope
+    // waits, and the version says so; at 180 it has; at 190 it waits.
+    assert_eq!(
+        computed,
+        [
+            (60, true),
+            (90, true),
+            (110, false),
+            (180, true),
+            (190, false)
+        ]
+    );
+    assert_eq!(
+        versions[2]["note"],
+        "robust slope not recomputed at this version (last at n = 90)"
+    );
+    // The report shows the one computed at 180 points, and says so.
+    let report = site.path("report.html");
+    let out = site.cmd(&["report", "--out", report.to_str().unwrap()]);
+    assert!(out.status.success());
+    let html = std::fs::read_to_string(&report).unwrap();
+    assert!(
+        html.contains(
+            "(as of version 4, n = 180; past 100 points, recomputed each time the series doubles)"
+        ),
+        "{html}"
+    );
 }
 
 #[test]

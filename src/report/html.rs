@@ -437,8 +437,9 @@ fn series_section(out: &mut String, s: &SeriesData) {
     out.push_str("</dl>\n");
 
     if let Some(f) = fit {
-        // The robust slope is recomputed as a series doubles; between
-        // times, the newest computed one is shown with its version.
+        // Past ROBUST_EVERY_REFIT_UP_TO points the robust slope is
+        // recomputed as a series doubles; between times, the newest
+        // computed one is shown with its version.
         let robust = s
             .fits
             .iter()
@@ -632,8 +633,10 @@ fn as_of(robust: &ReportFitRow, current: &ReportFitRow) -> String {
         String::new()
     } else {
         format!(
-            " <span class=\"muted aside\">(as of version {}, n = {}; recomputed when the series doubles)</span>",
-            robust.version, robust.n
+            " <span class=\"muted aside\">(as of version {}, n = {}; past {} points, recomputed each time the series doubles)</span>",
+            robust.version,
+            robust.n,
+            crate::pipeline::ROBUST_EVERY_REFIT_UP_TO
         )
     }
 }

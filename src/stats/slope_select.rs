@@ -310,8 +310,8 @@ impl SlopeSelector {
         targets.dedup();
         let found = if self.pairs <= tuning.list_at_most {
             let mut all = self.all_slopes();
-            sort_floats(&mut all);
-            targets.iter().map(|&k| all[k as usize]).collect()
+            let ranks: Vec<usize> = targets.iter().map(|&k| k as usize).collect();
+            select_sorted_ranks(&mut all, &ranks)
         } else {
             self.contract(&targets, tuning)
         };
@@ -611,9 +611,12 @@ impl SlopeSelector {
                         slopes.select_nth_unstable_by(r, f64::total_cmp);
                         answers[ti] = Some(slopes[r]);
                     } else {
-                        sort_floats(&mut slopes);
-                        for &ti in tis {
-                            answers[ti] = Some(slopes[rank(ti)]);
+                        // `tis` follow `targets`, which are sorted, so the
+                        // ranks are too.
+                        let ranks: Vec<usize> = tis.iter().map(|&ti| rank(ti)).collect();
+                        let found = select_sorted_ranks(&mut slopes, &ranks);
+                        for (&ti, v) in tis.iter().zip(found) {
+                            answers[ti] = Some(v);
                         }
                     }
                     continue;
@@ -766,6 +769,26 @@ fn point_of(lo: &[usize], tagged: bool, v: u64) -> usize {
 
 /// Sorts f64 values (finite, no -0.0) through their integer keys, which is
 /// faster than comparing floats.
+/// The values of ascending 0-based `ranks` (repeats allowed, each below
+/// `v.len()`) in `v` sorted by `f64::total_cmp`, without sorting all of
+/// `v`: each rank is selected in the part right of the one before (O(len)
+/// per rank instead of O(len log len) for the sort). `v` is reordered.
+fn select_sorted_ranks(v: &mut [f64], ranks: &[usize]) -> Vec<f64> {
+    let mut out = Vec::with_capacity(ranks.len());
+    let mut from = 0;
+    for &r in ranks {
+        if r >= from {
+            let (_, nth, _) = v[from..].select_nth_unstable_by(r - from, f64::total_cmp);
+            out.push(*nth);
+            from = r + 1;
+        } else {
+            // A repeat of the rank just selected (ranks ascend).
+            out.push(v[r]);
+        }
+    }
+    out
+}
+
 fn sort_floats(v: &mut [f64]) {
     let mut keys: Vec<u64> = v.iter().map(|&f| sortable_bits(f)).collect();
     keys.sort_unstable();

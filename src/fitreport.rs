@@ -262,15 +262,21 @@ impl FitReport {
     pub fn write_text(&self, out: &mut impl Write) -> io::Result<()> {
         let f = &self.fit;
         let pct = (f.level * 100.0).round();
-        writeln!(
-            out,
-            "{}  ({} points, {} on {}, scale: {})",
-            self.source,
-            f.n,
-            self.y_name,
-            self.x_name,
-            scale_words(self.transform)
-        )?;
+        if self.record_ids.is_some() {
+            // A stored series: its points come already on the fitted
+            // scale, which the source line names.
+            writeln!(out, "{}  ({} points)", self.source, f.n)?;
+        } else {
+            writeln!(
+                out,
+                "{}  ({} points, {} on {}, scale: {})",
+                self.source,
+                f.n,
+                self.y_name,
+                self.x_name,
+                scale_words(self.transform)
+            )?;
+        }
         writeln!(out)?;
         writeln!(out, "Least-squares trend")?;
         let slope_line = format!(

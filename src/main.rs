@@ -839,8 +839,19 @@ mod commands {
             y_column: 2,
         };
         let scale = Transform::from_name(&row.transform).unwrap_or_default();
+        let fitted = match scale {
+            Transform::None => "y on x, no transform",
+            Transform::LogY => "ln y on x",
+            Transform::LogX => "y on ln x",
+            Transform::LogLog => "ln y on ln x",
+        };
+        let slope_unit = match slope_unit_of(&store, series) {
+            Ok(u) => u,
+            Err(code) => return code,
+        };
         let source = format!(
-            "series {series} (fitted scale: {scale}; non-detects: {})",
+            "series {series} (fitted: {fitted}{}; non-detects: {})",
+            slope_unit.map_or(String::new(), |u| format!("; slope in {u}")),
             row.non_detects
         );
         let report = match analyse(&source, "x", "y", columns, Transform::None, config.level) {
@@ -1288,6 +1299,20 @@ mod commands {
         }
     }
 
+    /// What a series' slope is in, as `status` and the report say it.
+    fn slope_unit_of(store: &Store, series: &str) -> Result<Option<String>, ExitCode> {
+        match store.series_glance() {
+            Ok(glances) => Ok(glances
+                .iter()
+                .find(|g| g.row.key == series)
+                .map(slopewarden::report::glance_slope_unit)),
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                Err(ExitCode::from(EXIT_STORE))
+            }
+        }
+    }
+
     pub fn history(config: Option<&Path>, series: &str, json: bool) -> ExitCode {
         let (_, store) = match setup(config) {
             Ok(v) => v,
@@ -1307,18 +1332,25 @@ mod commands {
         if json {
             return print_json(&rows);
         }
+        match slope_unit_of(&store, series) {
+            Ok(Some(unit)) => println!("series {series}: slopes in {unit}"),
+            Ok(None) => {}
+            Err(code) => return code,
+        }
         println!(
-            "{:>7} {:>6} {:>12} {:>26} {:>9}  {:<20}  trigger",
-            "version", "n", "slope", "CI", "p", "at"
+            "{:>7} {:>6} {:>12} {:>26} {:>9} {:>12}  {:<20}  trigger",
+            "version", "n", "slope", "CI", "p", "Theil-Sen", "at"
         );
         for r in rows {
             println!(
-                "{:>7} {:>6} {:>12} {:>26} {:>9}  {:<20}  {}",
+                "{:>7} {:>6} {:>12} {:>26} {:>9} {:>12}  {:<20}  {}",
                 r.version,
                 r.n,
                 opt(r.slope),
                 interval(r.slope_ci_low, r.slope_ci_high),
                 r.slope_p.map_or("-".into(), |p| format!("{p:.2e}")),
+                // "-" where it was not recomputed at that version.
+                opt(r.theil_sen_slope),
                 r.created_at,
                 match (&r.trigger_file, &r.trigger_verdict) {
                     _ if r.trigger_window.is_some() => format!(

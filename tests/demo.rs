@@ -162,6 +162,30 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
             .any(|l| l.trim_start().starts_with("ABN-transect-PB99 ")),
         "{diagnostics}"
     );
+    assert!(
+        diagnostics.starts_with(
+            "series ABN-transect/lead (fitted: ln y on x; slope in ln(mg/kg) per m; non-detects: exclude)"
+        ),
+        "{diagnostics}"
+    );
+
+    // `history` gives every version's least-squares and robust slopes: the
+    // decimal slip turned the least-squares slope of AB-MW2/nitrate
+    // upwards at version 2, while the median of pairwise slopes, which one
+    // point cannot drag far, kept falling.
+    let history = run(&["history", "AB-MW2/nitrate"]);
+    assert!(
+        history.starts_with("series AB-MW2/nitrate: slopes in mg/L per year\n"),
+        "{history}"
+    );
+    let second: Vec<&str> = history
+        .lines()
+        .find(|l| l.trim_start().starts_with("2 "))
+        .unwrap_or_else(|| panic!("{history}"))
+        .split_whitespace()
+        .collect();
+    let (slope, theil_sen): (f64, f64) = (second[2].parse().unwrap(), second[6].parse().unwrap());
+    assert!(slope > 0.0 && theil_sen < 0.0, "{history}");
 
     // The correct extreme beside the kiln wall and the non-detect raise nothing.
     assert!(about("ABN-transect-LE01").is_none());

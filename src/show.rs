@@ -236,10 +236,17 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
                         settled_by = Some((g.id, v));
                     }
                 }
-                None => {
+                None if vs.is_empty() => {
                     let _ = writeln!(
                         o,
                         "  finding {} about record {record}: {}, no verdict yet",
+                        g.id, g.status
+                    );
+                }
+                None => {
+                    let _ = writeln!(
+                        o,
+                        "  finding {} about record {record}: {} again, its verdict reverted",
                         g.id, g.status
                     );
                 }
@@ -368,6 +375,70 @@ mod tests {
         );
         assert!(closed.contains("--revert"), "{closed}");
         assert!(!closed.contains("--verdict excluded"), "{closed}");
+    }
+
+    #[test]
+    fn a_trend_finding_follows_the_record_it_hinged_on_through_its_verdicts() {
+        let trend = FindingRow {
+            id: 8,
+            record_ids: vec![],
+            kinds: vec!["sign_reversal".into()],
+            ..row(
+                "open",
+                json!({"change": "the slope changed sign", "newest_record": "Q-17", "caused_by_newest_record": true}),
+            )
+        };
+        let verdict = |id: i64, verdict: &str, reverts: Option<i64>| VerdictRow {
+            id,
+            finding: 7,
+            verdict: verdict.into(),
+            record_row: Some(17),
+            new_record_row: None,
+            value: None,
+            reverts,
+            note: "lab report".into(),
+            by: "A. Ruiz".into(),
+            at: "2026-03-02T00:00:00Z".into(),
+        };
+        let since = |status: &str, verdicts: Vec<VerdictRow>| Since {
+            about_record: vec![(row(status, json!({})), verdicts)],
+            current: None,
+        };
+        let waiting = describe_finding(&trend, &[], Some(&since("open", vec![])));
+        assert!(
+            waiting.contains("finding 7 about record Q-17: open, no verdict yet"),
+            "{waiting}"
+        );
+        assert!(!waiting.contains("caused by the record"), "{waiting}");
+        let excluded = describe_finding(
+            &trend,
+            &[],
+            Some(&since("excluded", vec![verdict(1, "excluded", None)])),
+        );
+        assert!(
+            excluded.contains("finding 7 about record Q-17: excluded by verdict 1 (by A. Ruiz: lab report)")
+                && excluded.contains(
+                    "slopewarden review 8 --verdict confirmed --note \"caused by the record of finding 7, excluded by verdict 1\""
+                ),
+            "{excluded}"
+        );
+        // Reverted: open again, and nothing to close the trend finding with.
+        let reverted = describe_finding(
+            &trend,
+            &[],
+            Some(&since(
+                "open",
+                vec![
+                    verdict(1, "excluded", None),
+                    verdict(2, "reverted", Some(1)),
+                ],
+            )),
+        );
+        assert!(
+            reverted.contains("finding 7 about record Q-17: open again, its verdict reverted"),
+            "{reverted}"
+        );
+        assert!(!reverted.contains("caused by the record"), "{reverted}");
     }
 
     #[test]

@@ -221,6 +221,7 @@ fn report_short_of_space(config: &Config, store: &mut Store, folder: &Path, free
                 "judged_against": "the free space wanted before a file is taken",
             }),
             (None, None),
+            None,
             &at,
             crate::clock::unix_seconds(now),
         )?;
@@ -538,6 +539,7 @@ pub fn check_silent_feeds(
                 "rule": "no file for longer than the feed's expected_every_days (configuration)",
                 "judged_against": "the feed's expected delivery interval" }),
             (None, None),
+            None,
             &at,
             crate::clock::unix_seconds(now),
         )?;

@@ -1131,6 +1131,7 @@ fn quarantine_whole(
         serde_json::json!({ "reason": reason, "caution": raise::CAUTION,
             "judged_against": "the file format the feed expects" }),
         (None, None),
+        None,
         at,
         clock::unix_seconds(now),
     )?;
@@ -2596,6 +2597,7 @@ fn raise_findings(
             &p.summary,
             serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION }),
             (None, None),
+            None,
             at,
             now_unix,
         )?;
@@ -2635,6 +2637,7 @@ fn raise_findings(
             serde_json::json!({ "rows": rows, "caution": raise::CAUTION,
                 "judged_against": "the validation rules of the series (see the configuration)" }),
             (None, None),
+            None,
             at,
             now_unix,
         )?;
@@ -2653,6 +2656,7 @@ fn raise_findings(
             before.as_ref(),
             after,
             (t.last_id.as_deref(), t.unit.as_deref()),
+            t.robust,
             at,
             now_unix,
         )?;

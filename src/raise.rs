@@ -12,7 +12,9 @@ use serde_json::json;
 use crate::config::{Config, SeriesSettings};
 use crate::findings::advice::{AdviceInput, advise};
 use crate::findings::causes::{Candidate, CauseInput, Change, XKind, rank_causes};
-use crate::findings::rules::{CutoffSource, Measured, RecordJudgement, RecordKind, TrendChange};
+use crate::findings::rules::{
+    CutoffSource, Measured, RecordJudgement, RecordKind, Thresholds, TrendChange,
+};
 use crate::messages::{
     Cause, ChartPoint, FindingKind, FitSummary, Flag, Notice, PointRole, RecordInfo, Rendered,
     RobustSlope, Severity, render_notice, render_notice_heading,
@@ -330,6 +332,7 @@ pub fn record_finding(
             x: x_raw.clone(),
             y: y_raw.clone(),
         }),
+        trend_record: None,
         unit,
         x_label,
         x_unit,
@@ -382,6 +385,7 @@ pub fn plain_finding(
     summary: &str,
     detail: serde_json::Value,
     fits: (Option<&LineFit>, Option<&LineFit>),
+    robust: Option<(f64, f64, f64)>,
     at: &str,
     now_unix: i64,
 ) -> Result<i64> {
@@ -435,6 +439,10 @@ pub fn plain_finding(
                 .map_or_else(String::new, |f| format!("feed {f}")),
         },
         record: None,
+        trend_record: (detail.get("caused_by_newest_record") == Some(&json!(true)))
+            .then(|| detail.get("newest_record").and_then(|v| v.as_str()))
+            .flatten()
+            .map(str::to_string),
         unit,
         x_label,
         x_unit,
@@ -442,7 +450,13 @@ pub fn plain_finding(
         kinds: Vec::new(),
         flags: vec![Flag {
             kind: FindingKind::from_name(kind).unwrap_or(FindingKind::Quarantined),
-            measure: summary.to_string(),
+            // A trend change says what changed; the kind and series are
+            // already in the flag's name and the message's first line.
+            measure: detail
+                .get("flag")
+                .and_then(|v| v.as_str())
+                .unwrap_or(summary)
+                .to_string(),
             value: None,
             cutoff: None,
             cutoff_source: detail
@@ -455,7 +469,10 @@ pub fn plain_finding(
         fit_without: fits.1.map(summary_of),
         ci_level: config.level,
         scale_note,
-        robust: None,
+        robust: robust.map(|(s, a, b)| RobustSlope {
+            slope: s,
+            ci: Some((a, b)),
+        }),
         judged_against: detail
             .get("judged_against")
             .and_then(|v| v.as_str())
@@ -468,7 +485,10 @@ pub fn plain_finding(
         points: Vec::new(),
         line_with: Vec::new(),
         line_without: Vec::new(),
-        verdict_commands: verdict_commands(id),
+        // No single record: `review` takes only "confirmed" here.
+        verdict_commands: vec![format!(
+            "slopewarden review {id} --verdict confirmed --note \"...\""
+        )],
         created_at: at.to_string(),
     };
     queue(
@@ -494,6 +514,7 @@ pub fn trend_finding(
     before: Option<&LineFit>,
     after: &LineFit,
     (newest, unit): (Option<&str>, Option<&str>),
+    robust: Option<(f64, f64, f64)>,
     at: &str,
     now_unix: i64,
 ) -> Result<i64> {
@@ -517,8 +538,11 @@ pub fn trend_finding(
         "unit": unit,
         "fit_before": before.map(FitDetail::of),
         "fit_after": FitDetail::of(after),
-        "rule": format!("becomes significant below p = {}, stops above p = {}, from n = {} (hysteresis; project defaults)",
-            config.findings.significance_alpha, config.findings.release_alpha, config.findings.min_n_trend),
+        "flag": format!("{}.{cause}", change.summary),
+        "rule": trend_rule(
+            change.kind,
+            &config.series_settings(&SeriesId(series.key.clone())).findings
+        ),
         "judged_against": "the previous fit version of the series",
         "caution": CAUTION,
     });
@@ -533,9 +557,23 @@ pub fn trend_finding(
         &summary,
         detail,
         (Some(after), before),
+        robust,
         at,
         now_unix,
     )
+}
+
+/// The rule a trend change was raised by, in words.
+fn trend_rule(kind: &str, f: &Thresholds) -> String {
+    let significance = format!(
+        "a trend counts as significant once p < {}, and stays so until p > {} (hysteresis), from n = {}; project defaults",
+        f.significance_alpha, f.release_alpha, f.min_n_trend
+    );
+    if kind == "sign_reversal" {
+        format!("raised when a significant trend's slope changes sign: {significance}")
+    } else {
+        significance
+    }
 }
 
 /// What a message calls x: "year" for decimal years (the renderer's cue

@@ -1005,6 +1005,39 @@ fn a_trend_message_states_its_slopes_in_the_series_unit_per_year() {
         body.contains("The trend now and in the fit it is compared with"),
         "{body}"
     );
+    // The far record makes 30 of the 465 pairwise slopes; the other 435
+    // are those of the rising series, so their median (Theil-Sen) stays
+    // positive while least squares turned negative, and the message says
+    // the two disagree.
+    let robust = body
+        .split("Robust slope (Theil–Sen, median of pairwise slopes): ")
+        .nth(1)
+        .and_then(|r| r.split(',').next())
+        .unwrap_or_else(|| panic!("{body}"));
+    assert!(robust.parse::<f64>().unwrap() > 0.0, "{body}");
+    assert!(
+        body.contains("The robust slope and the least-squares slope point in opposite directions"),
+        "{body}"
+    );
+    // What to check names the record that alone causes the change, and the
+    // only verdict offered is the one `review` takes for a trend finding.
+    assert!(
+        body.contains("For record Q031, the newest, which alone causes this change"),
+        "{body}"
+    );
+    let id = reversal["id"].to_string();
+    assert!(
+        body.contains(&format!(
+            "slopewarden review {id} --verdict confirmed --note \"...\""
+        )),
+        "{body}"
+    );
+    assert!(!body.contains("--verdict corrected"), "{body}");
+    let refused = site
+        .command(&["review", &id, "--verdict", "excluded", "--note", "x"])
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
 }
 
 #[test]

@@ -56,6 +56,7 @@ fn notice(finding_id: i64) -> Notice {
             x: "2031-07-02".into(),
             y: "11.6".into(),
         }),
+        trend_record: None,
         unit: "mg/L".into(),
         x_label: "year".into(),
         x_unit: String::new(),

@@ -226,6 +226,9 @@ pub struct Notice {
     /// The record under check; `None` for trend-level findings (a feed gone
     /// quiet, a sign change over several files).
     pub record: Option<RecordInfo>,
+    /// For a trend change that the newest record alone causes, that
+    /// record's id: what to check first.
+    pub trend_record: Option<String>,
     /// The unit of y, e.g. `mg/L`.
     pub unit: String,
     /// What x is, e.g. `year` or `distance from the source`.
@@ -561,6 +564,16 @@ fn slope_unit_sentence(n: &Notice) -> String {
     }
 }
 
+/// A sentence when the robust slope and the least-squares slope (with the
+/// record, or now) point in opposite directions: the least-squares trend
+/// then rests on a few records.
+fn robust_disagrees(n: &Notice) -> Option<&'static str> {
+    let (r, f) = (n.robust.as_ref()?, n.fit_with.as_ref()?);
+    (r.slope * f.slope < 0.0).then_some(
+        "The robust slope and the least-squares slope point in opposite directions: the least-squares trend rests on a few records.",
+    )
+}
+
 fn robust_sentence(r: &RobustSlope) -> String {
     match r.ci {
         Some(ci) => format!(
@@ -572,6 +585,15 @@ fn robust_sentence(r: &RobustSlope) -> String {
             "Robust slope (Theil–Sen, median of pairwise slopes): {}.",
             num(r.slope)
         ),
+    }
+}
+
+/// The line before the verdict commands.
+fn verdict_lead(n: &Notice) -> &'static str {
+    if n.record.is_some() {
+        "Run one of these once the record is checked:"
+    } else {
+        "This finding concerns no single record; once it has been looked into, close it with:"
     }
 }
 
@@ -747,6 +769,9 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
     if let Some(r) = &n.robust {
         t.push_str(&wrap(&robust_sentence(r), TEXT_WIDTH, ""));
     }
+    if let Some(note) = robust_disagrees(n) {
+        t.push_str(&wrap(note, TEXT_WIDTH, ""));
+    }
     if let Some(problem) = chart_problem {
         t.push_str(&wrap(
             &format!("(No chart this time: {problem}.)"),
@@ -783,6 +808,15 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
             TEXT_WIDTH,
             "",
         ));
+    } else if let Some(id) = &n.trend_record {
+        t.push_str(&wrap(
+            &format!(
+                "For record {}, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:",
+                inline(id, FIELD_CHARS)
+            ),
+            TEXT_WIDTH,
+            "",
+        ));
     } else {
         t.push_str("For the latest records of this series, look at:\n");
     }
@@ -800,7 +834,7 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
 
     if !n.verdict_commands.is_empty() {
         heading(&mut t, "Record your verdict");
-        t.push_str("Run one of these once the record is checked:\n");
+        t.push_str(&wrap(verdict_lead(n), TEXT_WIDTH, ""));
         for c in &n.verdict_commands {
             putln!(t, "  {}", inline(c, FIELD_CHARS));
         }
@@ -895,6 +929,9 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
     if let Some(r) = &n.robust {
         putln!(h, "<p>{}</p>", html(&robust_sentence(r)));
     }
+    if let Some(note) = robust_disagrees(n) {
+        putln!(h, "<p>{}</p>", html(note));
+    }
 
     if !n.causes.is_empty() {
         h.push_str("<h3>Possible causes, most likely first</h3>\n<ol>\n");
@@ -927,6 +964,12 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
             e(&r.file, FIELD_CHARS),
             r.line
         );
+    } else if let Some(id) = &n.trend_record {
+        putln!(
+            h,
+            "<p>For record <b>{}</b>, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:</p>",
+            e(id, FIELD_CHARS)
+        );
     } else {
         h.push_str("<p>For the latest records of this series, look at:</p>\n");
     }
@@ -941,7 +984,11 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
     );
 
     if !n.verdict_commands.is_empty() {
-        h.push_str("<h3>Record your verdict</h3>\n<p>Run one of these once the record is checked:</p>\n<pre style=\"background:#f4f4f4;padding:8px\">");
+        putln!(
+            h,
+            "<h3>Record your verdict</h3>\n<p>{}</p>\n<pre style=\"background:#f4f4f4;padding:8px\">",
+            html(verdict_lead(n))
+        );
         for c in &n.verdict_commands {
             putln!(h, "{}", e(c, FIELD_CHARS));
         }
@@ -1130,6 +1177,7 @@ pub(crate) mod tests {
                 x: "2031-07-02".into(),
                 y: "41.2".into(),
             }),
+            trend_record: None,
             unit: "mg/L".into(),
             x_label: "year".into(),
             x_unit: String::new(),

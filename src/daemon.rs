@@ -222,6 +222,7 @@ fn report_short_of_space(config: &Config, store: &mut Store, folder: &Path, free
             }),
             (None, None),
             None,
+            None,
             &at,
             crate::clock::unix_seconds(now),
         )?;
@@ -539,6 +540,7 @@ pub fn check_silent_feeds(
                 "rule": "no file for longer than the feed's expected_every_days (configuration)",
                 "judged_against": "the feed's expected delivery interval" }),
             (None, None),
+            None,
             None,
             &at,
             crate::clock::unix_seconds(now),

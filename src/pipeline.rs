@@ -1132,6 +1132,7 @@ fn quarantine_whole(
             "judged_against": "the file format the feed expects" }),
         (None, None),
         None,
+        None,
         at,
         clock::unix_seconds(now),
     )?;
@@ -1977,10 +1978,16 @@ fn store_file_behind<'t, 'c: 't>(
                 counts.conflict += 1;
                 b.tx()?
                     .insert_proposed(record, t.row.id, file_id, max_version + 1)?;
+                let answerable = (stored_record.series == key
+                    && stored_record.x == record.x
+                    && !stored_record.censored
+                    && !record.y.is_censored())
+                .then_some((stored_record.row, record.y.number()));
                 plain.push(PlainFinding {
                 kind: "conflict",
                 series: key.to_string(),
                 record_ids: vec![record.record_id.clone()],
+                answerable,
                 summary: format!(
                     "record {} resubmitted in {name} line {} with other values (stored: x {}, y {}; new: x {}, y {}); kept as proposed version {}, the stored version is unchanged",
                     record.record_id,
@@ -2302,6 +2309,10 @@ struct PlainFinding {
     series: String,
     record_ids: Vec<String>,
     summary: String,
+    /// A conflict that only changes y within the same series: the stored
+    /// record's row and the resubmitted y, so that a verdict can take the
+    /// new value (or exclude the record) as for a flagged record.
+    answerable: Option<(i64, f64)>,
 }
 
 /// The series a flagged record could belong to instead: those of the file
@@ -2595,9 +2606,17 @@ fn raise_findings(
             Some(file),
             &p.record_ids,
             &p.summary,
-            serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION }),
+            match p.answerable {
+                Some((_, y)) => {
+                    serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION,
+                    "judged_against": "the stored version of the record", "proposed_y": y })
+                }
+                None => serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION,
+                    "judged_against": "the stored version of the record" }),
+            },
             (None, None),
             None,
+            p.answerable.map(|(row, _)| row),
             at,
             now_unix,
         )?;
@@ -2637,6 +2656,7 @@ fn raise_findings(
             serde_json::json!({ "rows": rows, "caution": raise::CAUTION,
                 "judged_against": "the validation rules of the series (see the configuration)" }),
             (None, None),
+            None,
             None,
             at,
             now_unix,

@@ -386,6 +386,7 @@ pub fn plain_finding(
     detail: serde_json::Value,
     fits: (Option<&LineFit>, Option<&LineFit>),
     robust: Option<(f64, f64, f64)>,
+    record_row: Option<i64>,
     at: &str,
     now_unix: i64,
 ) -> Result<i64> {
@@ -403,7 +404,7 @@ pub fn plain_finding(
         created_at: at,
         series: series.map(|s| s.id),
         file: file.map(|f| f.0),
-        record_row: None,
+        record_row,
         record_ids,
         kinds: &kinds,
         severity: severity.as_str(),
@@ -485,10 +486,22 @@ pub fn plain_finding(
         points: Vec::new(),
         line_with: Vec::new(),
         line_without: Vec::new(),
-        // No single record: `review` takes only "confirmed" here.
-        verdict_commands: vec![format!(
-            "slopewarden review {id} --verdict confirmed --note \"...\""
-        )],
+        verdict_commands: match (
+            record_row,
+            detail.get("proposed_y").and_then(|v| v.as_f64()),
+        ) {
+            // A resubmitted value: keep the stored one, take the new one, or
+            // leave the record out.
+            (Some(_), Some(y)) => vec![
+                format!("slopewarden review {id} --verdict confirmed --note \"...\""),
+                format!("slopewarden review {id} --verdict corrected --value {y} --note \"...\""),
+                format!("slopewarden review {id} --verdict excluded --note \"...\""),
+            ],
+            // No single record: `review` takes only "confirmed" here.
+            _ => vec![format!(
+                "slopewarden review {id} --verdict confirmed --note \"...\""
+            )],
+        },
         created_at: at.to_string(),
     };
     queue(
@@ -558,6 +571,7 @@ pub fn trend_finding(
         detail,
         (Some(after), before),
         robust,
+        None,
         at,
         now_unix,
     )

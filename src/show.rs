@@ -290,6 +290,12 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
             "\nthe record this change hinged on has been {}; compare the series now (above) with the change, then close this finding:\n  slopewarden review {} --verdict confirmed --note \"caused by the record of finding {finding}, {} by verdict {}\"",
             v.verdict, f.id, v.verdict, v.id
         );
+    } else if let (true, Some(y)) = (f.status == "open", d["proposed_y"].as_f64()) {
+        let _ = writeln!(
+            o,
+            "\nonce both versions are checked (confirmed keeps the stored value; corrected takes the resubmitted one, or the one you found, and refits; excluded leaves the record out of the fit):\n  slopewarden review {id} --verdict confirmed --note \"...\"\n  slopewarden review {id} --verdict corrected --value {y} --note \"...\"\n  slopewarden review {id} --verdict excluded --note \"...\"",
+            id = f.id
+        );
     } else if f.status == "open" && !r.is_object() {
         let _ = writeln!(
             o,

@@ -742,6 +742,91 @@ fn a_record_resubmitted_with_another_value_is_a_conflict_and_the_same_value_is_n
 }
 
 #[test]
+fn a_resubmitted_value_can_be_taken_by_a_verdict_and_the_series_refits() {
+    let q010 = gentle()[9];
+    let resubmitted = q010.1 + 3.0;
+    let site = site_with_gentle_series("");
+    site.deliver("b.csv", &csv(10, &[(q010.0, resubmitted)]));
+    let found = site.findings();
+    let f = one_record(&found);
+    assert_eq!(kinds(f), ["conflict"]);
+    let id = f["id"].to_string();
+    // The message says what the finding is about and offers the three
+    // answers, the resubmitted value ready in the second.
+    let body = site.message_text(f);
+    assert!(
+        body.contains("A record arrived again with other values."),
+        "{body}"
+    );
+    assert!(!body.contains("This finding concerns the trend"), "{body}");
+    assert!(
+        body.contains(&format!(
+            "slopewarden review {id} --verdict corrected --value {resubmitted} --note"
+        )),
+        "{body}"
+    );
+    let out = site
+        .command(&[
+            "review",
+            &id,
+            "--verdict",
+            "corrected",
+            "--value",
+            &resubmitted.to_string(),
+            "--note",
+            "the laboratory reissued its report",
+        ])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // One current version of Q010, with the new value, in the refit; the
+    // proposal stays on record beside the superseded original.
+    let db = site.db();
+    let versions: Vec<(String, f64)> = db
+        .prepare("SELECT status, y FROM records WHERE record_id = 'Q010' ORDER BY version")
+        .unwrap()
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    assert_eq!(
+        versions,
+        [
+            ("superseded".to_string(), q010.1),
+            ("proposed".to_string(), resubmitted),
+            ("current".to_string(), resubmitted)
+        ]
+    );
+    let (n, records): (i64, i64) = db
+        .query_row(
+            "SELECT f.n, f.records FROM series s JOIN fits f ON f.id = s.latest_fit",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    assert_eq!((n, records), (30, 30));
+    let verified = site.command(&["verify"]).output().unwrap();
+    assert!(
+        verified.status.success(),
+        "{}",
+        String::from_utf8_lossy(&verified.stdout)
+    );
+
+    // A resubmission that moves the record in x cannot be taken by a
+    // verdict on y: only "confirmed" is offered.
+    let site = site_with_gentle_series("");
+    site.deliver("b.csv", &csv(10, &[(q010.0 + 0.1, q010.1)]));
+    let found = site.findings();
+    let body = site.message_text(one_record(&found));
+    assert!(!body.contains("--verdict corrected"), "{body}");
+    assert!(body.contains("--verdict confirmed"), "{body}");
+}
+
+#[test]
 fn a_bad_row_or_an_unreadable_file_is_quarantined_and_the_repaired_file_is_not() {
     let good = [(2017.5, line(2017.5)), (2017.75, line(2017.75) + 0.1)];
     // Q032's value is not a number; Q031 and Q033 are fine.
@@ -756,6 +841,15 @@ fn a_bad_row_or_an_unreadable_file_is_quarantined_and_the_repaired_file_is_not()
     assert_eq!(kinds(f), ["quarantined"]);
     assert_eq!(record_ids(f), ["Q032"]);
     assert_eq!(f["file"], "b.csv");
+    // Its message is about the file: no trend table, and where to read
+    // every row set aside.
+    let body = site.message_text(f);
+    assert!(body.contains(") about file b.csv\n"), "{body}");
+    assert!(!body.contains("The trend now"), "{body}");
+    assert!(
+        body.contains(&format!("`slopewarden show {}` lists each", f["id"])),
+        "{body}"
+    );
     let rows = f["detail"]["rows"].as_array().unwrap();
     assert_eq!(rows.len(), 1);
     assert_eq!(rows[0]["line"], 3);

@@ -392,6 +392,98 @@ fn kinds_text(kinds: impl Iterator<Item = FindingKind>) -> String {
         .join(", ")
 }
 
+/// What a finding is about, which decides its title, its first lines and
+/// what the reader is asked to check.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum About {
+    /// One record ([`Notice::record`]).
+    Record,
+    /// A series' trend (a sign or significance change).
+    Trend,
+    /// A file, or rows of it, set aside by validation.
+    File,
+    /// A record id resubmitted with other values.
+    Conflict,
+    /// A feed that stopped delivering.
+    Feed,
+    /// The disk the store or the archive lives on.
+    Disk,
+}
+
+fn about(n: &Notice) -> About {
+    if n.record.is_some() {
+        return About::Record;
+    }
+    match n.flags.first().map(|f| f.kind) {
+        Some(FindingKind::Quarantined) => About::File,
+        Some(FindingKind::Conflict) => About::Conflict,
+        Some(FindingKind::SilentFeed) => About::Feed,
+        Some(FindingKind::DiskSpace) => About::Disk,
+        _ => About::Trend,
+    }
+}
+
+/// The message's title after "Finding N (severity)".
+fn title_place(n: &Notice) -> String {
+    let name = inline(&n.series, FIELD_CHARS);
+    match about(n) {
+        About::Record | About::Trend | About::Conflict => format!("in series {name}"),
+        About::File => format!("about file {name}"),
+        About::Feed => format!("about {name}"),
+        About::Disk => "about free disk space".to_string(),
+    }
+}
+
+/// The line under the title of a finding without a record.
+fn scope_line(a: About) -> &'static str {
+    match a {
+        About::Record | About::Trend => "This finding concerns the trend, not a single record.",
+        About::File => {
+            "Rows of this file, or the whole file, were set aside by validation: nothing set aside entered any fit."
+        }
+        About::Conflict => {
+            "A record arrived again with other values. The stored version is unchanged and still in the fit; the new one waits as a proposed version."
+        }
+        About::Feed => "A feed stopped delivering files as often as configured.",
+        About::Disk => "The disk is nearly full: files wait in the inbox and nothing is lost.",
+    }
+}
+
+/// What to look at for findings that are not about one record's values.
+fn other_checks(n: &Notice, a: About) -> Option<(&'static str, Vec<String>)> {
+    let owned = |v: &[&str]| v.iter().map(|s| s.to_string()).collect::<Vec<_>>();
+    match a {
+        About::File => Some((
+            "For the file named above, look at:",
+            vec![
+                format!(
+                    "the rows set aside: `slopewarden show {}` lists each with its line, column and reason",
+                    n.finding_id
+                ),
+                "the file's layout against what its feed expects (columns, delimiter, decimal mark, units)".to_string(),
+                "where the file came from: the laboratory's or the field crew's export; a corrected file goes into the inbox under a new name".to_string(),
+            ],
+        )),
+        About::Feed => Some((
+            "For the feed named above, look at:",
+            owned(&[
+                "the delivery schedule agreed with the laboratory or the field crew",
+                "where the files are dropped: the share, the path and its permissions",
+                "the feed's expected_every_days in the configuration",
+            ]),
+        )),
+        About::Disk => Some((
+            "On the machine running slopewarden, look at:",
+            owned(&[
+                "the free space on the disk named above (df)",
+                "what else fills it: old archives, backups, logs",
+                "watch.min_free_mb in the configuration",
+            ]),
+        )),
+        About::Record | About::Trend | About::Conflict => None,
+    }
+}
+
 fn notice_subject(n: &Notice) -> String {
     let series = header_safe(&n.series, SUBJECT_NAME_CHARS);
     let kinds = if n.kinds.is_empty() {
@@ -404,7 +496,13 @@ fn notice_subject(n: &Notice) -> String {
             "check record {} in series {series}",
             header_safe(&r.id, SUBJECT_NAME_CHARS)
         ),
-        None => format!("review the trend of series {series}"),
+        None => match about(n) {
+            About::File => format!("check file {series}"),
+            About::Conflict => format!("check a resubmitted record in series {series}"),
+            About::Feed => format!("check the deliveries of {series}"),
+            About::Disk => "free some disk space".to_string(),
+            About::Record | About::Trend => format!("review the trend of series {series}"),
+        },
     };
     header_safe(
         &format!("[slopewarden] {}: {what}: {kinds}", n.severity.as_str()),
@@ -592,6 +690,8 @@ fn robust_sentence(r: &RobustSlope) -> String {
 fn verdict_lead(n: &Notice) -> &'static str {
     if n.record.is_some() {
         "Run one of these once the record is checked:"
+    } else if about(n) == About::Conflict && n.verdict_commands.len() > 1 {
+        "Once both versions are checked, run one of these: confirmed keeps the stored value; corrected takes the resubmitted value (or the one you found) as a new version and refits the series; excluded leaves the record out of the fit."
     } else {
         "This finding concerns no single record; once it has been looked into, close it with:"
     }
@@ -705,12 +805,13 @@ fn heading(out: &mut String, title: &str) {
 
 fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> String {
     let mut t = String::new();
-    let series = inline(&n.series, FIELD_CHARS);
+    let scope = about(n);
     putln!(
         t,
-        "Finding {} ({}) in series {series}",
+        "Finding {} ({}) {}",
         n.finding_id,
-        n.severity.as_str()
+        n.severity.as_str(),
+        title_place(n)
     );
     match &n.record {
         Some(r) => {
@@ -731,9 +832,7 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
                 inline(&n.unit, FIELD_CHARS)
             );
         }
-        None => {
-            putln!(t, "This finding concerns the trend, not a single record.");
-        }
+        None => t.push_str(&wrap(scope_line(scope), TEXT_WIDTH, "")),
     }
 
     heading(&mut t, "What was found");
@@ -746,31 +845,34 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
     );
     t.push_str(&wrap(&judged, TEXT_WIDTH, ""));
 
+    let compared = n.fit_with.is_some() || n.fit_without.is_some();
     let (wt, wot) = column_titles(n);
-    heading(&mut t, comparison_heading(n));
-    let rows = comparison_rows(n);
-    let w0 = rows
-        .iter()
-        .map(|r| r.0.chars().count())
-        .max()
-        .unwrap_or(0)
-        .max(4);
-    let w1 = rows
-        .iter()
-        .map(|r| r.1.chars().count())
-        .chain([wt.chars().count()])
-        .max()
-        .unwrap_or(0);
-    putln!(t, "  {:<w0$}  {:<w1$}  {}", "", wt, wot);
-    for (label, a, b) in &rows {
-        putln!(t, "  {label:<w0$}  {a:<w1$}  {b}");
-    }
-    t.push_str(&wrap(&slope_unit_sentence(n), TEXT_WIDTH, ""));
-    if let Some(r) = &n.robust {
-        t.push_str(&wrap(&robust_sentence(r), TEXT_WIDTH, ""));
-    }
-    if let Some(note) = robust_disagrees(n) {
-        t.push_str(&wrap(note, TEXT_WIDTH, ""));
+    if compared {
+        heading(&mut t, comparison_heading(n));
+        let rows = comparison_rows(n);
+        let w0 = rows
+            .iter()
+            .map(|r| r.0.chars().count())
+            .max()
+            .unwrap_or(0)
+            .max(4);
+        let w1 = rows
+            .iter()
+            .map(|r| r.1.chars().count())
+            .chain([wt.chars().count()])
+            .max()
+            .unwrap_or(0);
+        putln!(t, "  {:<w0$}  {:<w1$}  {}", "", wt, wot);
+        for (label, a, b) in &rows {
+            putln!(t, "  {label:<w0$}  {a:<w1$}  {b}");
+        }
+        t.push_str(&wrap(&slope_unit_sentence(n), TEXT_WIDTH, ""));
+        if let Some(r) = &n.robust {
+            t.push_str(&wrap(&robust_sentence(r), TEXT_WIDTH, ""));
+        }
+        if let Some(note) = robust_disagrees(n) {
+            t.push_str(&wrap(note, TEXT_WIDTH, ""));
+        }
     }
     if let Some(problem) = chart_problem {
         t.push_str(&wrap(
@@ -797,40 +899,51 @@ fn notice_text(n: &Notice, message_id: &str, chart_problem: Option<&str>) -> Str
     }
 
     heading(&mut t, "What to check");
-    if let Some(r) = &n.record {
-        t.push_str(&wrap(
-            &format!(
-                "For record {} (from {}, line {}), look at:",
-                inline(&r.id, FIELD_CHARS),
-                inline(&r.file, FIELD_CHARS),
-                r.line
-            ),
-            TEXT_WIDTH,
-            "",
-        ));
-    } else if let Some(id) = &n.trend_record {
-        t.push_str(&wrap(
-            &format!(
-                "For record {}, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:",
-                inline(id, FIELD_CHARS)
-            ),
-            TEXT_WIDTH,
-            "",
-        ));
+    if let Some((lead, checks)) = other_checks(n, scope) {
+        t.push_str(&wrap(lead, TEXT_WIDTH, ""));
+        for c in &checks {
+            t.push_str(&bullet(c));
+        }
     } else {
-        t.push_str("For the latest records of this series, look at:\n");
+        if let Some(r) = &n.record {
+            t.push_str(&wrap(
+                &format!(
+                    "For record {} (from {}, line {}), look at:",
+                    inline(&r.id, FIELD_CHARS),
+                    inline(&r.file, FIELD_CHARS),
+                    r.line
+                ),
+                TEXT_WIDTH,
+                "",
+            ));
+        } else if scope == About::Conflict {
+            t.push_str("For the record named above, both versions, look at:\n");
+        } else if let Some(id) = &n.trend_record {
+            t.push_str(&wrap(
+                &format!(
+                    "For record {}, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:",
+                    inline(id, FIELD_CHARS)
+                ),
+                TEXT_WIDTH,
+                "",
+            ));
+        } else {
+            t.push_str("For the latest records of this series, look at:\n");
+        }
+        for (what, why) in CHECKS {
+            t.push_str(&bullet(&format!("{what}: {why}")));
+        }
+        if !n.nondetect_policy.trim().is_empty() {
+            t.push_str(&wrap(
+                &format!(
+                    "How non-detects were treated: {}.",
+                    inline(&n.nondetect_policy, SENTENCE_CHARS).trim_end_matches('.')
+                ),
+                TEXT_WIDTH,
+                "",
+            ));
+        }
     }
-    for (what, why) in CHECKS {
-        t.push_str(&bullet(&format!("{what}: {why}")));
-    }
-    t.push_str(&wrap(
-        &format!(
-            "How non-detects were treated: {}.",
-            inline(&n.nondetect_policy, SENTENCE_CHARS).trim_end_matches('.')
-        ),
-        TEXT_WIDTH,
-        "",
-    ));
 
     if !n.verdict_commands.is_empty() {
         heading(&mut t, "Record your verdict");
@@ -861,12 +974,13 @@ const TD: &str = "style=\"padding:3px 10px;border-bottom:1px solid #ddd;text-ali
 fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&str>) -> String {
     let e = |s: &str, max: usize| html(&inline(s, max));
     let mut h = String::from(HTML_HEAD);
+    let scope = about(n);
     putln!(
         h,
-        "<h2 style=\"font-size:18px\">Finding {} ({}) in series {}</h2>",
+        "<h2 style=\"font-size:18px\">Finding {} ({}) {}</h2>",
         n.finding_id,
         n.severity.as_str(),
-        e(&n.series, FIELD_CHARS)
+        html(&title_place(n))
     );
     match &n.record {
         Some(r) => {
@@ -883,7 +997,7 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
                 e(&n.unit, FIELD_CHARS)
             );
         }
-        None => h.push_str("<p>This finding concerns the trend, not a single record.</p>\n"),
+        None => putln!(h, "<p>{}</p>", html(scope_line(scope))),
     }
 
     h.push_str("<h3>What was found</h3>\n<ul>\n");
@@ -909,28 +1023,30 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
         putln!(h, "<p><i>No chart this time: {}.</i></p>", html(problem));
     }
 
-    let (wt, wot) = column_titles(n);
-    putln!(h, "<h3>{}</h3>", comparison_heading(n));
-    putln!(
-        h,
-        "<table style=\"border-collapse:collapse\">\n<tr><th {TD}></th><th {TD}>{wt}</th><th {TD}>{wot}</th></tr>"
-    );
-    for (label, a, b) in comparison_rows(n) {
+    if n.fit_with.is_some() || n.fit_without.is_some() {
+        let (wt, wot) = column_titles(n);
+        putln!(h, "<h3>{}</h3>", comparison_heading(n));
         putln!(
             h,
-            "<tr><td {TD}>{}</td><td {TD}>{}</td><td {TD}>{}</td></tr>",
-            html(&label),
-            html(&a),
-            html(&b)
+            "<table style=\"border-collapse:collapse\">\n<tr><th {TD}></th><th {TD}>{wt}</th><th {TD}>{wot}</th></tr>"
         );
-    }
-    h.push_str("</table>\n");
-    putln!(h, "<p>{}</p>", html(&slope_unit_sentence(n)));
-    if let Some(r) = &n.robust {
-        putln!(h, "<p>{}</p>", html(&robust_sentence(r)));
-    }
-    if let Some(note) = robust_disagrees(n) {
-        putln!(h, "<p>{}</p>", html(note));
+        for (label, a, b) in comparison_rows(n) {
+            putln!(
+                h,
+                "<tr><td {TD}>{}</td><td {TD}>{}</td><td {TD}>{}</td></tr>",
+                html(&label),
+                html(&a),
+                html(&b)
+            );
+        }
+        h.push_str("</table>\n");
+        putln!(h, "<p>{}</p>", html(&slope_unit_sentence(n)));
+        if let Some(r) = &n.robust {
+            putln!(h, "<p>{}</p>", html(&robust_sentence(r)));
+        }
+        if let Some(note) = robust_disagrees(n) {
+            putln!(h, "<p>{}</p>", html(note));
+        }
     }
 
     if !n.causes.is_empty() {
@@ -956,32 +1072,45 @@ fn notice_html(n: &Notice, chart: Option<&InlineImage>, chart_problem: Option<&s
     }
 
     h.push_str("<h3>What to check</h3>\n");
-    if let Some(r) = &n.record {
-        putln!(
-            h,
-            "<p>For record <b>{}</b> (from <code>{}</code>, line {}), look at:</p>",
-            e(&r.id, FIELD_CHARS),
-            e(&r.file, FIELD_CHARS),
-            r.line
-        );
-    } else if let Some(id) = &n.trend_record {
-        putln!(
-            h,
-            "<p>For record <b>{}</b>, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:</p>",
-            e(id, FIELD_CHARS)
-        );
+    if let Some((lead, checks)) = other_checks(n, scope) {
+        putln!(h, "<p>{}</p>\n<ul>", html(lead));
+        for c in &checks {
+            putln!(h, "<li>{}</li>", html(c));
+        }
+        h.push_str("</ul>\n");
     } else {
-        h.push_str("<p>For the latest records of this series, look at:</p>\n");
+        if let Some(r) = &n.record {
+            putln!(
+                h,
+                "<p>For record <b>{}</b> (from <code>{}</code>, line {}), look at:</p>",
+                e(&r.id, FIELD_CHARS),
+                e(&r.file, FIELD_CHARS),
+                r.line
+            );
+        } else if scope == About::Conflict {
+            h.push_str("<p>For the record named above, both versions, look at:</p>\n");
+        } else if let Some(id) = &n.trend_record {
+            putln!(
+                h,
+                "<p>For record <b>{}</b>, the newest, which alone causes this change (if it has a finding of its own, give the record's verdict there), look at:</p>",
+                e(id, FIELD_CHARS)
+            );
+        } else {
+            h.push_str("<p>For the latest records of this series, look at:</p>\n");
+        }
+        h.push_str("<ul>\n");
+        for (what, why) in CHECKS {
+            putln!(h, "<li><b>{}</b>: {}</li>", html(what), html(why));
+        }
+        h.push_str("</ul>\n");
+        if !n.nondetect_policy.trim().is_empty() {
+            putln!(
+                h,
+                "<p>How non-detects were treated: {}.</p>",
+                html(inline(&n.nondetect_policy, SENTENCE_CHARS).trim_end_matches('.'))
+            );
+        }
     }
-    h.push_str("<ul>\n");
-    for (what, why) in CHECKS {
-        putln!(h, "<li><b>{}</b>: {}</li>", html(what), html(why));
-    }
-    putln!(
-        h,
-        "</ul>\n<p>How non-detects were treated: {}.</p>",
-        html(inline(&n.nondetect_policy, SENTENCE_CHARS).trim_end_matches('.'))
-    );
 
     if !n.verdict_commands.is_empty() {
         putln!(
@@ -1396,6 +1525,39 @@ pub(crate) mod tests {
     fn trend_level_finding_renders_without_record_or_points() {
         let mut n = sample_notice();
         n.record = None;
+        n.kinds = vec![FindingKind::SignReversal];
+        n.flags = vec![Flag {
+            kind: FindingKind::SignReversal,
+            measure: "the slope changed sign: 0.1 before, -0.2 now (p = 0.03).".into(),
+            value: None,
+            cutoff: None,
+            cutoff_source: "raised when a significant trend's slope changes sign".into(),
+        }];
+        n.points.clear();
+        n.causes.clear();
+        n.verdict_commands =
+            vec!["slopewarden review 17 --verdict confirmed --note \"...\"".into()];
+        let r = render_notice(&n);
+        assert_eq!(
+            r.subject,
+            "[slopewarden] warning: review the trend of series alder-brook/nitrate: slope changes sign"
+        );
+        assert!(r.chart.is_none() && r.chart_problem.is_none());
+        assert!(r.text.contains("not a single record"));
+        assert!(
+            r.text
+                .contains("The trend now and in the fit it is compared with")
+        );
+        assert!(r.text.contains("For the latest records of this series"));
+        assert!(!r.html.contains("cid:"));
+    }
+
+    #[test]
+    fn a_silent_feed_reads_as_one_not_as_a_trend() {
+        let mut n = sample_notice();
+        n.series = "feed alder-lab".into();
+        n.record = None;
+        n.kinds = vec![];
         n.flags = vec![Flag {
             kind: FindingKind::SilentFeed,
             measure: "days since the last record".into(),
@@ -1404,20 +1566,40 @@ pub(crate) mod tests {
             cutoff_source: "feeds.alder.max_gap_days".into(),
         }];
         n.points.clear();
+        n.fit_with = None;
         n.fit_without = None;
+        n.robust = None;
         n.causes.clear();
+        n.nondetect_policy.clear();
         let r = render_notice(&n);
         assert_eq!(
             r.subject,
-            "[slopewarden] warning: review the trend of series alder-brook/nitrate: feed gone quiet"
+            "[slopewarden] warning: check the deliveries of feed alder-lab: feed gone quiet"
         );
-        assert!(r.chart.is_none() && r.chart_problem.is_none());
+        assert!(
+            r.text
+                .starts_with("Finding 17 (warning) about feed alder-lab\n"),
+            "{}",
+            r.text
+        );
         assert!(
             r.text
                 .contains("days since the last record = 45; cutoff 30")
         );
-        assert!(r.text.contains("not a single record"));
-        assert!(!r.html.contains("cid:"));
+        for absent in [
+            "not a single record",
+            "The trend now",
+            "non-detects",
+            "field sheet",
+        ] {
+            assert!(!r.text.contains(absent), "{absent}: {}", r.text);
+            assert!(!r.html.contains(absent), "{absent}: {}", r.html);
+        }
+        assert!(
+            r.text.contains("the delivery schedule agreed"),
+            "{}",
+            r.text
+        );
     }
 
     #[test]

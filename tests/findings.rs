@@ -102,6 +102,18 @@ impl Site {
         c
     }
 
+    /// Runs a command that must succeed; its standard output.
+    fn run_ok(&self, args: &[&str]) -> String {
+        let out = self.command(args).output().unwrap();
+        assert!(
+            out.status.success(),
+            "{args:?}: {}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+
     /// `slopewarden ingest` over the inbox folder (each file its own
     /// transaction, in name order); fails the test on a non-zero exit.
     fn ingest(&self) -> Output {
@@ -606,12 +618,7 @@ fn a_message_held_by_the_hourly_limit_keeps_its_subject_but_no_second_copy_of_th
         assert_eq!((held.2, held.3, held.4), (0, 0, true), "{held:?}");
     }
     // `verify` still vouches for the messages as written.
-    let out = site.command(&["verify"]).output().unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stdout)
-    );
+    site.run_ok(&["verify"]);
 }
 
 #[test]
@@ -765,24 +772,16 @@ fn a_resubmitted_value_can_be_taken_by_a_verdict_and_the_series_refits() {
         )),
         "{body}"
     );
-    let out = site
-        .command(&[
-            "review",
-            &id,
-            "--verdict",
-            "corrected",
-            "--value",
-            &resubmitted.to_string(),
-            "--note",
-            "the laboratory reissued its report",
-        ])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    site.run_ok(&[
+        "review",
+        &id,
+        "--verdict",
+        "corrected",
+        "--value",
+        &resubmitted.to_string(),
+        "--note",
+        "the laboratory reissued its report",
+    ]);
     // One current version of Q010, with the new value, in the refit; the
     // proposal stays on record beside the superseded original.
     let db = site.db();
@@ -809,12 +808,7 @@ fn a_resubmitted_value_can_be_taken_by_a_verdict_and_the_series_refits() {
         )
         .unwrap();
     assert_eq!((n, records), (30, 30));
-    let verified = site.command(&["verify"]).output().unwrap();
-    assert!(
-        verified.status.success(),
-        "{}",
-        String::from_utf8_lossy(&verified.stdout)
-    );
+    site.run_ok(&["verify"]);
 
     // A resubmission that moves the record in x cannot be taken by a
     // verdict on y: only "confirmed" is offered.
@@ -1000,11 +994,7 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
     let (site, found) = reversed_by_a_far_record();
     let reversal = first_of_kind(&found, "sign_reversal");
     let record = finding_about(&found, "Q031");
-    let show = |id: &Value| -> String {
-        let out = site.command(&["show", &id.to_string()]).output().unwrap();
-        assert!(out.status.success());
-        String::from_utf8_lossy(&out.stdout).into_owned()
-    };
+    let show = |id: &Value| site.run_ok(&["show", &id.to_string()]);
     let before = show(&reversal["id"]);
     // A p-value far below 0.001 is said so, not rounded to "p = 0.000".
     assert!(before.contains("-0.1025 now (p < 0.001)"), "{before}");
@@ -1015,23 +1005,14 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
         )),
         "{before}"
     );
-    let out = site
-        .command(&[
-            "review",
-            &record["id"].to_string(),
-            "--verdict",
-            "excluded",
-            "--note",
-            "the sample was taken at another site",
-        ])
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let said = String::from_utf8_lossy(&out.stdout);
+    let said = site.run_ok(&[
+        "review",
+        &record["id"].to_string(),
+        "--verdict",
+        "excluded",
+        "--note",
+        "the sample was taken at another site",
+    ]);
     assert!(
         said.contains("this record alone caused these open trend findings"),
         "{said}"
@@ -1178,11 +1159,7 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
         "{record}"
     );
     // `show` reads the same from the finding's stored detail.
-    let shown = site
-        .command(&["show", &leverage["id"].to_string()])
-        .output()
-        .unwrap();
-    let shown = String::from_utf8_lossy(&shown.stdout);
+    let shown = site.run_ok(&["show", &leverage["id"].to_string()]);
     assert!(
         shown.contains("distance from the source = 2000 m  y = 0 mg/kg"),
         "{shown}"
@@ -1214,15 +1191,7 @@ fn a_distance_series_states_its_slopes_per_configured_x_unit_in_messages_and_the
 
     let report_html = || -> String {
         let report = site.path("report.html");
-        let out = site
-            .command(&["report", "--out", report.to_str().unwrap()])
-            .output()
-            .unwrap();
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
+        site.run_ok(&["report", "--out", report.to_str().unwrap()]);
         std::fs::read_to_string(&report).unwrap()
     };
     let html = report_html();

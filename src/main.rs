@@ -945,10 +945,16 @@ mod commands {
         let mut shown = done.findings.clone();
         shown.sort_by_key(|f| f.id);
         for f in &shown {
-            let cause = f.detail["causes"][0]["label"]
-                .as_str()
-                .map(|c| format!("\n         first cause to check: {c}"))
-                .unwrap_or_default();
+            let outlier = f.kinds.iter().any(|k| k == "outlier");
+            let cause = match (f.detail["causes"][0]["label"].as_str(), outlier) {
+                (Some(c), _) => format!("\n         first cause to check: {c}"),
+                // Far off the trend, and no entry error explains it.
+                (None, true) if f.detail["no_cause"].is_string() => format!(
+                    "\n         no entry error explains it: check the sample itself (`show {}`)",
+                    f.id
+                ),
+                _ => String::new(),
+            };
             println!("  {:>3}  {:<7} {}{cause}", f.id, f.severity, f.summary);
         }
         let config = dir.join("slopewarden.toml");

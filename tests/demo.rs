@@ -36,6 +36,16 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
         started.elapsed()
     );
     assert!(stdout.contains("report:"), "{stdout}");
+    // The sample far beyond the surveyed range is no entry error: the
+    // summary says to check the sample itself rather than listing nothing.
+    assert!(
+        stdout
+            .lines()
+            .skip_while(|l| !l.contains("record ABN-transect-PB99"))
+            .nth(1)
+            .is_some_and(|l| l.contains("no entry error explains it: check the sample itself")),
+        "{stdout}"
+    );
     assert!(
         stdout.contains("not a compliance determination"),
         "{stdout}"

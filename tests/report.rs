@@ -435,6 +435,23 @@ fn the_html_report_is_self_contained_escapes_the_data_and_agrees_with_status() {
     // and marks the refit the verdict triggered.
     let history: Vec<ElementRef<'_>> = quarry.select(&sel("table.history tbody tr")).collect();
     assert_eq!(history.len(), 3);
+    // Each version gives its Theil-Sen slope beside least squares (a series
+    // this short has it recomputed at every refit). The slip moved the
+    // least-squares slope far more than the median of pairwise slopes,
+    // which one point among many cannot drag.
+    let cells =
+        |row: &ElementRef<'_>| -> Vec<String> { row.select(&sel("td")).map(text).collect() };
+    let (first, second) = (cells(&history[0]), cells(&history[1]));
+    let slope = |c: &[String]| shown_number(&c[4]);
+    let robust = |c: &[String]| shown_number(&c[7]);
+    assert!(
+        robust(&first).is_finite() && robust(&second).is_finite(),
+        "{first:?} {second:?}"
+    );
+    assert!(
+        (robust(&second) - robust(&first)).abs() < (slope(&second) - slope(&first)).abs(),
+        "{first:?} {second:?}"
+    );
     assert_eq!(
         quarry
             .select(&sel("table.history tr.verdict-refit"))

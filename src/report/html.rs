@@ -917,13 +917,13 @@ fn slope_history(out: &mut String, s: &SeriesData, slope_unit: &str) {
     }
     let _ = write!(
         out,
-        "<table class=\"compact history\">\n<thead><tr><th class=\"num\">Version</th><th>Computed</th><th>Triggered by</th><th class=\"num\">n</th><th class=\"num\">Slope ({})</th><th class=\"num\">Confidence interval</th><th class=\"num\">p</th><th>Note</th></tr></thead>\n<tbody>\n",
+        "<table class=\"compact history\">\n<thead><tr><th class=\"num\">Version</th><th>Computed</th><th>Triggered by</th><th class=\"num\">n</th><th class=\"num\">Slope ({})</th><th class=\"num\">Confidence interval</th><th class=\"num\">p</th><th class=\"num\">Theil-Sen</th><th>Note</th></tr></thead>\n<tbody>\n",
         html(slope_unit)
     );
     for f in &s.fits {
         let _ = writeln!(
             out,
-            "<tr{}><td class=\"num\">{}</td><td class=\"when\">{}</td><td class=\"text\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"text\">{}</td></tr>",
+            "<tr{}><td class=\"num\">{}</td><td class=\"when\">{}</td><td class=\"text\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"num\">{}</td><td class=\"text\">{}</td></tr>",
             if f.trigger_verdict.is_some() {
                 " class=\"verdict-refit\""
             } else {
@@ -936,6 +936,8 @@ fn slope_history(out: &mut String, s: &SeriesData, slope_unit: &str) {
             num(f.slope),
             interval(f.slope_ci_low, f.slope_ci_high),
             p_html(f.slope_p),
+            // The robust slope where this version computed one (see the note).
+            num(f.theil_sen_slope),
             [
                 f.window
                     .as_deref()

@@ -144,6 +144,19 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Everything stored about one record: each version with its file,
+    /// line and the line as written, its diagnostics on arrival, and the
+    /// findings that name it with their verdicts.
+    Record {
+        /// The record id, as delivered.
+        record_id: String,
+        /// Configuration file (TOML).
+        #[arg(long)]
+        config: Option<PathBuf>,
+        /// One JSON object instead of the text.
+        #[arg(long)]
+        json: bool,
+    },
     /// Record a verdict on a finding after checking the record (field
     /// sheet, chain of custody, lab report); the series refits.
     Review {
@@ -336,6 +349,7 @@ fn main() -> ExitCode {
             | Command::History { .. }
             | Command::Findings { .. }
             | Command::Show { .. }
+            | Command::Record { .. }
             | Command::Verify { .. }
     ) {
         // Commands that only print: a closed pipe (`| head`) ends them
@@ -380,6 +394,11 @@ fn main() -> ExitCode {
         Command::Findings { open, config, json } => {
             commands::findings(config.as_deref(), open, json)
         }
+        Command::Record {
+            record_id,
+            config,
+            json,
+        } => commands::record(config.as_deref(), &record_id, json),
         Command::Show {
             finding,
             config,
@@ -1037,6 +1056,50 @@ mod commands {
         print!(
             "{}",
             slopewarden::show::describe_finding(&row, &verdicts, since.as_ref())
+        );
+        ExitCode::SUCCESS
+    }
+
+    pub fn record(config: Option<&Path>, record_id: &str, json: bool) -> ExitCode {
+        let (_, store) = match setup(config) {
+            Ok(v) => v,
+            Err(code) => return code,
+        };
+        let read = || -> Result<_, slopewarden::store::StoreError> {
+            let versions = store.record_versions(record_id)?;
+            let mut findings = Vec::new();
+            for f in store.findings_naming(record_id)? {
+                let vs = store.verdicts(Some(f.id))?;
+                findings.push((f, vs));
+            }
+            Ok((versions, findings))
+        };
+        let (versions, findings) = match read() {
+            Ok(v) => v,
+            Err(e) => {
+                eprintln!("slopewarden: {e}");
+                return ExitCode::from(EXIT_STORE);
+            }
+        };
+        if versions.is_empty() {
+            eprintln!(
+                "slopewarden: no record `{record_id}` is stored (a row set aside by validation is listed by its finding: `slopewarden findings`)"
+            );
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+        if json {
+            return print_json(&serde_json::json!({
+                "record_id": record_id,
+                "versions": versions,
+                "findings": findings
+                    .iter()
+                    .map(|(f, vs)| serde_json::json!({ "finding": f, "verdicts": vs }))
+                    .collect::<Vec<_>>(),
+            }));
+        }
+        print!(
+            "{}",
+            slopewarden::show::describe_record(record_id, &versions, &findings)
         );
         ExitCode::SUCCESS
     }

@@ -7,7 +7,7 @@ use std::fmt::Write;
 use serde_json::Value;
 
 use crate::raise::CAUTION;
-use crate::store::{FindingRow, FitHistoryRow, VerdictRow};
+use crate::store::{FindingRow, FitHistoryRow, RecordVersion, VerdictRow};
 
 /// What became, since a trend finding was raised, of the record it hinged
 /// on: read by the caller for a finding whose change the newest record
@@ -316,6 +316,146 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
         );
     }
     let _ = writeln!(o, "\n{CAUTION}");
+    o
+}
+
+/// A number for the record view, or "-" when not defined.
+fn opt_num(v: Option<f64>) -> String {
+    num(&v.map_or(Value::Null, Value::from))
+}
+
+/// Everything stored about one record, for `slopewarden record`: each
+/// version with where it came from and its diagnostics on arrival, then
+/// every finding that names it with its verdicts.
+pub fn describe_record(
+    record_id: &str,
+    versions: &[RecordVersion],
+    findings: &[(FindingRow, Vec<VerdictRow>)],
+) -> String {
+    let mut o = String::new();
+    let series: Vec<&str> =
+        versions
+            .iter()
+            .map(|v| v.series.as_str())
+            .fold(Vec::new(), |mut a, s| {
+                if !a.contains(&s) {
+                    a.push(s);
+                }
+                a
+            });
+    let _ = writeln!(
+        o,
+        "record {record_id}: {} version(s), in {}",
+        versions.len(),
+        series.join(", ")
+    );
+    for v in versions {
+        // Decimal years read as such when nothing else is configured (as
+        // the findings word it).
+        let x_name = match (&v.x_name, &v.x_unit) {
+            (Some(n), _) => n.as_str(),
+            (None, None) if (1800.0..=2200.0).contains(&v.x) => "year",
+            (None, _) => "x",
+        };
+        let x_unit = v
+            .x_unit
+            .as_deref()
+            .map_or(String::new(), |u| format!(" {u}"));
+        let state = match (v.status.as_str(), v.in_fit, v.excluded) {
+            (_, _, true) => "excluded from the fit by a verdict",
+            ("current", true, false) => "in the fit",
+            ("current", false, false) if v.censored => "not in the fit (a non-detect)",
+            ("current", false, false) => "not in the fit",
+            ("proposed", _, _) => "a resubmission kept aside, not in the fit",
+            _ => "replaced by a later version",
+        };
+        let _ = writeln!(
+            o,
+            "\nversion {}  {}  ({state})\n  {x_name} = {}{x_unit}  y = {}{}{}",
+            v.version,
+            v.status,
+            num(&Value::from(v.x)),
+            num(&Value::from(v.y)),
+            v.unit.as_deref().map_or(String::new(), |u| format!(" {u}")),
+            if v.censored {
+                "  (non-detect: the value is the reporting limit)"
+            } else {
+                ""
+            }
+        );
+        let _ = writeln!(
+            o,
+            "  from {} line {} (arrived {}){}",
+            v.file,
+            v.line,
+            v.arrived_at,
+            v.sampled_at
+                .as_deref()
+                .map_or(String::new(), |d| format!(", sampled {d}"))
+        );
+        let _ = writeln!(o, "  as written: {}", v.raw.trim_end());
+        if let Some(n) = &v.note {
+            let _ = writeln!(o, "  note: {n}");
+        }
+        match v.joined_fit {
+            Some(fit) => {
+                let _ = writeln!(
+                    o,
+                    "  on arrival (fit version {fit}): leverage {}, studentized residual {}, Cook's distance {}, DFFITS {}, DFBETAS of the slope {}",
+                    opt_num(v.leverage),
+                    opt_num(v.studentized_residual),
+                    opt_num(v.cooks_distance),
+                    opt_num(v.dffits),
+                    opt_num(v.dfbetas_slope)
+                );
+                let _ = writeln!(
+                    o,
+                    "  against the fit before it: prediction t {}; slope without it {} (p {})",
+                    opt_num(v.prediction_t),
+                    opt_num(v.slope_without),
+                    p_text(&v.slope_p_without.map_or(Value::Null, Value::from))
+                );
+            }
+            None => {
+                let _ = writeln!(
+                    o,
+                    "  no diagnostics on arrival: it joined no fit when it arrived (a version stored by a verdict, a record left out of the fit, or a series still too short)"
+                );
+            }
+        }
+    }
+    let _ = writeln!(o, "\nfindings naming it");
+    if findings.is_empty() {
+        let _ = writeln!(o, "  none");
+    }
+    for (f, vs) in findings {
+        let _ = writeln!(
+            o,
+            "  {}  {}  [{}]  {}: {}",
+            f.id,
+            f.severity,
+            f.kinds.join(", "),
+            f.status,
+            f.summary
+        );
+        for v in vs {
+            let _ = writeln!(
+                o,
+                "      verdict {}: {}{}{} by {} at {}: {}",
+                v.id,
+                v.verdict,
+                v.value.map_or(String::new(), |x| format!(" to {x}")),
+                v.reverts.map_or(String::new(), |w| format!(" verdict {w}")),
+                v.by,
+                v.at,
+                v.note
+            );
+        }
+    }
+    let _ = writeln!(
+        o,
+        "\n`slopewarden show N` gives a finding in full.\n\n{CAUTION}"
+    );
     o
 }
 

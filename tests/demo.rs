@@ -197,6 +197,36 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
     let (slope, theil_sen): (f64, f64) = (second[2].parse().unwrap(), second[6].parse().unwrap());
     assert!(slope > 0.0 && theil_sen < 0.0, "{history}");
 
+    // `record` gathers what is stored about one record: its version with
+    // the line as written and its diagnostics on arrival (the same Cook's
+    // distance its finding gives), and the findings that name it.
+    let slip = about("AB-MW2-NIT-2024Q1").expect("the decimal slip is found");
+    let shown = run(&["record", "AB-MW2-NIT-2024Q1"]);
+    for want in [
+        "record AB-MW2-NIT-2024Q1: 1 version(s), in AB-MW2/nitrate",
+        "version 1  current  (in the fit)",
+        "year = 2024.123  y = 53 mg/L",
+        "as written: AB-MW2-NIT-2024Q1,AB-MW2/nitrate,2024.123,53.0,",
+        "[influential, outlier]  open",
+        "[sign_reversal]  open",
+    ] {
+        assert!(shown.contains(want), "missing `{want}` in:\n{shown}");
+    }
+    let stored: Value =
+        serde_json::from_str(&run(&["record", "AB-MW2-NIT-2024Q1", "--json"])).unwrap();
+    let cooks = slip["detail"]["measures"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|m| m["measure"] == "Cook's distance")
+        .unwrap()["value"]
+        .as_f64()
+        .unwrap();
+    assert_eq!(
+        stored["versions"][0]["cooks_distance"].as_f64(),
+        Some(cooks)
+    );
+
     // The correct extreme beside the kiln wall and the non-detect raise nothing.
     assert!(about("ABN-transect-LE01").is_none());
     assert!(about("ABS-transect-PB40").is_none());

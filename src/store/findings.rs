@@ -306,6 +306,64 @@ fn finding_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<FindingRow> {
     })
 }
 
+/// One stored version of a record: its values, where it came from, and its
+/// own diagnostics in the fit it joined on arrival.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct RecordVersion {
+    /// Version number (1 as delivered first).
+    pub version: i64,
+    /// `current`, `proposed` or `superseded`.
+    pub status: String,
+    /// Series key.
+    pub series: String,
+    /// What x measures and its unit, when the series' configuration says.
+    pub x_name: Option<String>,
+    /// See `x_name`.
+    pub x_unit: Option<String>,
+    /// x as stored.
+    pub x: f64,
+    /// y as stored (a non-detect's reporting limit).
+    pub y: f64,
+    /// Unit of y.
+    pub unit: Option<String>,
+    /// A non-detect.
+    pub censored: bool,
+    /// Whether it entered the series' fit.
+    pub in_fit: bool,
+    /// Left out of the fit by a verdict.
+    pub excluded: bool,
+    /// Sampling date as written, if given.
+    pub sampled_at: Option<String>,
+    /// Note (a corrected version says from what value and why).
+    pub note: Option<String>,
+    /// The file it came in.
+    pub file: String,
+    /// When that file arrived (RFC 3339).
+    pub arrived_at: String,
+    /// Line in that file.
+    pub line: i64,
+    /// The line as written.
+    pub raw: String,
+    /// Fit version it joined, when it entered a fit on arrival.
+    pub joined_fit: Option<i64>,
+    /// Leverage on arrival.
+    pub leverage: Option<f64>,
+    /// Externally studentized residual on arrival.
+    pub studentized_residual: Option<f64>,
+    /// Cook's distance on arrival.
+    pub cooks_distance: Option<f64>,
+    /// DFFITS on arrival.
+    pub dffits: Option<f64>,
+    /// DFBETAS of the slope on arrival.
+    pub dfbetas_slope: Option<f64>,
+    /// Prediction t against the fit before it arrived.
+    pub prediction_t: Option<f64>,
+    /// That fit's slope (the slope without the record).
+    pub slope_without: Option<f64>,
+    /// Its p-value.
+    pub slope_p_without: Option<f64>,
+}
+
 const FINDING_SELECT: &str = "SELECT g.id, s.key, g.record_ids, g.kinds, g.severity, g.status,
         g.created_at, f.name, g.fit_version, g.summary, g.detail
      FROM findings g LEFT JOIN series s ON s.id = g.series_id
@@ -375,6 +433,72 @@ impl Store {
             .map_err(self.wrap())?;
         let rows = stmt
             .query_map(params![series, record_id], finding_row)
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
+    /// Every stored version of a record, oldest first.
+    pub fn record_versions(&self, record_id: &str) -> Result<Vec<RecordVersion>> {
+        let mut stmt = self
+            .conn
+            .prepare(
+                "SELECT r.version, r.status, s.key, s.x_name, s.x_unit, r.x, r.y, r.unit,
+                        r.censored, r.in_fit, r.excluded, r.sampled_at, r.note, f.name,
+                        f.arrived_at, r.line, r.raw, r.joined_fit, r.leverage,
+                        r.studentized_residual, r.cooks_distance, r.dffits, r.dfbetas_slope,
+                        r.prediction_t, r.slope_without, r.slope_p_without
+                 FROM records r JOIN series s ON s.id = r.series_id
+                 JOIN source_files f ON f.id = r.file_id
+                 WHERE r.record_id = ?1 ORDER BY r.version",
+            )
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([record_id], |r| {
+                Ok(RecordVersion {
+                    version: r.get(0)?,
+                    status: r.get(1)?,
+                    series: r.get(2)?,
+                    x_name: r.get(3)?,
+                    x_unit: r.get(4)?,
+                    x: r.get(5)?,
+                    y: r.get(6)?,
+                    unit: r.get(7)?,
+                    censored: r.get(8)?,
+                    in_fit: r.get(9)?,
+                    excluded: r.get(10)?,
+                    sampled_at: r.get(11)?,
+                    note: r.get(12)?,
+                    file: r.get(13)?,
+                    arrived_at: r.get(14)?,
+                    line: r.get(15)?,
+                    raw: r.get(16)?,
+                    joined_fit: r.get(17)?,
+                    leverage: r.get(18)?,
+                    studentized_residual: r.get(19)?,
+                    cooks_distance: r.get(20)?,
+                    dffits: r.get(21)?,
+                    dfbetas_slope: r.get(22)?,
+                    prediction_t: r.get(23)?,
+                    slope_without: r.get(24)?,
+                    slope_p_without: r.get(25)?,
+                })
+            })
+            .map_err(self.wrap())?;
+        rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
+    /// Every finding that names `record_id` (about the record itself, a
+    /// resubmission of it, or a trend change it caused), oldest first.
+    pub fn findings_naming(&self, record_id: &str) -> Result<Vec<FindingRow>> {
+        let mut stmt = self
+            .conn
+            .prepare(&format!(
+                "{FINDING_SELECT} WHERE EXISTS (SELECT 1 FROM json_each(g.record_ids) WHERE value = ?1)
+                 ORDER BY g.id"
+            ))
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([record_id], finding_row)
             .map_err(self.wrap())?;
         rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
     }

@@ -50,7 +50,7 @@ pub use behind::{Behind, write_behind};
 pub use check::{SeriesReplay, StoredFit, StoredPoint};
 pub use checkpoint::Checkpointer;
 pub use durable::WalSync;
-pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage};
+pub use findings::{FindingRow, NewFinding, NewMessage, OutboxMessage, RecordVersion};
 pub use metrics::{GlanceFit, MetricsSnapshot, OpenFinding, SeriesGlance};
 pub use report::{
     ReportFindingRow, ReportFitRow, ReportRecordRow, ReportSeriesRow, ReportVerdictRow,

@@ -125,6 +125,10 @@ enum Command {
         /// Only those still awaiting a verdict.
         #[arg(long)]
         open: bool,
+        /// Only findings about series whose key matches this glob (e.g.
+        /// `MW-*/*`, or one series' key).
+        #[arg(long)]
+        series: Option<String>,
         /// Configuration file (TOML).
         #[arg(long)]
         config: Option<PathBuf>,
@@ -391,9 +395,12 @@ fn main() -> ExitCode {
             config,
             json,
         } => commands::history(config.as_deref(), &series, json),
-        Command::Findings { open, config, json } => {
-            commands::findings(config.as_deref(), open, json)
-        }
+        Command::Findings {
+            open,
+            series,
+            config,
+            json,
+        } => commands::findings(config.as_deref(), open, series.as_deref(), json),
         Command::Record {
             record_id,
             config,
@@ -899,7 +906,24 @@ mod commands {
         }
     }
 
-    pub fn findings(config: Option<&Path>, open: bool, json: bool) -> ExitCode {
+    pub fn findings(
+        config: Option<&Path>,
+        open: bool,
+        series: Option<&str>,
+        json: bool,
+    ) -> ExitCode {
+        let matcher = match series.map(globset::Glob::new) {
+            None => None,
+            Some(Ok(g)) => Some(g.compile_matcher()),
+            Some(Err(e)) => {
+                eprintln!(
+                    "slopewarden: --series {}: {}; write a series key or a glob such as `MW-*/*`",
+                    series.unwrap_or_default(),
+                    e.kind()
+                );
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+        };
         let (_, store) = match setup(config) {
             Ok(v) => v,
             Err(code) => return code,
@@ -911,6 +935,16 @@ mod commands {
                 return ExitCode::from(EXIT_STORE);
             }
         };
+        // Findings about a file or a feed have no series; a pattern leaves
+        // them out.
+        let rows: Vec<_> = rows
+            .into_iter()
+            .filter(|r| match (&matcher, &r.series) {
+                (None, _) => true,
+                (Some(m), Some(key)) => m.is_match(key),
+                (Some(_), None) => false,
+            })
+            .collect();
         if json {
             return print_json(&rows);
         }

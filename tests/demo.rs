@@ -197,6 +197,16 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
     let (slope, theil_sen): (f64, f64) = (second[2].parse().unwrap(), second[6].parse().unwrap());
     assert!(slope > 0.0 && theil_sen < 0.0, "{history}");
 
+    // `findings --series` keeps the findings of the matching series.
+    let east: Vec<Value> =
+        serde_json::from_str(&run(&["findings", "--series", "ABE-*/*", "--json"])).unwrap();
+    let expected = findings
+        .iter()
+        .filter(|f| f["series"].as_str().is_some_and(|s| s.starts_with("ABE-")))
+        .count();
+    assert!(expected > 0);
+    assert_eq!(east.len(), expected);
+
     // `record` gathers what is stored about one record: its version with
     // the line as written and its diagnostics on arrival (the same Cook's
     // distance its finding gives), and the findings that name it.

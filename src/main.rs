@@ -757,12 +757,16 @@ mod commands {
                 return ExitCode::from(EXIT_STORE);
             }
         };
-        // What each slope is in, as the report and the overview say it.
-        let mut slope_units: std::collections::HashMap<String, String> = match store.series_glance()
-        {
+        // What each slope is in, as the report and the overview say it, and
+        // the unit of the newest record where none is configured.
+        type Units = (String, Option<String>);
+        let mut units: std::collections::HashMap<String, Units> = match store.series_glance() {
             Ok(glances) => glances
                 .iter()
-                .map(|g| (g.row.key.clone(), slopewarden::report::glance_slope_unit(g)))
+                .map(|g| {
+                    let slope = slopewarden::report::glance_slope_unit(g);
+                    (g.row.key.clone(), (slope, g.row.record_unit.clone()))
+                })
                 .collect(),
             Err(e) => {
                 eprintln!("slopewarden: {e}");
@@ -770,7 +774,10 @@ mod commands {
             }
         };
         for r in &mut rows {
-            r.slope_unit = slope_units.remove(&r.series);
+            if let Some((slope, record_unit)) = units.remove(&r.series) {
+                r.slope_unit = Some(slope);
+                r.unit = r.unit.take().or(record_unit);
+            }
             r.min_detectable_relative_error = match (r.residual_sd, r.level) {
                 (Some(sd), Some(level)) => slopewarden::findings::rules::smallest_detectable_error(
                     r.n.max(0) as usize,

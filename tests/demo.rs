@@ -158,6 +158,12 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
         unit_of("AB-MW3/trichloroethene"),
         Some(Value::from("µg/L per year"))
     );
+    // The demo configures no unit for the wells: their records' unit is given.
+    let y_unit = listed
+        .iter()
+        .find(|s| s["series"] == "AB-MW3/trichloroethene")
+        .map(|s| s["unit"].clone());
+    assert_eq!(y_unit, Some(Value::from("µg/L")));
 
     // `diagnostics` names a stored series' points by record id, on the
     // fitted scale (not by file line, as `fit` does for a file).

@@ -1091,7 +1091,8 @@ pub struct SeriesStatus {
     pub transform: String,
     /// Non-detect policy.
     pub non_detects: String,
-    /// Unit.
+    /// Unit of y: the series' configured unit (the caller fills in that of
+    /// the newest record where none is configured).
     pub unit: Option<String>,
     /// What the slope and its interval are in, such as "mg/L per year" or
     /// "ln(mg/kg) per m" (filled by the caller, as the report words it).

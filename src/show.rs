@@ -367,7 +367,7 @@ pub fn describe_record(
             ("current", false, false) if v.censored => "not in the fit (a non-detect)",
             ("current", false, false) => "not in the fit",
             ("proposed", _, _) => "a resubmission kept aside, not in the fit",
-            _ => "replaced by a later version",
+            _ => "no longer in use: a later version, or the revert of its verdict, replaced it",
         };
         let _ = writeln!(
             o,
@@ -397,7 +397,23 @@ pub fn describe_record(
         if let Some(n) = &v.note {
             let _ = writeln!(o, "  note: {n}");
         }
+        let measured = [
+            v.leverage,
+            v.studentized_residual,
+            v.cooks_distance,
+            v.dffits,
+            v.dfbetas_slope,
+            v.prediction_t,
+        ]
+        .iter()
+        .any(Option::is_some);
         match v.joined_fit {
+            Some(fit) if !measured => {
+                let _ = writeln!(
+                    o,
+                    "  joined fit version {fit}; no diagnostics on arrival (too few points then to measure influence)"
+                );
+            }
             Some(fit) => {
                 let _ = writeln!(
                     o,
@@ -585,6 +601,69 @@ mod tests {
             "{reverted}"
         );
         assert!(!reverted.contains("caused by the record"), "{reverted}");
+    }
+
+    #[test]
+    fn a_record_lists_each_version_in_its_state() {
+        let version = |version: i64, status: &str, joined: Option<i64>| RecordVersion {
+            version,
+            status: status.into(),
+            series: "MW-2/boron".into(),
+            x_name: None,
+            x_unit: None,
+            x: 2025.5,
+            y: 41.0,
+            unit: Some("mg/L".into()),
+            censored: false,
+            in_fit: status == "current",
+            excluded: false,
+            sampled_at: None,
+            note: None,
+            file: "march.csv".into(),
+            arrived_at: "2026-03-01T00:00:00Z".into(),
+            line: 12,
+            raw: "Q-17,MW-2/boron,2025.5,41,mg/L".into(),
+            joined_fit: joined,
+            leverage: None,
+            studentized_residual: None,
+            cooks_distance: None,
+            dffits: None,
+            dfbetas_slope: None,
+            prediction_t: None,
+            slope_without: None,
+            slope_p_without: None,
+        };
+        let measured = RecordVersion {
+            leverage: Some(0.52),
+            cooks_distance: Some(3.1),
+            ..version(1, "superseded", Some(4))
+        };
+        let text = describe_record(
+            "Q-17",
+            &[
+                measured,
+                version(2, "proposed", None),
+                version(3, "current", Some(1)),
+                RecordVersion {
+                    excluded: true,
+                    ..version(4, "current", None)
+                },
+            ],
+            &[],
+        );
+        for want in [
+            "record Q-17: 4 version(s), in MW-2/boron",
+            "version 1  superseded  (no longer in use",
+            "year = 2025.5  y = 41 mg/L",
+            "on arrival (fit version 4): leverage 0.52, studentized residual -, Cook's distance 3.1",
+            "version 2  proposed  (a resubmission kept aside, not in the fit)",
+            "version 3  current  (in the fit)\n",
+            "joined fit version 1; no diagnostics on arrival",
+            "version 4  current  (excluded from the fit by a verdict)",
+            "findings naming it\n  none",
+        ] {
+            assert!(text.contains(want), "missing `{want}` in:\n{text}");
+        }
     }
 
     #[test]

@@ -212,7 +212,7 @@ pub fn record_finding(
     };
 
     let no_cause = (causes.is_empty() && without.is_some())
-        .then(|| no_cause_sentence(&case.judgement.kinds, x_kind, &x_label));
+        .then(|| no_cause_sentence(&case.judgement.kinds, x_kind, &x_label, advice.is_some()));
 
     let summary = format!(
         "record {} in {}: {}",
@@ -603,10 +603,18 @@ fn x_label(kind: XKind, settings: &SeriesSettings) -> String {
 /// Why a record finding lists no likely entry error: which errors were
 /// tried, and what is left to check. Said only when they were tried (the
 /// series had a fit without the record) and none fitted markedly better.
-fn no_cause_sentence(kinds: &[RecordKind], x_kind: XKind, x_label: &str) -> String {
+fn no_cause_sentence(kinds: &[RecordKind], x_kind: XKind, x_label: &str, advice: bool) -> String {
     let x_errors = match x_kind {
         XKind::DecimalYear => "a year off by 1 or 10".to_string(),
+        XKind::Distance | XKind::Other if x_label == "x" => {
+            "x ten times too large or too small".to_string()
+        }
         XKind::Distance | XKind::Other => format!("a {x_label} ten times too large or too small"),
+    };
+    let see_advice = if advice {
+        " and see the sampling advice"
+    } else {
+        ""
     };
     let tried = format!(
         "None of the entry errors tried (a slipped decimal point, a unit mix-up, a lost minus sign, transposed digits, {x_errors}, a record filed under the wrong series) fits the trend without the record markedly better than the record as written."
@@ -614,13 +622,18 @@ fn no_cause_sentence(kinds: &[RecordKind], x_kind: XKind, x_label: &str) -> Stri
     let next = if kinds.contains(&RecordKind::Outlier) && kinds.contains(&RecordKind::HighLeverage)
     {
         format!(
-            "If its value and {x_label} are right, the sample lies beyond the range surveyed so far and departs from the trend, which there rests on this record alone: check the sample itself (where and how it was taken) and see the sampling advice."
+            "If its value and {x_label} are right, the sample lies beyond the range surveyed so far and departs from the trend, which there rests on this record alone: check the sample itself (where and how it was taken){see_advice}."
         )
     } else if kinds.contains(&RecordKind::Outlier) {
         "If its value is as the laboratory reported it, check the sample itself: where, at what depth and how it was taken, its holding time, and anything unusual noted on the field sheet.".to_string()
     } else if kinds.contains(&RecordKind::HighLeverage) {
         format!(
-            "It is not far enough from that trend to be an outlier, but its {x_label} lies far beyond the series' usual spacing: check that first, and if it is right, see the sampling advice."
+            "It is not far enough from that trend to be an outlier, but its {x_label} lies far beyond the series' usual spacing: check that first{}.",
+            if advice {
+                ", and if it is right, see the sampling advice"
+            } else {
+                ""
+            }
         )
     } else {
         format!(

@@ -442,7 +442,7 @@ fn scope_line(a: About) -> &'static str {
             "Rows of this file, or the whole file, were set aside by validation: nothing set aside entered any fit."
         }
         About::Conflict => {
-            "A record arrived again with other values. The stored version is unchanged and still in the fit; the new one waits as a proposed version."
+            "A record arrived again with other values. The stored version is unchanged; the new one waits as a proposed version, outside the fit."
         }
         About::Feed => "A feed stopped delivering files as often as configured.",
         About::Disk => "The disk is nearly full: files wait in the inbox and nothing is lost.",

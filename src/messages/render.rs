@@ -1179,12 +1179,15 @@ pub fn render_digest(d: &Digest) -> Rendered {
         inline(&d.period, FIELD_CHARS)
     );
     let describe = |l: &DigestLine| -> String {
-        let mut s = format!(
-            "#{} {} - series {}",
-            l.finding_id,
-            l.severity.as_str(),
-            inline(&l.series, FIELD_CHARS)
-        );
+        // What the finding is about, as its own message's title says it.
+        let name = inline(&l.series, FIELD_CHARS);
+        let place = match l.kinds.first() {
+            Some(FindingKind::Quarantined) if l.record_id.is_none() => format!("file {name}"),
+            Some(FindingKind::SilentFeed) => name,
+            Some(FindingKind::DiskSpace) => "free disk space".to_string(),
+            _ => format!("series {name}"),
+        };
+        let mut s = format!("#{} {} - {place}", l.finding_id, l.severity.as_str());
         if let Some(r) = &l.record_id {
             put!(s, ", record {}", inline(r, FIELD_CHARS));
         }
@@ -1664,6 +1667,22 @@ pub(crate) mod tests {
         );
         assert!(r.text.contains("record MW-3/2031-08"));
         assert!(!r.text.lines().any(|l| l.starts_with("Bcc:")));
+        // A file set aside is named as a file, not as a series.
+        let mut with_file = d.clone();
+        with_file.lines.push(DigestLine {
+            finding_id: 23,
+            series: "2031-07-14_batch.csv".into(),
+            record_id: None,
+            kinds: vec![FindingKind::Quarantined],
+            severity: Severity::Warning,
+        });
+        assert!(
+            render_digest(&with_file)
+                .text
+                .contains("#23 warning - file 2031-07-14_batch.csv: held for review"),
+            "{}",
+            render_digest(&with_file).text
+        );
         assert!(r.chart.is_none());
         let mut reordered = d.clone();
         reordered.lines.reverse();

@@ -1122,9 +1122,9 @@ mod commands {
                 return ExitCode::from(EXIT_STORE);
             }
         };
-        if versions.is_empty() {
+        if versions.is_empty() && findings.is_empty() {
             eprintln!(
-                "slopewarden: no record `{record_id}` is stored (a row set aside by validation is listed by its finding: `slopewarden findings`)"
+                "slopewarden: no record `{record_id}` is stored, and no finding names it; `slopewarden findings` lists the findings"
             );
             return ExitCode::from(EXIT_BAD_INPUT);
         }

@@ -343,12 +343,20 @@ pub fn describe_record(
                 }
                 a
             });
-    let _ = writeln!(
-        o,
-        "record {record_id}: {} version(s), in {}",
-        versions.len(),
-        series.join(", ")
-    );
+    if versions.is_empty() {
+        // A row set aside by validation: only its finding knows of it.
+        let _ = writeln!(
+            o,
+            "record {record_id}: not stored (set aside when it arrived); the findings below say why"
+        );
+    } else {
+        let _ = writeln!(
+            o,
+            "record {record_id}: {} version(s), in {}",
+            versions.len(),
+            series.join(", ")
+        );
+    }
     for v in versions {
         // Decimal years read as such when nothing else is configured (as
         // the findings word it).

@@ -835,6 +835,13 @@ fn a_bad_row_or_an_unreadable_file_is_quarantined_and_the_repaired_file_is_not()
     assert_eq!(kinds(f), ["quarantined"]);
     assert_eq!(record_ids(f), ["Q032"]);
     assert_eq!(f["file"], "b.csv");
+    // `record` of the row set aside finds it through its finding.
+    let shown = site.run_ok(&["record", "Q032"]);
+    assert!(
+        shown.starts_with("record Q032: not stored (set aside when it arrived)")
+            && shown.contains("[quarantined]"),
+        "{shown}"
+    );
     // Its message is about the file: no trend table, and where to read
     // every row set aside.
     let body = site.message_text(f);

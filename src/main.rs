@@ -1058,12 +1058,6 @@ mod commands {
                 return ExitCode::from(EXIT_STORE);
             }
         };
-        if json {
-            return print_json(&serde_json::json!({
-                "finding": row,
-                "verdicts": verdicts,
-            }));
-        }
         // A trend change one record caused: what became of that record.
         let since = match (
             row.series.as_deref(),
@@ -1094,6 +1088,24 @@ mod commands {
             }
             _ => None,
         };
+        if json {
+            // `since` only for a trend change one record caused, as in the text.
+            let mut doc = serde_json::json!({
+                "finding": row,
+                "verdicts": verdicts,
+            });
+            if let Some(s) = &since {
+                doc["since"] = serde_json::json!({
+                    "record_findings": s
+                        .about_record
+                        .iter()
+                        .map(|(f, vs)| serde_json::json!({ "finding": f, "verdicts": vs }))
+                        .collect::<Vec<_>>(),
+                    "current_fit": s.current,
+                });
+            }
+            return print_json(&doc);
+        }
         print!(
             "{}",
             slopewarden::show::describe_finding(&row, &verdicts, since.as_ref())

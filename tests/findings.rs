@@ -1047,6 +1047,15 @@ fn excluding_the_record_that_alone_reversed_a_trend_points_at_the_reversal() {
     // `show` of the reversal now says what became of the record, the
     // series' refit without it, and how to close the reversal.
     let after = show(&reversal["id"]);
+    // The same in the JSON, for scripts.
+    let doc: Value =
+        serde_json::from_str(&site.run_ok(&["show", &reversal["id"].to_string(), "--json"]))
+            .unwrap();
+    assert_eq!(
+        doc["since"]["record_findings"][0]["finding"]["status"],
+        "excluded"
+    );
+    assert_eq!(doc["since"]["current_fit"]["n"], 30);
     // Without Q031 the series is the gentle one again (R 4.2.2,
     // summary(lm): p = 6.5e-12).
     assert!(

@@ -1199,8 +1199,13 @@ mod commands {
                     for (id, summary) in &done.caused_trends {
                         println!("  {id}: {summary}");
                         println!(
-                            "      slopewarden review {id} --verdict confirmed --note \"caused by the record of finding {finding}, {} by verdict {}\"{with_config}",
-                            done.verdict, done.verdict_id
+                            "      {}{with_config}",
+                            slopewarden::review::close_trend_command(
+                                *id,
+                                finding,
+                                &done.verdict,
+                                done.verdict_id
+                            )
                         );
                     }
                 }
@@ -1423,11 +1428,8 @@ mod commands {
 
     /// What a series' slope is in, as `status` and the report say it.
     fn slope_unit_of(store: &Store, series: &str) -> Result<Option<String>, ExitCode> {
-        match store.series_glance() {
-            Ok(glances) => Ok(glances
-                .iter()
-                .find(|g| g.row.key == series)
-                .map(slopewarden::report::glance_slope_unit)),
+        match store.series_glance_of(series) {
+            Ok(glance) => Ok(glance.as_ref().map(slopewarden::report::glance_slope_unit)),
             Err(e) => {
                 eprintln!("slopewarden: {e}");
                 Err(ExitCode::from(EXIT_STORE))

@@ -364,7 +364,7 @@ pub fn record_finding(
             .as_ref()
             .map(|f| line(case.transform, f, lo, hi))
             .unwrap_or_default(),
-        verdict_commands: verdict_commands(id),
+        verdict_commands: verdict_commands(id, None),
         created_at: at.to_string(),
     };
     queue(tx, config, id, Some(&case.series.key), &notice, now_unix)?;
@@ -492,11 +492,7 @@ pub fn plain_finding(
         ) {
             // A resubmitted value: keep the stored one, take the new one, or
             // leave the record out.
-            (Some(_), Some(y)) => vec![
-                format!("slopewarden review {id} --verdict confirmed --note \"...\""),
-                format!("slopewarden review {id} --verdict corrected --value {y} --note \"...\""),
-                format!("slopewarden review {id} --verdict excluded --note \"...\""),
-            ],
+            (Some(_), Some(y)) => verdict_commands(id, Some(y)),
             // No single record: `review` takes only "confirmed" here.
             _ => vec![format!(
                 "slopewarden review {id} --verdict confirmed --note \"...\""
@@ -702,8 +698,13 @@ fn message_domain(tx: &Tx<'_>, config: &Config) -> Result<String> {
     Ok(format!("{}.{}", tx.store_token()?, config.mail.instance))
 }
 
-fn verdict_commands(id: i64) -> Vec<String> {
-    ["confirmed", "corrected --value V", "excluded"]
+/// The three verdicts on a record, `corrected` with `value` ready when it
+/// is known (a resubmitted value), else with V to fill in.
+fn verdict_commands(id: i64, value: Option<f64>) -> Vec<String> {
+    let corrected = value.map_or("corrected --value V".to_string(), |y| {
+        format!("corrected --value {y}")
+    });
+    ["confirmed", corrected.as_str(), "excluded"]
         .iter()
         .map(|v| format!("slopewarden review {id} --verdict {v} --note \"...\""))
         .collect()

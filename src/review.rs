@@ -105,6 +105,15 @@ pub enum ReviewError {
     Refused(String),
 }
 
+/// The command that closes trend finding `trend` once the record that
+/// alone caused it has been answered on finding `finding` by verdict
+/// `verdict_id` (`corrected` or `excluded`).
+pub fn close_trend_command(trend: i64, finding: i64, verdict: &str, verdict_id: i64) -> String {
+    format!(
+        "slopewarden review {trend} --verdict confirmed --note \"caused by the record of finding {finding}, {verdict} by verdict {verdict_id}\""
+    )
+}
+
 fn refused(msg: impl Into<String>) -> ReviewError {
     ReviewError::Refused(msg.into())
 }

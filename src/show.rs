@@ -287,8 +287,9 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
     if let (true, Some((finding, v))) = (f.status == "open", &settled_by) {
         let _ = writeln!(
             o,
-            "\nthe record this change hinged on has been {}; compare the series now (above) with the change, then close this finding:\n  slopewarden review {} --verdict confirmed --note \"caused by the record of finding {finding}, {} by verdict {}\"",
-            v.verdict, f.id, v.verdict, v.id
+            "\nthe record this change hinged on has been {}; compare the series now (above) with the change, then close this finding:\n  {}",
+            v.verdict,
+            crate::review::close_trend_command(f.id, *finding, &v.verdict, v.id)
         );
     } else if let (true, Some(y)) = (f.status == "open", d["proposed_y"].as_f64()) {
         let _ = writeln!(

@@ -210,6 +210,15 @@ impl Store {
     /// and fit rows (and one record row per series), never the records of
     /// a series, so it stays cheap on a large store.
     pub fn series_glance(&self) -> Result<Vec<SeriesGlance>> {
+        self.glance_where(None)
+    }
+
+    /// The same for one series, by key; `None` if there is no such series.
+    pub fn series_glance_of(&self, key: &str) -> Result<Option<SeriesGlance>> {
+        Ok(self.glance_where(Some(key))?.pop())
+    }
+
+    fn glance_where(&self, key: Option<&str>) -> Result<Vec<SeriesGlance>> {
         let mut stmt = self
             .conn
             .prepare(
@@ -221,11 +230,12 @@ impl Store {
                         f.slope_ci_high, f.slope_p, f.x_min, f.x_max, f.transform,
                         s.x_name, s.x_unit
                  FROM series s LEFT JOIN fits f ON f.id = s.latest_fit
+                 WHERE ?1 IS NULL OR s.key = ?1
                  ORDER BY s.key",
             )
             .map_err(self.wrap())?;
         let rows = stmt
-            .query_map([], |r| {
+            .query_map([key], |r| {
                 let fit = match r.get::<_, Option<i64>>(9)? {
                     Some(version) => Some(GlanceFit {
                         version,

@@ -1,5 +1,8 @@
 //! Speed of the robust trend statistics (criterion). Run: `cargo bench --bench robust`.
 //!
+//! `robust_every_refit_to_100` compares recomputing at every refit of a
+//! short series with the kept pairwise slopes (`PairwiseTrend`).
+//!
 //! Targets: Theil-Sen slope with its confidence interval at n = 10,000 within
 //! 100 ms; Mann-Kendall at n = 1,000,000 well under a second.
 
@@ -7,6 +10,7 @@ use std::hint::black_box;
 use std::time::Duration;
 
 use criterion::{BenchmarkId, Criterion, criterion_group, criterion_main};
+use slopewarden::stats::pairwise::PairwiseTrend;
 use slopewarden::stats::robust::{mann_kendall, theil_sen};
 
 /// SplitMix64: deterministic pseudo-random numbers for the test series.
@@ -75,5 +79,43 @@ fn bench_mann_kendall(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, bench_theil_sen, bench_mann_kendall);
+/// A short series refitting at every record, as the ingest path keeps its
+/// robust slope current up to 100 points: Theil-Sen and Mann-Kendall at
+/// every n from 3 to 100, from scratch against kept pairwise slopes, side
+/// by side in one run.
+fn bench_every_refit(c: &mut Criterion) {
+    let mut group = c.benchmark_group("robust_every_refit_to_100");
+    group
+        .sample_size(20)
+        .warm_up_time(Duration::from_millis(500))
+        .measurement_time(Duration::from_secs(3));
+    let (x, y) = series(100);
+    group.bench_function("from_scratch", |b| {
+        b.iter(|| {
+            for n in 3..=100 {
+                black_box(theil_sen(&x[..n], &y[..n], 0.95).ok());
+                black_box(mann_kendall(&x[..n], &y[..n]).ok());
+            }
+        })
+    });
+    let points: Vec<(f64, f64)> = x.iter().copied().zip(y.iter().copied()).collect();
+    group.bench_function("kept_pairwise", |b| {
+        b.iter(|| {
+            let mut kept = PairwiseTrend::new();
+            for n in 3..=100 {
+                kept.follow(black_box(&points[..n]));
+                black_box(kept.theil_sen(0.95).ok());
+                black_box(kept.mann_kendall().ok());
+            }
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(
+    benches,
+    bench_theil_sen,
+    bench_mann_kendall,
+    bench_every_refit
+);
 criterion_main!(benches);

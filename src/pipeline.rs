@@ -36,6 +36,7 @@ use crate::findings::rules::{
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
 use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
+use crate::stats::pairwise::PairwiseTrend;
 use crate::stats::robust::{mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
 use crate::store::seal::SealScope;
@@ -52,10 +53,10 @@ const ROBUST_GROWTH: f64 = 2.0;
 
 /// Up to this many points, the robust slope is recomputed at every refit:
 /// in a short series (most monitoring series are) each record moves it, and
-/// a message's robust slope should be the one with the record. About 20 µs
-/// a refit at 50 points; on the 1,000 × 1,000 benchmark stream, whose
-/// series refit every 3 or 4 records, about 6 % more CPU than doubling
-/// alone.
+/// a message's robust slope should be the one with the record. The pairwise
+/// slopes are kept meanwhile ([`SeriesCache::pairwise`]): a refit at every
+/// record from 3 to 100 points costs about 0.5 ms in all (1.4 ms from
+/// scratch; `cargo bench --bench robust`).
 pub(crate) const ROBUST_EVERY_REFIT_UP_TO: i64 = 100;
 
 /// The niceness of the thread that reads and parses files ahead (see
@@ -109,6 +110,11 @@ const LISTED_ERRORS: usize = 200;
 /// for months must not hold every point it ever stored.
 const POINTS_KEPT_MAX: usize = 4_000_000;
 
+/// Pairwise slopes kept in [`SeriesCache`] at most (8 bytes each: 64 MB;
+/// a series of 100 points holds 4,950). Past it they are all let go and
+/// rebuilt from the series' points as the series refit.
+const PAIRWISE_SLOPES_MAX: usize = 8_000_000;
+
 /// Series rows kept between files by the one writer, so that a series
 /// touched by every file is not read back each time. Cleared whenever a
 /// transaction fails, since its rows may then be ahead of the database.
@@ -128,6 +134,13 @@ pub struct SeriesCache {
     cutoffs: CutoffCache,
     /// The last robust slope and interval computed per series.
     robust: HashMap<String, (f64, f64, f64)>,
+    /// The pairwise slopes of series short enough for their robust slope
+    /// to be recomputed at every refit, kept current point by point.
+    pairwise: HashMap<String, PairwiseTrend>,
+    /// Each series' latest least-squares fit, for the next file's "before"
+    /// and for scoring other series' records against it; used only while
+    /// its moments are the series' current ones.
+    line_fits: HashMap<String, LineFit>,
     /// The ln(y) screen per series (None: not applicable).
     log: HashMap<String, Option<SeriesState>>,
     quantiles: Option<TQuantiles>,
@@ -152,9 +165,20 @@ impl SeriesCache {
         self.awaiting.clear();
         self.judged_low.clear();
         self.robust.clear();
+        self.pairwise.clear();
+        self.line_fits.clear();
         self.log.clear();
         self.windows.clear();
         self.revision = None;
+    }
+
+    /// The series' fit kept from its last refit, when it was made from
+    /// exactly these moments at this level.
+    fn known_fit(&self, key: &str, m: &Moments, level: f64) -> Option<LineFit> {
+        self.line_fits
+            .get(key)
+            .filter(|f| f.moments == *m && f.level == level)
+            .copied()
     }
 
     fn quantiles(&mut self, level: f64) -> &mut TQuantiles {
@@ -2077,7 +2101,37 @@ fn store_file_behind<'t, 'c: 't>(
     }
     let mut robust_of: HashMap<&str, RobustRow> = HashMap::default();
     {
-        let jobs: Vec<(&str, &[(f64, f64)])> = due
+        // A short series' pairwise slopes are kept and take only the new
+        // points; a longer one's are selected afresh, on two threads.
+        let mut fresh: Vec<&str> = Vec::new();
+        for &key in &due {
+            let Some(points) = cache.points.get(key) else {
+                continue;
+            };
+            if points.len() as i64 > ROBUST_EVERY_REFIT_UP_TO {
+                cache.pairwise.remove(key);
+                fresh.push(key);
+                continue;
+            }
+            let kept = cache.pairwise.entry(key.to_string()).or_default();
+            kept.follow(points);
+            if let Some(r) = robust_row_of(kept, config.level) {
+                robust_of.insert(key, r);
+                cache
+                    .robust
+                    .insert(key.to_string(), (r.slope, r.ci_low, r.ci_high));
+            }
+        }
+        if cache
+            .pairwise
+            .values()
+            .map(PairwiseTrend::slopes_held)
+            .sum::<usize>()
+            > PAIRWISE_SLOPES_MAX
+        {
+            cache.pairwise = HashMap::default();
+        }
+        let jobs: Vec<(&str, &[(f64, f64)])> = fresh
             .iter()
             .filter_map(|k| cache.points.get(*k).map(|p| (*k, p.as_slice())))
             .chain(windowed.iter().map(|(k, p)| (*k, p.as_slice())))
@@ -2114,9 +2168,14 @@ fn store_file_behind<'t, 'c: 't>(
             t.row.robust_n = t.state.n() as i64;
         }
         if let Ok(new_fit) = &fit {
-            let quantiles = cache.quantiles(config.level);
-            let previous =
-                LineFit::from_moments_with(&t.before, config.level, |df| quantiles.get(df)).ok();
+            let previous = match cache.known_fit(key, &t.before, config.level) {
+                Some(f) => Some(f),
+                None => {
+                    let quantiles = cache.quantiles(config.level);
+                    LineFit::from_moments_with(&t.before, config.level, |df| quantiles.get(df)).ok()
+                }
+            };
+            cache.line_fits.insert(key.clone(), *new_fit);
             let without = t
                 .last
                 .as_ref()
@@ -2410,7 +2469,9 @@ fn rank_flagged(
                     continue;
                 }
                 neighbours.fits.entry(i).or_insert_with(|| {
-                    LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
+                    cache.known_fit(k, m, config.level).or_else(|| {
+                        LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
+                    })
                 });
                 related_here.push(i);
             }
@@ -2787,6 +2848,19 @@ pub(crate) fn x_span(x: &[f64]) -> Option<(f64, f64)> {
     x.iter().fold(None, |span, &v| match span {
         None => Some((v, v)),
         Some((lo, hi)) => Some((f64::min(lo, v), f64::max(hi, v))),
+    })
+}
+
+/// [`robust_row`] from pairwise slopes kept current.
+fn robust_row_of(kept: &PairwiseTrend, level: f64) -> Option<RobustRow> {
+    let ts = kept.theil_sen(level).ok()?;
+    let mk = kept.mann_kendall().ok()?;
+    Some(RobustRow {
+        slope: ts.slope,
+        ci_low: ts.ci_low,
+        ci_high: ts.ci_high,
+        mk_s: mk.s,
+        mk_p: mk.p,
     })
 }
 

@@ -17,6 +17,8 @@
 //! - [`SeriesState`]: the per-series streaming state; `add` returns the new
 //!   point's own diagnostics and the fit with and without it.
 //! - [`robust`]: Theil-Sen slope with its confidence interval, Mann-Kendall.
+//! - [`pairwise`]: the same two kept current point by point for a short
+//!   series (sorted pairwise slopes, running S).
 //! - [`Transform`]: none, ln y, ln x, ln-ln, with results in original units.
 //! - [`durbin_watson`]: serial correlation of x-ordered residuals.
 //!
@@ -31,6 +33,7 @@ pub mod general;
 mod influence;
 mod line;
 mod moments;
+pub mod pairwise;
 pub mod robust;
 mod serial;
 mod slope_select;

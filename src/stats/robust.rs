@@ -89,6 +89,21 @@ pub fn mann_kendall(x: &[f64], y: &[f64]) -> Result<MannKendall, FitError> {
     // Knight (1966): concordant = all - tied in x - tied in y + tied in both - discordant.
     let concordant = all_pairs + tied_both - tied_x - tied_y - discordant;
     let s_wide = concordant as i128 - discordant as i128;
+    Ok(mann_kendall_from(n, s_wide, &x_ties, &y_ties))
+}
+
+/// Mann-Kendall from S (`s_wide`, exact) and the sizes (> 1) of the groups
+/// of equal x and of equal y: what [`mann_kendall`] and
+/// [`super::pairwise::PairwiseTrend`] share, so both give the same result
+/// for the same points. `n >= 3`.
+pub(crate) fn mann_kendall_from(
+    n: usize,
+    s_wide: i128,
+    x_ties: &[u128],
+    y_ties: &[u128],
+) -> MannKendall {
+    let nn = n as u128;
+    let all_pairs = nn * (nn - 1) / 2;
     // |S| <= n(n-1)/2, which fits i64 for any slice length in practice.
     let s = i64::try_from(s_wide).unwrap_or(if s_wide > 0 { i64::MAX } else { i64::MIN });
 
@@ -96,7 +111,7 @@ pub fn mann_kendall(x: &[f64], y: &[f64]) -> Result<MannKendall, FitError> {
     let var_s = if degenerate {
         0.0
     } else {
-        kendall_var_s(nn, &y_ties, &x_ties)
+        kendall_var_s(nn, y_ties, x_ties)
     };
     let z = if var_s > 0.0 {
         match s.signum() {
@@ -108,14 +123,14 @@ pub fn mann_kendall(x: &[f64], y: &[f64]) -> Result<MannKendall, FitError> {
         0.0
     };
     let p = if z == 0.0 { 1.0 } else { normal_two_sided_p(z) };
-    Ok(MannKendall {
+    MannKendall {
         n,
         s,
         var_s,
         z,
         p,
         tau: s as f64 / all_pairs as f64,
-    })
+    }
 }
 
 /// Kendall's Var(S) with ties in y (`t`) and x (`u`), n >= 3, as exact
@@ -233,9 +248,36 @@ pub fn theil_sen(x: &[f64], y: &[f64], level: f64) -> Result<TheilSen, FitError>
         });
     }
     let selector = SlopeSelector::new(x, y)?;
-    let pairs = selector.pairs();
+    let mut xs: Vec<f64> = x.iter().map(|&v| v + 0.0).collect();
+    let mut ys: Vec<f64> = y.iter().map(|&v| v + 0.0).collect();
+    xs.sort_unstable_by(f64::total_cmp);
+    ys.sort_unstable_by(f64::total_cmp);
+    theil_sen_from(
+        selector.pairs(),
+        &xs,
+        &ys,
+        level,
+        |ranks| selector.select(ranks),
+        || (0..n).fold(0, |w, i| if x[i].abs() > x[w].abs() { i } else { w }),
+    )
+}
+
+/// Theil-Sen from the number of pairwise slopes, x and y each sorted (-0.0
+/// made +0.0), and a way to select pairwise slopes by 0-based rank: what
+/// [`theil_sen`] and [`super::pairwise::PairwiseTrend`] share, so both give
+/// the same result for the same slopes. `widest` names the point with the
+/// largest |x| for the error an overflowing intercept raises. `n >= 2`.
+pub(crate) fn theil_sen_from(
+    pairs: u64,
+    xs: &[f64],
+    ys: &[f64],
+    level: f64,
+    select: impl FnOnce(&[u64]) -> Result<Vec<f64>, FitError>,
+    widest: impl FnOnce() -> usize,
+) -> Result<TheilSen, FitError> {
+    let n = xs.len();
     if pairs == 0 {
-        return Err(FitError::ConstantX { n, x: x[0] + 0.0 });
+        return Err(FitError::ConstantX { n, x: xs[0] + 0.0 });
     }
     let (mid_lo, mid_hi) = if pairs % 2 == 1 {
         (pairs / 2, pairs / 2)
@@ -243,10 +285,6 @@ pub fn theil_sen(x: &[f64], y: &[f64], level: f64) -> Result<TheilSen, FitError>
         (pairs / 2 - 1, pairs / 2)
     };
 
-    let mut xs: Vec<f64> = x.iter().map(|&v| v + 0.0).collect();
-    let mut ys: Vec<f64> = y.iter().map(|&v| v + 0.0).collect();
-    xs.sort_unstable_by(f64::total_cmp);
-    ys.sort_unstable_by(f64::total_cmp);
     let nn = n as u128;
     let cube = |g: u128| (g * (g - 1) * (2 * g + 5)) as i128;
     let tie_sum = |v: &[f64]| {
@@ -255,7 +293,7 @@ pub fn theil_sen(x: &[f64], y: &[f64], level: f64) -> Result<TheilSen, FitError>
             .map(cube)
             .sum::<i128>()
     };
-    let sigsq = ((cube(nn) - tie_sum(&xs) - tie_sum(&ys)) as f64 / 18.0).max(0.0);
+    let sigsq = ((cube(nn) - tie_sum(xs) - tie_sum(ys)) as f64 / 18.0).max(0.0);
     let z = normal_quantile((1.0 - level) / 2.0).abs();
     let spread = z * sigsq.sqrt();
     let nt = pairs as f64;
@@ -264,17 +302,16 @@ pub fn theil_sen(x: &[f64], y: &[f64], level: f64) -> Result<TheilSen, FitError>
     // Both are whole numbers in [0, N' - 1] (N' < 2^53 for any real input).
     let (rl, ru) = (lower as u64, upper as u64);
 
-    let found = selector.select(&[mid_lo, mid_hi, rl, ru])?;
+    let found = select(&[mid_lo, mid_hi, rl, ru])?;
     let slope = if mid_lo == mid_hi {
         found[0]
     } else {
         mean_of_two(found[0], found[1])
     };
-    let intercept = sorted_median(&ys) - slope * sorted_median(&xs);
+    let intercept = sorted_median(ys) - slope * sorted_median(xs);
     if !intercept.is_finite() {
-        let widest = (0..n).fold(0, |w, i| if x[i].abs() > x[w].abs() { i } else { w });
         return Err(FitError::NonFinite {
-            index: widest,
+            index: widest(),
             axis: "intercept",
             value: intercept,
         });

@@ -37,7 +37,7 @@ use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
 use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
 use crate::stats::pairwise::PairwiseTrend;
-use crate::stats::robust::{mann_kendall, theil_sen};
+use crate::stats::robust::{MannKendall, TheilSen, mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
 use crate::store::seal::SealScope;
 use crate::store::{
@@ -2853,29 +2853,29 @@ pub(crate) fn x_span(x: &[f64]) -> Option<(f64, f64)> {
 
 /// [`robust_row`] from pairwise slopes kept current.
 fn robust_row_of(kept: &PairwiseTrend, level: f64) -> Option<RobustRow> {
-    let ts = kept.theil_sen(level).ok()?;
-    let mk = kept.mann_kendall().ok()?;
-    Some(RobustRow {
-        slope: ts.slope,
-        ci_low: ts.ci_low,
-        ci_high: ts.ci_high,
-        mk_s: mk.s,
-        mk_p: mk.p,
-    })
+    Some(robust_row_from(
+        kept.theil_sen(level).ok()?,
+        kept.mann_kendall().ok()?,
+    ))
 }
 
 /// Theil-Sen and Mann-Kendall of a series' points; None when undefined.
 pub(crate) fn robust_row(points: &[(f64, f64)], level: f64) -> Option<RobustRow> {
     let (x, y): (Vec<f64>, Vec<f64>) = points.iter().copied().unzip();
-    let ts = theil_sen(&x, &y, level).ok()?;
-    let mk = mann_kendall(&x, &y).ok()?;
-    Some(RobustRow {
+    Some(robust_row_from(
+        theil_sen(&x, &y, level).ok()?,
+        mann_kendall(&x, &y).ok()?,
+    ))
+}
+
+fn robust_row_from(ts: TheilSen, mk: MannKendall) -> RobustRow {
+    RobustRow {
         slope: ts.slope,
         ci_low: ts.ci_low,
         ci_high: ts.ci_high,
         mk_s: mk.s,
         mk_p: mk.p,
-    })
+    }
 }
 
 /// The path of a file relative to the inbox, for display and storage.

@@ -1375,6 +1375,9 @@ mod commands {
                     "{} series, {} findings. A flag is a prompt to verify a record, not a compliance determination.",
                     summary.series, summary.findings
                 );
+                if let Some(note) = &summary.size_note {
+                    println!("{note}");
+                }
                 ExitCode::SUCCESS
             }
             Err(e @ ReportError::Pattern { .. }) => {

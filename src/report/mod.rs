@@ -57,6 +57,23 @@ pub struct ReportSummary {
     pub findings: usize,
     /// Files written.
     pub files: Vec<std::path::PathBuf>,
+    /// Advice when the HTML file is too large to open comfortably.
+    pub size_note: Option<String>,
+}
+
+/// An HTML report larger than this opens slowly in a browser, or not at
+/// all (a 1,000-series store of 1,000 points each gave 416 MiB).
+const LARGE_REPORT_BYTES: usize = 100 << 20;
+
+/// What to say about an HTML report of `bytes` covering `series` series:
+/// nothing unless it is large, then how to write one for part of the site.
+pub fn size_note(bytes: usize, series: usize) -> Option<String> {
+    (bytes > LARGE_REPORT_BYTES && series > 1).then(|| {
+        format!(
+            "The report is {} MB for {series} series; a browser opens a file that size slowly or not at all. Write one for part of the site with --series GLOB (for example --series 'MW-*/*'), or the figures as CSV with --format csv.",
+            bytes >> 20
+        )
+    })
 }
 
 /// Why a report could not be written.
@@ -103,11 +120,13 @@ pub fn write_report(
         series: data.series.len(),
         findings: data.finding_count(),
         files: Vec::new(),
+        size_note: None,
     };
     match format {
         ReportFormat::Html => {
             let page = html::render(&data, generated_at);
             write_atomically(out, page.as_bytes())?;
+            summary.size_note = size_note(page.len(), summary.series);
             summary.files.push(out.to_path_buf());
         }
         ReportFormat::Csv => {
@@ -170,4 +189,27 @@ fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), ReportError> {
         return Err(err(e));
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    #![allow(clippy::unwrap_used)]
+    use super::*;
+
+    /// The size at which a browser struggles is common practice, not a
+    /// standard: the note only points at the narrower ways to write one.
+    #[test]
+    fn a_large_report_says_how_to_write_a_smaller_one() {
+        assert_eq!(size_note(LARGE_REPORT_BYTES, 1_000), None);
+        assert_eq!(size_note(436 << 20, 1), None, "one series cannot be split");
+        let note = size_note(436 << 20, 1_000).unwrap();
+        assert!(
+            note.starts_with("The report is 436 MB for 1000 series"),
+            "{note}"
+        );
+        assert!(
+            note.contains("--series GLOB") && note.contains("--format csv"),
+            "{note}"
+        );
+    }
 }

@@ -110,10 +110,64 @@ const LISTED_ERRORS: usize = 200;
 /// for months must not hold every point it ever stored.
 const POINTS_KEPT_MAX: usize = 4_000_000;
 
-/// Pairwise slopes kept in [`SeriesCache`] at most (8 bytes each: 64 MB;
-/// a series of 100 points holds 4,950). Past it they are all let go and
-/// rebuilt from the series' points as the series refit.
-const PAIRWISE_SLOPES_MAX: usize = 8_000_000;
+/// Pairwise slopes kept in [`SeriesCache`] at most (8 bytes each: 32 MB;
+/// a series of 100 points holds 4,950, so about 800 such series). Past it
+/// no further series is kept: its robust slope is recomputed from scratch
+/// (rebuilding kept slopes costs several times that, so nothing is let go
+/// to make room).
+const PAIRWISE_SLOPES_MAX: usize = 4_000_000;
+
+/// The pairwise slopes of short series, kept between files within a bound
+/// on the slopes held.
+#[derive(Debug, Default)]
+struct KeptPairs {
+    series: HashMap<String, PairwiseTrend>,
+    /// Slopes held by all of them.
+    held: usize,
+}
+
+impl KeptPairs {
+    /// The robust row of `key` from its kept pairwise slopes, brought up
+    /// to `points` (Some(None) when undefined), or None when the series is
+    /// not kept: longer than [`ROBUST_EVERY_REFIT_UP_TO`], or no room
+    /// under `max` slopes. A series that takes the total past `max` still
+    /// gets its row, and is then let go.
+    fn robust(
+        &mut self,
+        key: &str,
+        points: &[(f64, f64)],
+        level: f64,
+        max: usize,
+    ) -> Option<Option<RobustRow>> {
+        let n = points.len();
+        if n as i64 > ROBUST_EVERY_REFIT_UP_TO {
+            self.forget(key);
+            return None;
+        }
+        if !self.series.contains_key(key) && self.held + n * n.saturating_sub(1) / 2 > max {
+            return None;
+        }
+        let kept = self.series.entry(key.to_string()).or_default();
+        self.held -= kept.slopes_held();
+        kept.follow(points);
+        self.held += kept.slopes_held();
+        let row = robust_row_of(kept, level);
+        if self.held > max {
+            self.forget(key);
+        }
+        Some(row)
+    }
+
+    fn forget(&mut self, key: &str) {
+        if let Some(k) = self.series.remove(key) {
+            self.held -= k.slopes_held();
+        }
+    }
+
+    fn clear(&mut self) {
+        *self = KeptPairs::default();
+    }
+}
 
 /// Series rows kept between files by the one writer, so that a series
 /// touched by every file is not read back each time. Cleared whenever a
@@ -136,7 +190,7 @@ pub struct SeriesCache {
     robust: HashMap<String, (f64, f64, f64)>,
     /// The pairwise slopes of series short enough for their robust slope
     /// to be recomputed at every refit, kept current point by point.
-    pairwise: HashMap<String, PairwiseTrend>,
+    pairwise: KeptPairs,
     /// Each series' latest least-squares fit, for the next file's "before"
     /// and for scoring other series' records against it; used only while
     /// its moments are the series' current ones.
@@ -2108,28 +2162,19 @@ fn store_file_behind<'t, 'c: 't>(
             let Some(points) = cache.points.get(key) else {
                 continue;
             };
-            if points.len() as i64 > ROBUST_EVERY_REFIT_UP_TO {
-                cache.pairwise.remove(key);
-                fresh.push(key);
-                continue;
+            match cache
+                .pairwise
+                .robust(key, points, config.level, PAIRWISE_SLOPES_MAX)
+            {
+                Some(Some(r)) => {
+                    robust_of.insert(key, r);
+                    cache
+                        .robust
+                        .insert(key.to_string(), (r.slope, r.ci_low, r.ci_high));
+                }
+                Some(None) => {}
+                None => fresh.push(key),
             }
-            let kept = cache.pairwise.entry(key.to_string()).or_default();
-            kept.follow(points);
-            if let Some(r) = robust_row_of(kept, config.level) {
-                robust_of.insert(key, r);
-                cache
-                    .robust
-                    .insert(key.to_string(), (r.slope, r.ci_low, r.ci_high));
-            }
-        }
-        if cache
-            .pairwise
-            .values()
-            .map(PairwiseTrend::slopes_held)
-            .sum::<usize>()
-            > PAIRWISE_SLOPES_MAX
-        {
-            cache.pairwise = HashMap::default();
         }
         let jobs: Vec<(&str, &[(f64, f64)])> = fresh
             .iter()
@@ -2892,6 +2937,57 @@ mod tests {
     //! own transaction, everything it assumed; each wrong assumption rolls
     //! it back whole.
     use super::*;
+
+    fn quarterly(n: usize) -> Vec<(f64, f64)> {
+        (0..n)
+            .map(|i| {
+                let x = 2010.0 + i as f64 * 0.25;
+                // Rounded, with a wobble, so that slopes tie now and then.
+                (
+                    x,
+                    ((5.0 + 0.2 * (x - 2010.0) + ((i * 7) % 5) as f64 * 0.3) * 10.0).round() / 10.0,
+                )
+            })
+            .collect()
+    }
+
+    /// Kept slopes give the row computed from scratch (`robust_row`, whose
+    /// Theil-Sen and Mann-Kendall are checked against scipy in
+    /// tests/reference_robust.rs), file after file.
+    #[test]
+    fn kept_pairwise_slopes_give_the_robust_row_from_scratch() {
+        let mut kept = KeptPairs::default();
+        let all = quarterly(100);
+        for n in [3, 4, 9, 10, 40, 99, 100] {
+            let row = kept.robust("W-1/nitrate", &all[..n], 0.95, 1_000_000);
+            assert_eq!(row, Some(robust_row(&all[..n], 0.95)), "n = {n}");
+        }
+        assert_eq!(kept.held, 4_950);
+        // Past 100 points the series is let go, and computed from scratch.
+        let longer = quarterly(101);
+        assert_eq!(kept.robust("W-1/nitrate", &longer, 0.95, 1_000_000), None);
+        assert_eq!((kept.series.len(), kept.held), (0, 0));
+    }
+
+    /// The bound on slopes held: no series is kept past it, and the one
+    /// that grows past it still gets its row, then is let go.
+    #[test]
+    fn kept_pairwise_slopes_stay_within_their_bound() {
+        let mut kept = KeptPairs::default();
+        let a = quarterly(15);
+        // 10 points: 45 slopes, room under 100.
+        assert!(kept.robust("A", &a[..10], 0.95, 100).is_some());
+        assert_eq!(kept.held, 45);
+        // 12 points more for another series (66 slopes): no room.
+        assert_eq!(kept.robust("B", &a[..12], 0.95, 100), None);
+        assert!(!kept.series.contains_key("B"));
+        // The kept series grows to 15 points (105 slopes): its row, then gone.
+        assert_eq!(kept.robust("A", &a, 0.95, 100), Some(robust_row(&a, 0.95)));
+        assert_eq!((kept.series.len(), kept.held), (0, 0));
+        // With room again, B is kept.
+        assert!(kept.robust("B", &a[..12], 0.95, 100).is_some());
+        assert_eq!(kept.held, 66);
+    }
 
     /// The reading thread's lower priority is its own (the kernel's nice
     /// value of that thread, read back from /proc), not the process's.

@@ -110,7 +110,8 @@ const LISTED_ERRORS: usize = 200;
 /// for months must not hold every point it ever stored.
 const POINTS_KEPT_MAX: usize = 4_000_000;
 
-/// Pairwise slopes kept in [`SeriesCache`] at most (8 bytes each: 32 MB;
+/// Pairwise slopes kept in [`SeriesCache`] at most (8 bytes each: 32 MB,
+/// 40 MB with the room each series keeps to grow;
 /// a series of 100 points holds 4,950, so about 800 such series). Past it
 /// no further series is kept: its robust slope is recomputed from scratch
 /// (rebuilding kept slopes costs several times that, so nothing is let go

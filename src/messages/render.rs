@@ -519,7 +519,7 @@ fn flag_sentence(f: &Flag) -> String {
         (Some(c), false) => {
             put!(
                 s,
-                "; cutoff {} ({})",
+                "; cutoff {}: {}",
                 num(c),
                 inline(&f.cutoff_source, FIELD_CHARS)
             );
@@ -1445,8 +1445,8 @@ pub(crate) mod tests {
         // Wrapping may break a sentence anywhere: search the flattened text.
         let flat = t.split_whitespace().collect::<Vec<_>>().join(" ");
         for needle in [
-            "leverage h = 0.412; cutoff 0.25 (2p/n rule of thumb)",
-            "Cook's distance = 1.31; cutoff 0.8 (median of F(2, n-2))",
+            "leverage h = 0.412; cutoff 0.25: 2p/n rule of thumb",
+            "Cook's distance = 1.31; cutoff 0.8: median of F(2, n-2)",
             "Judged against the fit without 1 record awaiting review.",
             "field-2031-07.csv, line 14",
             "95% CI of slope",

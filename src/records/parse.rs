@@ -89,15 +89,23 @@ pub enum FileError {
     NoHeader,
     /// Required columns are absent from the header.
     #[error(
-        "required column(s) {} not in the header (it has: {}); rename the columns, or set the feed's layout in the config",
+        "required column(s) {} not in the header (it has: {}); {}",
         .missing.join(", "),
-        header_names_for_people(.found)
+        header_names_for_people(.found),
+        .delimiter.map_or_else(
+            || "rename the columns, or set the feed's layout in the config".to_string(),
+            delimiter_advice
+        )
     )]
     MissingColumns {
         /// The required columns not found.
         missing: Vec<String>,
         /// The header's names, trimmed.
         found: Vec<String>,
+        /// Another delimiter under which the header has every required
+        /// column, when one does: the file is then well formed, only
+        /// not in the layout expected.
+        delimiter: Option<u8>,
     },
     /// The file could not be read to its end (an I/O error, or it changed
     /// while it was being read).
@@ -581,6 +589,37 @@ fn check_text(bytes: &[u8]) -> Result<&str, FileError> {
 /// A header's names for a message: at most 12, each cut at 40 characters,
 /// with the count of the rest (a 10 MB header must not become a 10 MB
 /// reason, log line and finding).
+/// The delimiter, other than the layout's, under which the header would
+/// name every missing column: a semicolon-separated export (usual where a
+/// decimal comma is written) read with the canonical comma, say.
+fn other_delimiter(names: &[String], layout: &Layout, missing: &[String]) -> Option<u8> {
+    let header = names.join(std::str::from_utf8(&[layout.delimiter]).unwrap_or(","));
+    [b';', b'\t', b',']
+        .into_iter()
+        .filter(|&d| d != layout.delimiter)
+        .find(|&d| {
+            let split: Vec<&str> = header.split(char::from(d)).map(str::trim).collect();
+            missing.iter().all(|m| split.iter().any(|n| n == m))
+        })
+}
+
+/// What to write in the configuration for a file separated by `delimiter`.
+fn delimiter_advice(delimiter: u8) -> String {
+    let (shown, key) = match delimiter {
+        b';' => ("semicolons", "\";\""),
+        b'\t' => ("tabs", "\"tab\""),
+        _ => ("commas", "\",\""),
+    };
+    let comma = if delimiter == b',' {
+        ""
+    } else {
+        ", and decimal_comma = true if numbers are written like 0,5"
+    };
+    format!(
+        "the header is separated by {shown}: add a [[feed]] for these files in the config with files = a pattern matching their names and delimiter = {key}{comma}"
+    )
+}
+
 fn header_names_for_people(found: &[String]) -> String {
     const NAMES: usize = 12;
     const CHARS: usize = 40;
@@ -690,9 +729,11 @@ impl Columns {
         };
         let y = required(&layout.y)?;
         if !missing.is_empty() {
+            let delimiter = other_delimiter(&names, layout, &missing);
             return Err(FileError::MissingColumns {
                 missing,
                 found: names,
+                delimiter,
             });
         }
         let optional = |name: &Option<String>| -> Result<Option<usize>, FileError> {

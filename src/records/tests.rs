@@ -719,6 +719,7 @@ fn missing_required_columns_are_listed_with_what_was_found() {
         FileError::MissingColumns {
             missing: vec!["series".into(), "y".into()],
             found: vec!["record_id".into(), "site".into(), "x".into()],
+            delimiter: None,
         }
     );
     let template = Layout {
@@ -727,6 +728,67 @@ fn missing_required_columns_are_listed_with_what_was_found() {
     };
     let err = parse_file(b"record_id,site,x,y\n", &template, &no_rules, TODAY).unwrap_err();
     assert!(matches!(err, FileError::MissingColumns { missing, .. } if missing == ["analyte"]));
+}
+
+#[test]
+fn header_under_another_delimiter_is_named_with_the_feed_to_write() {
+    // A semicolon export (the usual one where numbers take a decimal
+    // comma) read with the canonical comma: one header name, none missing
+    // once split on semicolons.
+    let err = parse_file(
+        b"record_id;series;x;y;unit\nA1;W1/nitrate;2020,5;4,2;mg/L\n",
+        &Layout::default(),
+        &no_rules,
+        TODAY,
+    )
+    .unwrap_err();
+    assert!(
+        matches!(
+            &err,
+            FileError::MissingColumns {
+                delimiter: Some(b';'),
+                ..
+            }
+        ),
+        "{err:?}"
+    );
+    let text = err.to_string();
+    assert!(
+        text.contains("the header is separated by semicolons: add a [[feed]]")
+            && text.contains("delimiter = \";\", and decimal_comma = true"),
+        "{text}"
+    );
+    // Tabs, and a feed expecting semicolons given a comma file.
+    let err = parse_file(
+        b"record_id\tseries\tx\ty\n",
+        &Layout::default(),
+        &no_rules,
+        TODAY,
+    )
+    .unwrap_err();
+    assert!(err.to_string().contains("delimiter = \"tab\""), "{err}");
+    let semicolons = Layout {
+        delimiter: b';',
+        ..Layout::default()
+    };
+    let err = parse_file(b"record_id,series,x,y\n", &semicolons, &no_rules, TODAY).unwrap_err();
+    let text = err.to_string();
+    assert!(
+        text.contains("separated by commas") && !text.contains("decimal_comma"),
+        "{text}"
+    );
+    // Names that are missing under every delimiter get the general advice.
+    let err = parse_file(b"id;site;x;y\n", &Layout::default(), &no_rules, TODAY).unwrap_err();
+    assert!(
+        matches!(
+            &err,
+            FileError::MissingColumns {
+                delimiter: None,
+                ..
+            }
+        ) && err.to_string().contains("rename the columns"),
+        "{err}"
+    );
 }
 
 #[test]

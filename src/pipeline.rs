@@ -35,7 +35,7 @@ use crate::findings::rules::{
 };
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;
-use crate::records::{self, Measure, Record, RecordError, SeriesId, Today};
+use crate::records::{self, Matrix, Measure, Record, RecordError, SeriesId, Today, units};
 use crate::stats::pairwise::PairwiseTrend;
 use crate::stats::robust::{MannKendall, TheilSen, mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
@@ -176,6 +176,9 @@ impl KeptPairs {
 #[derive(Debug, Default)]
 pub struct SeriesCache {
     rows: HashMap<String, SeriesRow>,
+    /// Series without a configured unit: the unit their records are in
+    /// (see [`reconcile_units`]).
+    units: RecordUnits,
     /// The fit points (fitted scale) of series whose robust slope has been
     /// computed once, so that later checkpoints need not read them back.
     /// Shared with the findings of a file still being written (a series'
@@ -215,6 +218,7 @@ impl SeriesCache {
     /// Forgets everything (after a failed transaction, or when another
     /// process may have changed findings, as a verdict does).
     pub fn clear(&mut self) {
+        self.units.clear();
         self.rows.clear();
         self.points.clear();
         self.awaiting.clear();
@@ -895,13 +899,29 @@ fn compute_ahead<'t, 'c: 't>(
         return Ok(None);
     }
     let (feed, _) = config.feed_for(&file.relative);
-    let whole = match prepared.parsed.take() {
+    let mut whole = match prepared.parsed.take() {
         Some(Ok(p)) => p,
         other => {
             prepared.parsed = other;
             return Ok(None);
         }
     };
+    let mut units = RecordUnits::default();
+    reconcile_units(
+        &mut whole,
+        config,
+        &mut units,
+        &mut |key| match cache.units.get(key) {
+            Some(u) => Ok(u.clone()),
+            None => Ok(b.tx()?.series_unit(key)?),
+        },
+    )?;
+    if !whole.errors.is_empty() && config.bad_rows == BadRows::RejectFile {
+        // A unit refused: the whole file goes to quarantine, the plain way.
+        prepared.parsed = Some(Ok(whole));
+        return Ok(None);
+    }
+    cache.units.extend(units);
     let survey = Survey::of(&whole);
     let mut whole = Some(whole);
     let mut handed = Spent::default();
@@ -985,8 +1005,18 @@ fn process_file_inner(
     let (feed, layout) = config.feed_for(&file.relative);
     let rules = |id: &SeriesId| config.series_settings(id).rules();
     // What the rules need of the whole file before any record is stored.
+    let mut units = RecordUnits::default();
     let (whole, survey) = match prepared.parsed.take() {
-        Some(Ok(p)) => {
+        Some(Ok(mut p)) => {
+            reconcile_units(
+                &mut p,
+                config,
+                &mut units,
+                &mut |key| match cache.units.get(key) {
+                    Some(u) => Ok(u.clone()),
+                    None => Ok(store.series_unit(key)?),
+                },
+            )?;
             let survey = Survey::of(&p);
             (Some(p), survey)
         }
@@ -1033,6 +1063,8 @@ fn process_file_inner(
         }
         return quarantine_whole(config, store, file, &name, &sha, size, &reason, now, &at);
     }
+    // Stored with this file (a failure clears the cache).
+    cache.units.extend(units);
     let mut whole = whole;
     // A large file is read again from its start, and must hash the same.
     let mut again = match (&whole, &prepared.large) {
@@ -1429,10 +1461,25 @@ impl Survey {
                 }
             }
         }
-        self.errors += p.errors.len();
+        self.add_errors(&p.errors);
+    }
+
+    fn add_errors(&mut self, errors: &[RecordError]) {
+        self.errors += errors.len();
         let room = LISTED_ERRORS.saturating_sub(self.first_errors.len());
-        self.first_errors
-            .extend(p.errors.iter().take(room).cloned());
+        self.first_errors.extend(errors.iter().take(room).cloned());
+    }
+
+    /// The refused rows of the whole file: those found by the survey and
+    /// `late`, those found after it, the first ones listed in line order.
+    fn refused_with(&self, late: Survey) -> (usize, Vec<RecordError>) {
+        let mut first = self.first_errors.clone();
+        if late.errors > 0 {
+            first.extend(late.first_errors);
+            first.sort_by_key(|e| e.line);
+            first.truncate(LISTED_ERRORS);
+        }
+        (self.errors + late.errors, first)
     }
 }
 
@@ -1634,12 +1681,40 @@ fn store_file_behind<'t, 'c: 't>(
     let mut order: Vec<String> = Vec::with_capacity(per_series.len());
     let mut flagged: Vec<Flagged> = Vec::new();
     let mut plain: Vec<PlainFinding> = Vec::new();
+    // Rows of a large file refused over their unit on the second read.
+    let mut late = Survey::default();
     loop {
         let mut parsed = match (rows.next)() {
             Ok(Some(chunk)) => chunk,
             Ok(None) => break,
             Err(e) => return Ok(Err(e)),
         };
+        if !rows.whole {
+            // A large file's chunks, read again: its survey, from the
+            // first read, could not ask the store for its series' units.
+            // (Its records per series still count rows refused here, which
+            // makes the outlier test of those series a little stricter.)
+            let parse_errors = std::mem::take(&mut parsed.errors);
+            reconcile_units(&mut parsed, config, &mut cache.units, &mut |key| {
+                Ok(b.tx()?.series_unit(key)?)
+            })?;
+            if let Some(first) = parsed.errors.first()
+                && config.bad_rows == BadRows::RejectFile
+            {
+                return Ok(Err(records::FileError::Malformed {
+                    line: first.line,
+                    reason: format!(
+                        "{}; ingest.bad_rows = \"reject-file\": fix the row and deliver the file again",
+                        first.reason
+                    ),
+                }));
+            }
+            late.add_errors(&parsed.errors);
+            if !parse_errors.is_empty() {
+                parsed.errors.extend(parse_errors);
+                parsed.errors.sort_by_key(|e| e.line);
+            }
+        }
         counts.bad += parsed.errors.len() as u64;
         if !parsed.errors.is_empty() {
             let errors = parsed.errors.clone();
@@ -2320,7 +2395,7 @@ fn store_file_behind<'t, 'c: 't>(
     let work = FindingsWork::gather(
         cache,
         &touched,
-        rows.survey,
+        rows.survey.refused_with(late),
         (flagged, causes, fits),
         plain,
         trends,
@@ -2579,7 +2654,7 @@ impl FindingsWork {
     fn gather(
         cache: &SeriesCache,
         touched: &HashMap<String, Touched>,
-        survey: &Survey,
+        (errors, first_errors): (usize, Vec<RecordError>),
         (flagged, causes, fits): (Vec<Flagged>, Vec<Vec<Candidate>>, Vec<WithWithout>),
         plain: Vec<PlainFinding>,
         trends: Vec<(String, TrendChange, Option<LineFit>, LineFit)>,
@@ -2619,12 +2694,8 @@ impl FindingsWork {
             fits,
             plain,
             trends,
-            errors: survey.errors,
-            first_errors: if survey.errors > 0 {
-                survey.first_errors.clone()
-            } else {
-                Vec::new()
-            },
+            errors,
+            first_errors,
         }
     }
 
@@ -2793,6 +2864,107 @@ fn raise_findings(
 }
 
 /// A stored-side refusal of a parsed record, in the parser's error shape.
+/// The unit of each series without a configured one: that of its
+/// records, `None` while none of them names a unit.
+type RecordUnits = HashMap<String, Option<String>>;
+
+/// Puts a chunk's records of series without a configured unit in the unit
+/// their series' records are in (the first unit such a series met, stored
+/// or earlier in the chunk): a record naming another unit is converted
+/// when the unit table can (a laboratory reporting in µg/L what it used to
+/// report in mg/L), and set aside with the reason when it cannot (a soil
+/// value in mg/kg filed in a water series), so that no series mixes units
+/// unseen. The refused rows join the chunk's errors in line order. `known`
+/// holds what is settled so far and learns; `stored` asks the store about
+/// a series it does not hold. A chunk put in its units already is left as
+/// it is.
+fn reconcile_units(
+    chunk: &mut records::ParsedFile,
+    config: &Config,
+    known: &mut RecordUnits,
+    stored: &mut dyn FnMut(&str) -> Result<Option<String>, PipelineError>,
+) -> Result<(), PipelineError> {
+    /// What one series' records are put in.
+    enum Target {
+        /// Its configured unit: the parser converted them already.
+        Configured,
+        /// No unit yet: the next record naming one sets it.
+        Open(Matrix),
+        /// This unit.
+        Unit(String, Matrix),
+    }
+    let mut targets: HashMap<String, Target> = HashMap::default();
+    let mut refused = Vec::new();
+    let mut records = Vec::with_capacity(chunk.records.len());
+    for mut record in std::mem::take(&mut chunk.records) {
+        let key = record.series.as_str();
+        let target = match targets.get_mut(key) {
+            Some(t) => t,
+            None => {
+                let settings = config.series_settings(&record.series);
+                let t = if settings.unit.is_some() {
+                    Target::Configured
+                } else {
+                    let unit = match known.get(key) {
+                        Some(u) => u.clone(),
+                        None => {
+                            let u = stored(key)?;
+                            known.insert(key.to_string(), u.clone());
+                            u
+                        }
+                    };
+                    match unit {
+                        Some(u) => Target::Unit(u, settings.matrix),
+                        None => Target::Open(settings.matrix),
+                    }
+                };
+                targets.entry(key.to_string()).or_insert(t)
+            }
+        };
+        let converted = match (&*target, record.unit.as_deref()) {
+            (Target::Configured, _) | (_, None) => None,
+            (Target::Open(matrix), Some(written)) => {
+                let unit = written.to_string();
+                known.insert(key.to_string(), Some(unit.clone()));
+                *target = Target::Unit(unit, *matrix);
+                None
+            }
+            (Target::Unit(unit, _), Some(written)) if unit == written => None,
+            (Target::Unit(unit, matrix), Some(written)) => Some(
+                units::convert_measure(record.y, written, unit, *matrix)
+                    .map(|y| (y, unit.clone()))
+                    .map_err(|why| {
+                        format!(
+                            "{why} (series {key} has no unit configured; its records so far are in {unit})"
+                        )
+                    }),
+            ),
+        };
+        match converted {
+            None => records.push(record),
+            Some(Ok((y, unit))) => {
+                record.y = y;
+                record.unit = Some(unit);
+                records.push(record);
+            }
+            Some(Err(reason)) => refused.push(RecordError {
+                line: record.line,
+                column: chunk.unit_column.as_ref().map(|c| c.0),
+                field: chunk.unit_column.as_ref().map(|c| c.1.clone()),
+                record_id: Some(record.record_id),
+                reason,
+                raw: record.raw,
+            }),
+        }
+    }
+    chunk.records = records;
+    if !refused.is_empty() {
+        chunk.errors.append(&mut refused);
+        chunk.errors.sort_by_key(|e| e.line);
+    }
+    Ok(())
+}
+
 fn refused(record: &Record, reason: String) -> RecordError {
     RecordError {
         line: record.line,

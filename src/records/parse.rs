@@ -71,6 +71,9 @@ pub struct ParsedFile {
     pub records: Vec<Record>,
     /// Refused rows, one error each.
     pub errors: Vec<RecordError>,
+    /// The unit column, when the header has one: its 1-based position and
+    /// its name (for a row refused over its unit after parsing).
+    pub unit_column: Option<(usize, String)>,
 }
 
 /// Why a file cannot be read as records at all (it goes to quarantine).
@@ -139,6 +142,7 @@ pub fn parse_file(
     let mut out = ParsedFile {
         records: Vec::with_capacity(stream.rows_expected),
         errors: Vec::new(),
+        unit_column: stream.unit_column(),
     };
     while let Some(mut chunk) = stream.next_chunk(usize::MAX)? {
         out.records.append(&mut chunk.records);
@@ -247,6 +251,12 @@ impl<'a> RecordStream<'a> {
         })
     }
 
+    /// The unit column's 1-based position and name, when the header has one.
+    pub fn unit_column(&self) -> Option<(usize, String)> {
+        let cols = &self.checker.cols;
+        cols.unit.map(|c| (c + 1, cols.label(c)))
+    }
+
     /// The next rows, at most `max_rows` of them (records and refused rows
     /// together; blank rows do not count); `None` once the file is done. A
     /// structural break further down the file (an unbalanced quote) is an
@@ -255,6 +265,7 @@ impl<'a> RecordStream<'a> {
         let mut out = ParsedFile {
             records: Vec::with_capacity(max_rows.min(self.rows_expected)),
             errors: Vec::new(),
+            unit_column: self.unit_column(),
         };
         let mut taken = 0usize;
         let checker = &mut self.checker;
@@ -1070,27 +1081,8 @@ impl<'l> Checker<'l> {
         let unit_as_written = c.unit.map(cell).filter(|u| !u.is_empty());
         let (y, unit) = match (&rules.unit, unit_as_written, c.unit) {
             (Some(target), Some(written), Some(unit_column)) => {
-                let to_target = |v: f64| {
-                    let converted = units::convert(v, written, target, rules.matrix)
-                        .map_err(|e| Fault::at(unit_column, e.to_string()))?;
-                    // A value (or limit) too small to survive the conversion
-                    // must not quietly become 0.
-                    if v != 0.0 && converted == 0.0 {
-                        return Err(Fault::at(
-                            unit_column,
-                            format!(
-                                "{v} {written} is too small to express in {target} (it would become 0); check the value and its unit"
-                            ),
-                        ));
-                    }
-                    Ok(converted)
-                };
-                let y = match y {
-                    Measure::Detected(v) => Measure::Detected(to_target(v)?),
-                    Measure::NonDetect { limit } => Measure::NonDetect {
-                        limit: to_target(limit)?,
-                    },
-                };
+                let y = units::convert_measure(y, written, target, rules.matrix)
+                    .map_err(|reason| Fault::at(unit_column, reason))?;
                 (y, Some(target.clone()))
             }
             (Some(target), _, _) => (y, Some(target.clone())),

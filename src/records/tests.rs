@@ -960,10 +960,14 @@ fn in_pieces(
 /// Every chunk of `rows` rows, put together; each chunk is checked to
 /// hold at least one row and at most `rows`.
 fn all_chunks(mut stream: RecordStream<'_>, rows: usize) -> Result<ParsedFile, FileError> {
-    let mut all = ParsedFile::default();
+    let mut all = ParsedFile {
+        unit_column: stream.unit_column(),
+        ..ParsedFile::default()
+    };
     while let Some(mut chunk) = stream.next_chunk(rows)? {
         assert!(chunk.records.len() + chunk.errors.len() <= rows);
         assert!(chunk.records.len() + chunk.errors.len() > 0);
+        assert_eq!(chunk.unit_column, all.unit_column);
         all.records.append(&mut chunk.records);
         all.errors.append(&mut chunk.errors);
     }

@@ -90,6 +90,31 @@ pub enum UnitError {
 const KNOWN: &str =
     "g/kg, mg/kg, µg/kg, ng/g, µg/g, ng/kg, %, g/L, mg/L, µg/L, ng/L, ppm, ppb, ppt";
 
+/// A record's value (or a non-detect's limit) from unit `from` in unit
+/// `to`, refused rather than quietly turned into 0 when it is too small to
+/// express there. The message says what is wrong and what to do.
+pub fn convert_measure(
+    y: super::Measure,
+    from: &str,
+    to: &str,
+    matrix: Matrix,
+) -> Result<super::Measure, String> {
+    use super::Measure;
+    let one = |v: f64| {
+        let converted = convert(v, from, to, matrix).map_err(|e| e.to_string())?;
+        if v != 0.0 && converted == 0.0 {
+            return Err(format!(
+                "{v} {from} is too small to express in {to} (it would become 0); check the value and its unit"
+            ));
+        }
+        Ok(converted)
+    };
+    Ok(match y {
+        Measure::Detected(v) => Measure::Detected(one(v)?),
+        Measure::NonDetect { limit } => Measure::NonDetect { limit: one(limit)? },
+    })
+}
+
 /// Converts `value` from unit `from` to unit `to` for a series of `matrix`.
 ///
 /// The same unit (however spelled) returns `value` unchanged, even ppm for

@@ -1375,6 +1375,11 @@ impl Store {
         series_row(&self.conn, key).map_err(self.wrap())
     }
 
+    /// The unit a series' stored records name (see [`series_unit`]).
+    pub fn series_unit(&self, key: &str) -> Result<Option<String>> {
+        series_unit(&self.conn, key).map_err(self.wrap())
+    }
+
     /// The points of a series' current fit, in arrival order.
     pub fn fit_points(&self, key: &str) -> Result<Option<Vec<FitPoint>>> {
         let Some(row) = self.series(key)? else {
@@ -1612,6 +1617,11 @@ impl Tx<'_> {
     /// The series row, if it exists.
     pub fn series(&self, key: &str) -> Result<Option<SeriesRow>> {
         series_row(self.tx, key).map_err(self.wrap())
+    }
+
+    /// The unit a series' stored records name (see [`series_unit`]).
+    pub fn series_unit(&self, key: &str) -> Result<Option<String>> {
+        series_unit(self.tx, key).map_err(self.wrap())
     }
 
     /// Creates a series with its settings.
@@ -2174,6 +2184,25 @@ impl FileOutcome {
             FileOutcome::Quarantined => "quarantined",
         }
     }
+}
+
+/// The unit named by a series' newest current record that names one (its
+/// records' unit when none is configured: the ingest converts later records
+/// to it or sets them aside), walking its chain back from the newest;
+/// `None` for a new series or one whose records name no unit.
+fn series_unit(conn: &Connection, key: &str) -> rusqlite::Result<Option<String>> {
+    conn.prepare_cached(
+        "WITH RECURSIVE chain(unit, prev) AS (
+             SELECT r.unit, r.prev_in_series FROM series s JOIN records r ON r.id = s.latest_record
+             WHERE s.key = +?1
+             UNION ALL
+             SELECT r.unit, r.prev_in_series FROM chain c JOIN records r ON r.id = c.prev
+             WHERE c.unit IS NULL
+         )
+         SELECT unit FROM chain WHERE unit IS NOT NULL LIMIT 1",
+    )?
+    .query_row([key], |r| r.get(0))
+    .optional()
 }
 
 fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow>> {

@@ -2869,8 +2869,9 @@ fn raise_findings(
 type RecordUnits = HashMap<String, Option<String>>;
 
 /// Puts a chunk's records of series without a configured unit in the unit
-/// their series' records are in (the first unit such a series met, stored
-/// or earlier in the chunk): a record naming another unit is converted
+/// their series' records are in (the first unit of the unit table such a
+/// series met, stored or earlier in the chunk): a record naming another
+/// unit is converted
 /// when the unit table can (a laboratory reporting in µg/L what it used to
 /// report in mg/L), and set aside with the reason when it cannot (a soil
 /// value in mg/kg filed in a water series), so that no series mixes units
@@ -2923,6 +2924,10 @@ fn reconcile_units(
         };
         let converted = match (&*target, record.unit.as_deref()) {
             (Target::Configured, _) | (_, None) => None,
+            // A unit the table does not know (a typing slip, or a unit such
+            // as pCi/L it has no conversions for) sets nothing: the
+            // records after it are not refused over a slip in one cell.
+            (Target::Open(_), Some(written)) if !units::is_known(written) => None,
             (Target::Open(matrix), Some(written)) => {
                 let unit = written.to_string();
                 known.insert(key.to_string(), Some(unit.clone()));

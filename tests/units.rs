@@ -269,7 +269,8 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
         &config.inbox,
         &[(
             "a.csv".into(),
-            "record_id,series,x,y,unit\nA1,w/zinc,2020.1,12,µg/L\nA2,w/zinc,2020.6,14,µg/L\n"
+            "record_id,series,x,y,unit\nA1,w/zinc,2020.1,12,µg/L\nA2,w/zinc,2020.6,14,µg/L\n\
+             T1,w/iron,2020.1,0.2,mg/Ll\nT2,w/iron,2020.6,0.3,mg/L\n"
                 .into(),
         )],
     );
@@ -284,6 +285,16 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
         )
         .unwrap();
     }
+    // As a store written before series kept their unit could hold: the
+    // newest record naming a unit the table does not know. The series'
+    // unit is looked up past it.
+    rusqlite::Connection::open(&config.database)
+        .unwrap()
+        .execute(
+            "UPDATE records SET unit = 'pCi/L' WHERE record_id = 'A2'",
+            [],
+        )
+        .unwrap();
     // A new process (a fresh cache) and a file with no unit column, then
     // one in mg/L and one in a unit the table does not know.
     let later = deliver(
@@ -295,7 +306,8 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
             ),
             (
                 "c.csv".into(),
-                "record_id,series,x,y,unit\nC1,w/zinc,2021.6,0.016,mg/L\nC2,w/zinc,2022.1,17,ug/l\nC3,w/zinc,2022.6,18,pCi/L\n"
+                "record_id,series,x,y,unit\nC1,w/zinc,2021.6,0.016,mg/L\nC2,w/zinc,2022.1,17,ug/l\nC3,w/zinc,2022.6,18,pCi/L\n\
+                 T3,w/iron,2021.1,250,µg/L\n"
                     .into(),
             ),
         ],
@@ -319,6 +331,12 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
     // Another spelling of the same unit: the value as written.
     let c2 = unit_of("C2");
     assert_eq!((c2.1, c2.2.as_deref()), (17.0, Some("µg/L")));
+    // A first unit the table does not know (a slip) sets nothing and
+    // stays as written; the next, mg/L, is the series' unit.
+    assert_eq!(unit_of("T1").2.as_deref(), Some("mg/Ll"));
+    let t3 = unit_of("T3");
+    assert_close(t3.1, 0.25, "T3 in mg/L");
+    assert_eq!(t3.2.as_deref(), Some("mg/L"));
     // A unit the table does not know cannot be held to µg/L.
     let aside = set_aside(&config.database);
     assert_eq!(aside.len(), 1, "{aside:?}");

@@ -153,7 +153,8 @@ pub fn convert(value: f64, from: &str, to: &str, matrix: Matrix) -> Result<f64, 
     }
 }
 
-/// Whether `unit` is in the table (for checking a configuration).
+/// Whether `unit` is in the table, however spelled (for checking a
+/// configuration, and for the unit a series' records set).
 pub fn is_known(unit: &str) -> bool {
     Unit::parse(unit).is_some()
 }

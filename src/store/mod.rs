@@ -2186,23 +2186,34 @@ impl FileOutcome {
     }
 }
 
-/// The unit named by a series' newest current record that names one (its
-/// records' unit when none is configured: the ingest converts later records
-/// to it or sets them aside), walking its chain back from the newest;
-/// `None` for a new series or one whose records name no unit.
+/// How far back [`series_unit`] looks for a record naming a known unit.
+const UNIT_LOOKBACK: i64 = 1_000;
+
+/// The unit-table unit named by a series' newest current record that names
+/// one (its records' unit when none is configured: the ingest converts
+/// later records to it or sets them aside), among its last
+/// [`UNIT_LOOKBACK`] records, newest first; `None` for a new series or one
+/// whose records name no unit the table knows.
 fn series_unit(conn: &Connection, key: &str) -> rusqlite::Result<Option<String>> {
-    conn.prepare_cached(
-        "WITH RECURSIVE chain(unit, prev) AS (
-             SELECT r.unit, r.prev_in_series FROM series s JOIN records r ON r.id = s.latest_record
-             WHERE s.key = +?1
+    let mut stmt = conn.prepare_cached(
+        "WITH RECURSIVE chain(unit, prev, depth) AS (
+             SELECT r.unit, r.prev_in_series, 1 FROM series s
+             JOIN records r ON r.id = s.latest_record WHERE s.key = +?1
              UNION ALL
-             SELECT r.unit, r.prev_in_series FROM chain c JOIN records r ON r.id = c.prev
-             WHERE c.unit IS NULL
+             SELECT r.unit, r.prev_in_series, c.depth + 1 FROM chain c
+             JOIN records r ON r.id = c.prev WHERE c.depth < ?2
          )
-         SELECT unit FROM chain WHERE unit IS NOT NULL LIMIT 1",
-    )?
-    .query_row([key], |r| r.get(0))
-    .optional()
+         SELECT unit FROM chain WHERE unit IS NOT NULL",
+    )?;
+    // Rows come as the walk goes: it stops at the first known unit.
+    let mut rows = stmt.query(params![key, UNIT_LOOKBACK])?;
+    while let Some(row) = rows.next()? {
+        let unit: String = row.get(0)?;
+        if crate::records::units::is_known(&unit) {
+            return Ok(Some(unit));
+        }
+    }
+    Ok(None)
 }
 
 fn series_row(conn: &Connection, key: &str) -> rusqlite::Result<Option<SeriesRow>> {

@@ -127,9 +127,13 @@ fuzz_target!(|data: &[u8]| {
     // come out, in the same order; the chunk size varies with the input.
     let rows = 1 + usize::from(rules_byte % 5);
     let all_chunks = |mut stream: RecordStream<'_>| {
-        let mut all = ParsedFile::default();
+        let mut all = ParsedFile {
+            unit_column: stream.unit_column(),
+            ..ParsedFile::default()
+        };
         while let Some(mut chunk) = stream.next_chunk(rows)? {
             assert!(chunk.records.len() + chunk.errors.len() <= rows);
+            assert_eq!(chunk.unit_column, all.unit_column);
             all.records.append(&mut chunk.records);
             all.errors.append(&mut chunk.errors);
         }

@@ -307,7 +307,7 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
             (
                 "c.csv".into(),
                 "record_id,series,x,y,unit\nC1,w/zinc,2021.6,0.016,mg/L\nC2,w/zinc,2022.1,17,ug/l\nC3,w/zinc,2022.6,18,pCi/L\n\
-                 T3,w/iron,2021.1,250,µg/L\n"
+                 T3,w/iron,2021.1,250,µg/L\nC4,w/zinc,2023.1,<0.02,mg/L\n"
                     .into(),
             ),
         ],
@@ -331,6 +331,18 @@ fn a_later_delivery_is_held_to_the_unit_already_stored_after_a_restart() {
     // Another spelling of the same unit: the value as written.
     let c2 = unit_of("C2");
     assert_eq!((c2.1, c2.2.as_deref()), (17.0, Some("µg/L")));
+    // A non-detect's limit is converted like a value: <0.02 mg/L is
+    // below 20 µg/L, and stays censored.
+    let (limit, censored): (f64, bool) = rusqlite::Connection::open(&config.database)
+        .unwrap()
+        .query_row(
+            "SELECT y, censored FROM records WHERE record_id = 'C4'",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    assert_close(limit, 20.0, "C4's limit in µg/L");
+    assert!(censored);
     // A first unit the table does not know (a slip) sets nothing and
     // stays as written; the next, mg/L, is the series' unit.
     assert_eq!(unit_of("T1").2.as_deref(), Some("mg/Ll"));

@@ -21,6 +21,9 @@ use slopewarden::store::Store;
 
 #[path = "support/norris.rs"]
 mod norris;
+#[path = "support/ready.rs"]
+mod ready;
+use ready::deliver;
 
 /// The backlog's files, in name order: Norris in six files; after the
 /// second, a resubmission of two of its records (one unchanged, one with
@@ -53,22 +56,6 @@ fn backlog() -> Vec<(String, String)> {
     files.push(("b07.csv".into(), first));
     files.sort();
     files
-}
-
-fn deliver(inbox: &Path, files: &[(String, String)]) -> Vec<ReadyFile> {
-    files
-        .iter()
-        .map(|(name, text)| {
-            let path = inbox.join(name);
-            std::fs::write(&path, text).unwrap();
-            ReadyFile {
-                size: text.len() as u64,
-                path,
-                relative: name.into(),
-                modified: SystemTime::UNIX_EPOCH,
-            }
-        })
-        .collect()
 }
 
 /// Outcomes as (file, kind, new, same, conflict), timestamps and paths left out.

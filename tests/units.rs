@@ -24,6 +24,9 @@ use slopewarden::store::Store;
 
 #[path = "support/norris.rs"]
 mod norris;
+#[path = "support/ready.rs"]
+mod ready;
+use ready::deliver;
 
 /// `value` (a decimal as written) times 10^`places`, as written: the
 /// decimal point moved, no floating point involved.
@@ -96,22 +99,6 @@ fn deliveries() -> Vec<(String, String)> {
     }
     files.push(("u02.csv".to_string(), text));
     files
-}
-
-fn deliver(inbox: &Path, files: &[(String, String)]) -> Vec<ReadyFile> {
-    files
-        .iter()
-        .map(|(name, text)| {
-            let path = inbox.join(name);
-            std::fs::write(&path, text).unwrap();
-            ReadyFile {
-                size: text.len() as u64,
-                path,
-                relative: name.into(),
-                modified: SystemTime::UNIX_EPOCH,
-            }
-        })
-        .collect()
 }
 
 /// The records as stored: (record id, y, unit, unit as written).
@@ -379,21 +366,26 @@ fn large_file() -> String {
     text
 }
 
-#[test]
-fn a_large_file_read_in_pieces_is_held_to_its_series_unit_too() {
-    let dir = tempfile::tempdir().unwrap();
-    let config = Config::defaults_in(dir.path());
+/// One file through the plain path into a new store, its outcome.
+fn ingest_alone(config: &Config, name: &str, text: String) -> Outcome {
     std::fs::create_dir_all(&config.inbox).unwrap();
-    let ready = deliver(&config.inbox, &[("big.csv".into(), large_file())]);
+    let ready = deliver(&config.inbox, &[(name.into(), text)]);
     let mut store = Store::open(&config.database).unwrap();
-    let o = process_file(
-        &config,
+    process_file(
+        config,
         &mut store,
         &mut SeriesCache::new(),
         &ready[0],
         SystemTime::now(),
     )
-    .unwrap();
+    .unwrap()
+}
+
+#[test]
+fn a_large_file_read_in_pieces_is_held_to_its_series_unit_too() {
+    let dir = tempfile::tempdir().unwrap();
+    let config = Config::defaults_in(dir.path());
+    let o = ingest_alone(&config, "big.csv", large_file());
     let Outcome::Ingested { counts, .. } = o else {
         panic!("{o:?}");
     };
@@ -433,17 +425,7 @@ fn a_large_file_read_in_pieces_is_held_to_its_series_unit_too() {
     let dir = tempfile::tempdir().unwrap();
     let mut config = Config::defaults_in(dir.path());
     config.bad_rows = BadRows::RejectFile;
-    std::fs::create_dir_all(&config.inbox).unwrap();
-    let ready = deliver(&config.inbox, &[("big.csv".into(), large_file())]);
-    let mut store = Store::open(&config.database).unwrap();
-    let o = process_file(
-        &config,
-        &mut store,
-        &mut SeriesCache::new(),
-        &ready[0],
-        SystemTime::now(),
-    )
-    .unwrap();
+    let o = ingest_alone(&config, "big.csv", large_file());
     let Outcome::Quarantined { reason, .. } = o else {
         panic!("{o:?}");
     };

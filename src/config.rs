@@ -897,6 +897,7 @@ impl Walker {
             ("quarantined", "warning"),
             ("silent_feed", "notice"),
             ("disk_space", "alert"),
+            ("similar_series", "warning"),
         ]
         .iter()
         .map(|(k, v)| (k.to_string(), v.to_string()))
@@ -910,7 +911,7 @@ impl Walker {
                     }
                     (None, _) => self.problem(
                         &at,
-                        "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined, silent_feed or disk_space".into(),
+                        "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined, silent_feed, disk_space or similar_series".into(),
                     ),
                     (Some(_), _) => {
                         self.problem(&at, "write \"notice\", \"warning\" or \"alert\"".into())

@@ -179,6 +179,9 @@ pub struct SeriesCache {
     /// Series without a configured unit: the unit their records are in
     /// (see [`reconcile_units`]).
     units: RecordUnits,
+    /// Every series key by its [`name_form`], read from the store when a
+    /// file first creates a series.
+    names: Option<HashMap<String, String>>,
     /// The fit points (fitted scale) of series whose robust slope has been
     /// computed once, so that later checkpoints need not read them back.
     /// Shared with the findings of a file still being written (a series'
@@ -219,6 +222,7 @@ impl SeriesCache {
     /// process may have changed findings, as a verdict does).
     pub fn clear(&mut self) {
         self.units.clear();
+        self.names = None;
         self.rows.clear();
         self.points.clear();
         self.awaiting.clear();
@@ -1751,14 +1755,25 @@ fn store_file_behind<'t, 'c: 't>(
                     Some(row) => row,
                     None => match b.tx()?.series(key)? {
                         Some(row) => row,
-                        None => b.tx()?.create_series(
-                            key,
-                            settings.unit.as_deref(),
-                            settings.transform.name(),
-                            &settings.non_detects.name(),
-                            settings.x_name.as_deref(),
-                            settings.x_unit.as_deref(),
-                        )?,
+                        None => {
+                            if let Some(other) = named_alike(cache, b, key)? {
+                                plain.push(similar_series(
+                                    key,
+                                    &other,
+                                    record,
+                                    per_series.get(key).copied().unwrap_or(1),
+                                    name,
+                                ));
+                            }
+                            b.tx()?.create_series(
+                                key,
+                                settings.unit.as_deref(),
+                                settings.transform.name(),
+                                &settings.non_detects.name(),
+                                settings.x_name.as_deref(),
+                                settings.x_unit.as_deref(),
+                            )?
+                        }
                     },
                 };
                 let state = SeriesState::from_moments(row.moments);
@@ -2864,6 +2879,60 @@ fn raise_findings(
 }
 
 /// A stored-side refusal of a parsed record, in the parser's error shape.
+/// A series key as people would read it aloud: letter case, white space,
+/// hyphens and underscores left out (`MW-1/Nitrate`, `mw1 / nitrate` and
+/// `MW_1/nitrate` are one form).
+fn name_form(key: &str) -> String {
+    key.chars()
+        .filter(|c| !c.is_whitespace() && *c != '-' && *c != '_')
+        .flat_map(char::to_lowercase)
+        .collect()
+}
+
+/// The existing series whose key has the same [`name_form`] as `key`, a
+/// series about to be created; `key` is remembered either way.
+fn named_alike(
+    cache: &mut SeriesCache,
+    b: &mut Behind<'_>,
+    key: &str,
+) -> Result<Option<String>, PipelineError> {
+    if cache.names.is_none() {
+        let keys = b.tx()?.series_keys()?;
+        cache.names = Some(keys.into_iter().map(|k| (name_form(&k), k)).collect());
+    }
+    let names = cache.names.get_or_insert_with(HashMap::default);
+    Ok(match names.entry(name_form(key)) {
+        std::collections::hash_map::Entry::Occupied(e) if e.get() != key => Some(e.get().clone()),
+        std::collections::hash_map::Entry::Occupied(_) => None,
+        std::collections::hash_map::Entry::Vacant(e) => {
+            e.insert(key.to_string());
+            None
+        }
+    })
+}
+
+/// The finding on a new series named like an existing one: most likely
+/// the same location and parameter typed another way, whose records then
+/// miss that series' trend and its checks.
+fn similar_series(
+    key: &str,
+    other: &str,
+    first: &Record,
+    in_file: usize,
+    file: &str,
+) -> PlainFinding {
+    PlainFinding {
+        kind: "similar_series",
+        series: key.to_string(),
+        record_ids: vec![first.record_id.clone()],
+        answerable: None,
+        summary: format!(
+            "new series {key} is named like the existing series {other} (they differ only in letter case, spaces, hyphens or underscores): {in_file} record(s) of {file} (the first {}, line {}) are stored and fitted under {key}, apart from {other}'s trend and its checks; if both names mean one series, correct the name where the files are made",
+            first.record_id, first.line
+        ),
+    }
+}
+
 /// The unit of each series without a configured one: that of its
 /// records, `None` while none of them names a unit.
 type RecordUnits = HashMap<String, Option<String>>;

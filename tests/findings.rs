@@ -305,7 +305,8 @@ fn assert_finding_shape(f: &Value) {
                 "significance_change",
                 "conflict",
                 "quarantined",
-                "silent_feed"
+                "silent_feed",
+                "similar_series"
             ]
             .contains(&k.as_str().unwrap()),
             "{f}"
@@ -1785,4 +1786,77 @@ fn two_hundred_findings_raised_during_an_outage_arrive_once_each_in_order() {
         order, sorted,
         "delivered in the order the findings were raised"
     );
+}
+
+/// A new series whose key differs from an existing one's only in letter
+/// case, spaces, hyphens or underscores is most likely the same location
+/// and parameter typed another way: its records would miss that series'
+/// trend and every check against it, so a finding says so. A key that
+/// differs in anything else (another well number) raises nothing.
+#[test]
+fn a_new_series_named_like_an_existing_one_is_a_finding() {
+    let site = Site::new("", "");
+    let mut first = String::from("record_id,series,x,y,unit\n");
+    for i in 0..8 {
+        first.push_str(&format!(
+            "A{i},MW-1/nitrate,{}.5,{}.{i},mg/L\n",
+            2010 + i,
+            4 + i % 2
+        ));
+    }
+    site.deliver("a.csv", &first);
+    assert!(site.findings().is_empty());
+    site.deliver(
+        "b.csv",
+        "record_id,series,x,y,unit\n\
+         B1,MW-10/nitrate,2018.5,3.1,mg/L\n\
+         B2,MW-1/Nitrate,2018.5,5.2,mg/L\n\
+         B3,MW-1/Nitrate,2019.5,5.3,mg/L\n\
+         B4,mw 1/nitrate,2019.5,5.4,mg/L\n",
+    );
+    let found = site.findings();
+    let similar: Vec<&Value> = found
+        .iter()
+        .filter(|f| f["kinds"] == serde_json::json!(["similar_series"]))
+        .collect();
+    assert_eq!(similar.len(), 2, "{found:#?}");
+    assert_eq!(found.len(), 2, "nothing for MW-10/nitrate: {found:#?}");
+    assert_eq!(similar[0]["series"], "MW-1/Nitrate");
+    assert_eq!(similar[0]["record_ids"], serde_json::json!(["B2"]));
+    assert_eq!(similar[0]["severity"], "warning");
+    let summary = similar[0]["summary"].as_str().unwrap();
+    assert!(
+        summary.contains("named like the existing series MW-1/nitrate")
+            && summary.contains("2 record(s) of b.csv (the first B2, line 3)"),
+        "{summary}"
+    );
+    assert_eq!(similar[1]["series"], "mw 1/nitrate");
+    // The message names both series and what to look at.
+    let text = site.message_text(similar[0]);
+    let flat = text.split_whitespace().collect::<Vec<_>>().join(" ");
+    assert!(
+        flat.contains("in series MW-1/Nitrate")
+            && flat.contains("outside the existing series' trend")
+            && flat.contains("against the site's sampling plan"),
+        "{text}"
+    );
+    let subject: String = site
+        .db()
+        .query_row(
+            "SELECT subject FROM outbox WHERE finding_id = ?1",
+            [similar[0]["id"].as_i64().unwrap()],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert!(
+        subject.contains("check the name of series MW-1/Nitrate"),
+        "{subject}"
+    );
+    // A later file of the new series raises nothing more: the series
+    // exists now, and the finding stands until it is reviewed.
+    site.deliver(
+        "c.csv",
+        "record_id,series,x,y,unit\nC1,MW-1/Nitrate,2020.5,5.5,mg/L\n",
+    );
+    assert_eq!(site.findings().len(), 2);
 }

@@ -90,11 +90,14 @@ pub enum FindingKind {
     SilentFeed,
     /// The disk holding the store is nearly full; files wait in the inbox.
     DiskSpace,
+    /// A new series is named like an existing one (letter case, spaces,
+    /// hyphens or underscores apart).
+    SimilarSeries,
 }
 
 impl FindingKind {
     /// Every kind, in the order messages list them.
-    pub const ALL: [FindingKind; 9] = [
+    pub const ALL: [FindingKind; 10] = [
         FindingKind::HighLeverage,
         FindingKind::Influential,
         FindingKind::Outlier,
@@ -104,6 +107,7 @@ impl FindingKind {
         FindingKind::Quarantined,
         FindingKind::SilentFeed,
         FindingKind::DiskSpace,
+        FindingKind::SimilarSeries,
     ];
 
     /// The stable machine name, e.g. `high_leverage`.
@@ -118,6 +122,7 @@ impl FindingKind {
             FindingKind::Quarantined => "quarantined",
             FindingKind::SilentFeed => "silent_feed",
             FindingKind::DiskSpace => "disk_space",
+            FindingKind::SimilarSeries => "similar_series",
         }
     }
 
@@ -138,6 +143,7 @@ impl FindingKind {
             FindingKind::Quarantined => "held for review",
             FindingKind::SilentFeed => "feed gone quiet",
             FindingKind::DiskSpace => "disk nearly full",
+            FindingKind::SimilarSeries => "series named like another",
         }
     }
 }
@@ -408,6 +414,8 @@ enum About {
     Feed,
     /// The disk the store or the archive lives on.
     Disk,
+    /// A series' name, like another's.
+    Name,
 }
 
 fn about(n: &Notice) -> About {
@@ -419,6 +427,7 @@ fn about(n: &Notice) -> About {
         Some(FindingKind::Conflict) => About::Conflict,
         Some(FindingKind::SilentFeed) => About::Feed,
         Some(FindingKind::DiskSpace) => About::Disk,
+        Some(FindingKind::SimilarSeries) => About::Name,
         _ => About::Trend,
     }
 }
@@ -427,7 +436,9 @@ fn about(n: &Notice) -> About {
 fn title_place(n: &Notice) -> String {
     let name = inline(&n.series, FIELD_CHARS);
     match about(n) {
-        About::Record | About::Trend | About::Conflict => format!("in series {name}"),
+        About::Record | About::Trend | About::Conflict | About::Name => {
+            format!("in series {name}")
+        }
         About::File => format!("about file {name}"),
         About::Feed => format!("about {name}"),
         About::Disk => "about free disk space".to_string(),
@@ -446,6 +457,9 @@ fn scope_line(a: About) -> &'static str {
         }
         About::Feed => "A feed stopped delivering files as often as configured.",
         About::Disk => "The disk is nearly full: files wait in the inbox and nothing is lost.",
+        About::Name => {
+            "A new series began under a name that differs from an existing series' only in letter case, spaces, hyphens or underscores. Its records are stored and fitted under the new name, outside the existing series' trend."
+        }
     }
 }
 
@@ -480,6 +494,14 @@ fn other_checks(n: &Notice, a: About) -> Option<(&'static str, Vec<String>)> {
                 "watch.min_free_mb in the configuration",
             ]),
         )),
+        About::Name => Some((
+            "For the two series named above, look at:",
+            owned(&[
+                "the location and parameter names in the file, against the site's sampling plan",
+                "the export or template the file was made from: a renamed location or a retyped name",
+                "if both names mean one series: correct the name where the files are made, and bring the records stored under the new name into the right series by your data-management procedure",
+            ]),
+        )),
         About::Record | About::Trend | About::Conflict => None,
     }
 }
@@ -501,6 +523,7 @@ fn notice_subject(n: &Notice) -> String {
             About::Conflict => format!("check a resubmitted record in series {series}"),
             About::Feed => format!("check the deliveries of {series}"),
             About::Disk => "free some disk space".to_string(),
+            About::Name => format!("check the name of series {series}"),
             About::Record | About::Trend => format!("review the trend of series {series}"),
         },
     };

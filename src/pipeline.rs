@@ -2156,6 +2156,7 @@ fn store_file_behind<'t, 'c: 't>(
                 kind: "conflict",
                 series: key.to_string(),
                 record_ids: vec![record.record_id.clone()],
+                judged_against: "the stored version of the record",
                 answerable,
                 summary: format!(
                     "record {} resubmitted in {name} line {} with other values (stored: x {}, y {}; new: x {}, y {}); kept as proposed version {}, the stored version is unchanged",
@@ -2504,6 +2505,8 @@ struct PlainFinding {
     series: String,
     record_ids: Vec<String>,
     summary: String,
+    /// What the finding compared the file with, as its detail says.
+    judged_against: &'static str,
     /// A conflict that only changes y within the same series: the stored
     /// record's row and the resubmitted y, so that a verdict can take the
     /// new value (or exclude the record) as for a flagged record.
@@ -2802,10 +2805,10 @@ fn raise_findings(
             match p.answerable {
                 Some((_, y)) => {
                     serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION,
-                    "judged_against": "the stored version of the record", "proposed_y": y })
+                    "judged_against": p.judged_against, "proposed_y": y })
                 }
                 None => serde_json::json!({ "summary": p.summary, "caution": raise::CAUTION,
-                    "judged_against": "the stored version of the record" }),
+                    "judged_against": p.judged_against }),
             },
             (None, None),
             None,
@@ -2925,9 +2928,10 @@ fn similar_series(
         kind: "similar_series",
         series: key.to_string(),
         record_ids: vec![first.record_id.clone()],
+        judged_against: "the names of the series stored before this file",
         answerable: None,
         summary: format!(
-            "new series {key} is named like the existing series {other} (they differ only in letter case, spaces, hyphens or underscores): {in_file} record(s) of {file} (the first {}, line {}) are stored and fitted under {key}, apart from {other}'s trend and its checks; if both names mean one series, correct the name where the files are made",
+            "new series {key} is named like the existing series {other}: {in_file} record(s) of {file} (first {}, line {}) went to the new series, outside {other}'s trend",
             first.record_id, first.line
         ),
     }

@@ -1827,7 +1827,7 @@ fn a_new_series_named_like_an_existing_one_is_a_finding() {
     let summary = similar[0]["summary"].as_str().unwrap();
     assert!(
         summary.contains("named like the existing series MW-1/nitrate")
-            && summary.contains("2 record(s) of b.csv (the first B2, line 3)"),
+            && summary.contains("2 record(s) of b.csv (first B2, line 3) went to the new series"),
         "{summary}"
     );
     assert_eq!(similar[1]["series"], "mw 1/nitrate");
@@ -1837,6 +1837,7 @@ fn a_new_series_named_like_an_existing_one_is_a_finding() {
     assert!(
         flat.contains("in series MW-1/Nitrate")
             && flat.contains("outside the existing series' trend")
+            && flat.contains("Judged against the names of the series stored before this file.")
             && flat.contains("against the site's sampling plan"),
         "{text}"
     );

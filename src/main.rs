@@ -935,44 +935,79 @@ mod commands {
             Ok(v) => v,
             Err(code) => return code,
         };
-        let rows = match store.findings(open) {
-            Ok(r) => r,
-            Err(e) => {
-                eprintln!("slopewarden: {e}");
-                return ExitCode::from(EXIT_STORE);
-            }
-        };
         // Findings about a file or a feed have no series; a pattern leaves
         // them out.
-        let rows: Vec<_> = rows
-            .into_iter()
-            .filter(|r| match (&matcher, &r.series) {
-                (None, _) => true,
-                (Some(m), Some(key)) => m.is_match(key),
-                (Some(_), None) => false,
+        let wanted = |r: &slopewarden::store::FindingRow| match (&matcher, &r.series) {
+            (None, _) => true,
+            (Some(m), Some(key)) => m.is_match(key),
+            (Some(_), None) => false,
+        };
+        // Written as they are read: a store may hold tens of thousands.
+        let stdout = std::io::stdout();
+        let mut out = std::io::BufWriter::new(stdout.lock());
+        let mut listed = 0usize;
+        let written = if json {
+            use serde::ser::{SerializeSeq, Serializer};
+            let mut ser = serde_json::Serializer::pretty(&mut out);
+            let seq = ser.serialize_seq(None);
+            seq.and_then(|mut seq| {
+                let each = store.each_finding(open, |r| match wanted(&r) {
+                    true => seq.serialize_element(&r),
+                    false => Ok(()),
+                });
+                match each {
+                    Ok(Ok(())) => seq.end().map(|()| Ok(())),
+                    Ok(Err(e)) => Err(e),
+                    Err(e) => Ok(Err(e)),
+                }
             })
-            .collect();
-        if json {
-            return print_json(&rows);
+            .map_err(std::io::Error::from)
+            .and_then(|stored| writeln!(out).map(|()| stored))
+        } else {
+            let each = store.each_finding(open, |r| {
+                if !wanted(&r) {
+                    return Ok(());
+                }
+                if listed == 0 {
+                    writeln!(
+                        out,
+                        "{:>6}  {:<8} {:<9} {:<20}  summary",
+                        "id", "severity", "status", "created"
+                    )?;
+                }
+                listed += 1;
+                writeln!(
+                    out,
+                    "{:>6}  {:<8} {:<9} {:<20}  {}",
+                    r.id, r.severity, r.status, r.created_at, r.summary
+                )
+            });
+            match each {
+                Ok(Ok(())) if listed == 0 => {
+                    writeln!(out, "no {}findings", if open { "open " } else { "" }).map(Ok)
+                }
+                Ok(Ok(())) => writeln!(
+                    out,
+                    "\nA flag is a prompt to verify a record, not a compliance determination. Check the record, then record a verdict with `slopewarden review ID --verdict confirmed|corrected|excluded --note TEXT`."
+                )
+                .map(Ok),
+                Ok(Err(e)) => Err(e),
+                Err(e) => Ok(Err(e)),
+            }
+        };
+        match written.and_then(|stored| out.flush().map(|()| stored)) {
+            Ok(Ok(())) => ExitCode::SUCCESS,
+            Ok(Err(e)) => {
+                eprintln!("slopewarden: {e}");
+                ExitCode::from(EXIT_STORE)
+            }
+            // A closed pipe (`| head`, `| grep -q`) is the reader's choice.
+            Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => ExitCode::SUCCESS,
+            Err(e) => {
+                eprintln!("slopewarden: cannot write the output: {e}");
+                ExitCode::from(EXIT_IO)
+            }
         }
-        if rows.is_empty() {
-            println!("no {}findings", if open { "open " } else { "" });
-            return ExitCode::SUCCESS;
-        }
-        println!(
-            "{:>6}  {:<8} {:<9} {:<20}  summary",
-            "id", "severity", "status", "created"
-        );
-        for r in &rows {
-            println!(
-                "{:>6}  {:<8} {:<9} {:<20}  {}",
-                r.id, r.severity, r.status, r.created_at, r.summary
-            );
-        }
-        println!(
-            "\nA flag is a prompt to verify a record, not a compliance determination. Check the record, then record a verdict with `slopewarden review ID --verdict confirmed|corrected|excluded --note TEXT`."
-        );
-        ExitCode::SUCCESS
     }
 
     pub fn demo(dir: Option<PathBuf>) -> ExitCode {

@@ -62,11 +62,13 @@ pub fn paths(out: &Path) -> [PathBuf; 3] {
     ["fits", "findings", "verdicts"].map(|k| dir.join(format!("{stem}-{k}.csv")))
 }
 
-/// Header and rows of a table.
-pub type Table = (Vec<&'static str>, Vec<Vec<Cell>>);
+/// Header and rows of a table, the rows made as they are written: the
+/// tables of a large store are not held whole (277,000 fit versions took
+/// some 400 MB as cells).
+pub type Table<'a> = (Vec<&'static str>, Box<dyn Iterator<Item = Vec<Cell>> + 'a>);
 
 /// Every fit version of every series.
-pub fn fits(data: &ReportData) -> Table {
+pub fn fits(data: &ReportData) -> Table<'_> {
     let header = vec![
         "series",
         "version",
@@ -102,10 +104,9 @@ pub fn fits(data: &ReportData) -> Table {
         "unit",
         "note",
     ];
-    let mut rows = Vec::new();
-    for s in &data.series {
-        for f in &s.fits {
-            rows.push(vec![
+    let rows = data.series.iter().flat_map(|s| {
+        s.fits.iter().map(move |f| {
+            vec![
                 Cell::text(&s.row.key),
                 Cell::Int(Some(f.version)),
                 Cell::Int(Some(i64::from(s.row.latest_fit == Some(f.id)))),
@@ -139,14 +140,14 @@ pub fn fits(data: &ReportData) -> Table {
                 Cell::Num(f.x_max),
                 Cell::opt_text(s.unit()),
                 Cell::opt_text(f.note.as_deref()),
-            ]);
-        }
-    }
-    (header, rows)
+            ]
+        })
+    });
+    (header, Box::new(rows))
 }
 
 /// Every finding, with the fits with and without its record.
-pub fn findings(data: &ReportData) -> Table {
+pub fn findings(data: &ReportData) -> Table<'_> {
     let header = vec![
         "finding_id",
         "series",
@@ -179,39 +180,37 @@ pub fn findings(data: &ReportData) -> Table {
         .chain(data.loose_findings.iter())
         .collect();
     all.sort_by_key(|f| f.id);
-    let rows = all
-        .into_iter()
-        .map(|f| {
-            let mut row = vec![
-                Cell::Int(Some(f.id)),
-                Cell::opt_text(f.series_key.as_deref()),
-                Cell::text(&f.created_at),
-                Cell::text(&f.severity),
-                Cell::text(&f.status),
-                Cell::text(f.kinds.join(";")),
-                Cell::text(f.record_ids.join(";")),
-                Cell::opt_text(f.file.as_deref()),
-                Cell::Int(f.fit_version),
-                Cell::text(&f.summary),
-            ];
-            for key in ["fit_with", "fit_without"] {
-                let fit = detail_fit(&f.detail, key);
-                row.push(Cell::Int(fit.and_then(|v| v.n)));
-                row.push(Cell::Num(fit.and_then(|v| v.slope)));
-                row.push(Cell::Num(fit.and_then(|v| v.ci_low)));
-                row.push(Cell::Num(fit.and_then(|v| v.ci_high)));
-                row.push(Cell::Num(fit.and_then(|v| v.p)));
-                row.push(Cell::Num(fit.and_then(|v| v.intercept)));
-            }
-            row.push(Cell::text(f.detail.to_string()));
-            row
-        })
-        .collect();
-    (header, rows)
+    let rows = all.into_iter().map(|f| {
+        let mut row = vec![
+            Cell::Int(Some(f.id)),
+            Cell::opt_text(f.series_key.as_deref()),
+            Cell::text(&f.created_at),
+            Cell::text(&f.severity),
+            Cell::text(&f.status),
+            Cell::text(f.kinds.join(";")),
+            Cell::text(f.record_ids.join(";")),
+            Cell::opt_text(f.file.as_deref()),
+            Cell::Int(f.fit_version),
+            Cell::text(&f.summary),
+        ];
+        let detail = f.detail_value();
+        for key in ["fit_with", "fit_without"] {
+            let fit = detail_fit(&detail, key);
+            row.push(Cell::Int(fit.and_then(|v| v.n)));
+            row.push(Cell::Num(fit.and_then(|v| v.slope)));
+            row.push(Cell::Num(fit.and_then(|v| v.ci_low)));
+            row.push(Cell::Num(fit.and_then(|v| v.ci_high)));
+            row.push(Cell::Num(fit.and_then(|v| v.p)));
+            row.push(Cell::Num(fit.and_then(|v| v.intercept)));
+        }
+        row.push(Cell::text(detail.to_string()));
+        row
+    });
+    (header, Box::new(rows))
 }
 
 /// Every verdict, oldest first.
-pub fn verdicts(data: &ReportData) -> Table {
+pub fn verdicts(data: &ReportData) -> Table<'_> {
     let header = vec![
         "verdict_id",
         "finding_id",
@@ -227,35 +226,32 @@ pub fn verdicts(data: &ReportData) -> Table {
     ];
     let mut all: Vec<_> = data.series.iter().flat_map(|s| s.verdicts.iter()).collect();
     all.sort_by(|a, b| a.at.cmp(&b.at).then(a.id.cmp(&b.id)));
-    let rows = all
-        .into_iter()
-        .map(|v| {
-            vec![
-                Cell::Int(Some(v.id)),
-                Cell::Int(Some(v.finding_id)),
-                Cell::opt_text(v.series_key.as_deref()),
-                Cell::opt_text(v.record_id.as_deref()),
-                Cell::text(&v.verdict),
-                Cell::Num(v.value),
-                Cell::Int(v.new_record_version),
-                Cell::Int(v.reverts),
-                Cell::text(&v.note),
-                Cell::text(&v.by_whom),
-                Cell::text(&v.at),
-            ]
-        })
-        .collect();
-    (header, rows)
+    let rows = all.into_iter().map(|v| {
+        vec![
+            Cell::Int(Some(v.id)),
+            Cell::Int(Some(v.finding_id)),
+            Cell::opt_text(v.series_key.as_deref()),
+            Cell::opt_text(v.record_id.as_deref()),
+            Cell::text(&v.verdict),
+            Cell::Num(v.value),
+            Cell::Int(v.new_record_version),
+            Cell::Int(v.reverts),
+            Cell::text(&v.note),
+            Cell::text(&v.by_whom),
+            Cell::text(&v.at),
+        ]
+    });
+    (header, Box::new(rows))
 }
 
-/// A table as CSV bytes (RFC 4180 quoting by the `csv` crate, `\n` line
-/// ends).
-pub fn to_bytes(table: &Table) -> Result<Vec<u8>, csv::Error> {
+/// Writes a table as CSV (RFC 4180 quoting by the `csv` crate, `\n` line
+/// ends) to `out`, row by row.
+pub fn write_table<W: std::io::Write>(table: Table<'_>, out: W) -> Result<W, csv::Error> {
     let mut w = csv::WriterBuilder::new()
         .terminator(csv::Terminator::Any(b'\n'))
-        .from_writer(Vec::new());
+        .from_writer(out);
     w.write_record(&table.0)?;
-    for row in &table.1 {
+    for row in table.1 {
         w.write_record(row.iter().map(Cell::render))?;
     }
     w.into_inner()
@@ -287,9 +283,12 @@ mod tests {
     fn quoting_survives_commas_quotes_and_newlines() {
         let table: Table = (
             vec!["a", "b"],
-            vec![vec![Cell::text("x, \"y\"\nz"), Cell::text("+1,2")]],
+            Box::new(std::iter::once(vec![
+                Cell::text("x, \"y\"\nz"),
+                Cell::text("+1,2"),
+            ])),
         );
-        let bytes = to_bytes(&table).unwrap();
+        let bytes = write_table(table, Vec::new()).unwrap();
         let mut r = csv::Reader::from_reader(bytes.as_slice());
         let rec = r.records().next().unwrap().unwrap();
         assert_eq!(&rec[0], "x, \"y\"\nz");

@@ -48,8 +48,23 @@ impl ReportData {
     }
 }
 
+/// What a report reads of each series besides its fits, findings and
+/// verdicts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Records {
+    /// Every record version (the HTML report draws and lists them).
+    Read,
+    /// None (the CSV exports list fits, findings and verdicts only; a
+    /// million records read for nothing took over a gigabyte).
+    Skip,
+}
+
 /// Reads the series whose key matches `pattern` (all without one).
-pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, ReportError> {
+pub fn gather(
+    store: &Store,
+    pattern: Option<&str>,
+    records: Records,
+) -> Result<ReportData, ReportError> {
     let matcher = match pattern {
         Some(p) => Some(
             Glob::new(p)
@@ -66,7 +81,7 @@ pub fn gather(store: &Store, pattern: Option<&str>) -> Result<ReportData, Report
         .into_iter()
         .filter(|s| matcher.as_ref().is_none_or(|m| m.is_match(&s.key)))
         .collect();
-    let mut data = gather_rows(store, rows, matcher.is_some())?;
+    let mut data = gather_rows(store, rows, matcher.is_some(), records)?;
     data.pattern = pattern.map(str::to_string);
     Ok(data)
 }
@@ -79,12 +94,15 @@ pub fn gather_rows(
     store: &Store,
     rows: Vec<ReportSeriesRow>,
     only_these: bool,
+    read: Records,
 ) -> Result<ReportData, ReportError> {
     let ids: Vec<SeriesRowId> = rows.iter().map(|s| s.id).collect();
 
     let mut records: HashMap<SeriesRowId, Vec<ReportRecordRow>> = HashMap::new();
-    for r in store.report_records(&ids)? {
-        records.entry(r.series).or_default().push(r);
+    if read == Records::Read {
+        for r in store.report_records(&ids)? {
+            records.entry(r.series).or_default().push(r);
+        }
     }
     let mut findings: HashMap<SeriesRowId, Vec<ReportFindingRow>> = HashMap::new();
     let mut loose_findings = Vec::new();

@@ -750,10 +750,11 @@ fn with_without(out: &mut String, s: &SeriesData, labels: &super::data::Labels) 
         .findings
         .iter()
         .map(|f| {
+            let detail = f.detail_value();
             (
                 f,
-                detail_fit(&f.detail, "fit_with"),
-                detail_fit(&f.detail, "fit_without"),
+                detail_fit(&detail, "fit_with"),
+                detail_fit(&detail, "fit_without"),
             )
         })
         .filter(|(_, w, wo)| w.is_some() || wo.is_some())
@@ -981,7 +982,7 @@ fn findings_table(out: &mut String, findings: &[ReportFindingRow], with_file: bo
         if with_file { "File" } else { "Records" }
     );
     for f in findings {
-        let measures = crossed_measures(&f.detail);
+        let measures = crossed_measures(&f.detail_value());
         let measures = if measures.is_empty() {
             String::new()
         } else {

@@ -115,7 +115,11 @@ pub fn write_report(
     out: &Path,
     generated_at: &str,
 ) -> Result<ReportSummary, ReportError> {
-    let data = data::gather(store, pattern)?;
+    let records = match format {
+        ReportFormat::Html => data::Records::Read,
+        ReportFormat::Csv => data::Records::Skip,
+    };
+    let data = data::gather(store, pattern, records)?;
     let mut summary = ReportSummary {
         series: data.series.len(),
         findings: data.finding_count(),
@@ -135,12 +139,13 @@ pub fn write_report(
                 csv_export::findings(&data),
                 csv_export::verdicts(&data),
             ];
-            for (path, table) in csv_export::paths(out).into_iter().zip(tables.iter()) {
-                let bytes = csv_export::to_bytes(table).map_err(|e| ReportError::Write {
-                    path: path.clone(),
-                    source: std::io::Error::other(e.to_string()),
+            for (path, table) in csv_export::paths(out).into_iter().zip(tables) {
+                write_atomically_with(&path, |f| {
+                    let buffered = csv_export::write_table(table, std::io::BufWriter::new(f))
+                        .map_err(|e| std::io::Error::other(e.to_string()))?;
+                    buffered.into_inner().map_err(|e| e.into_error())?;
+                    Ok(())
                 })?;
-                write_atomically(&path, &bytes)?;
                 summary.files.push(path);
             }
         }
@@ -160,13 +165,22 @@ pub(crate) fn scatter_figures(
     if rows.is_empty() {
         return Ok(Vec::new());
     }
-    let data = data::gather_rows(store, rows, true)?;
+    let data = data::gather_rows(store, rows, true, data::Records::Read)?;
     Ok(data.series.iter().map(html::series_scatter).collect())
 }
 
 /// Writes `bytes` to a temporary file beside `path`, syncs it and renames
 /// it over `path`.
 fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), ReportError> {
+    write_atomically_with(path, |f| f.write_all(bytes))
+}
+
+/// Has `write` fill a temporary file beside `path`, syncs it and renames
+/// it over `path`.
+fn write_atomically_with(
+    path: &Path,
+    write: impl FnOnce(&mut std::fs::File) -> std::io::Result<()>,
+) -> Result<(), ReportError> {
     let err = |source| ReportError::Write {
         path: path.to_path_buf(),
         source,
@@ -180,7 +194,7 @@ fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), ReportError> {
     let tmp: PathBuf = path.with_file_name(tmp_name);
     let result = std::fs::File::create(&tmp)
         .and_then(|mut f| {
-            f.write_all(bytes)?;
+            write(&mut f)?;
             f.sync_all()
         })
         .and_then(|()| std::fs::rename(&tmp, path));

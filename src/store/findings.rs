@@ -396,15 +396,37 @@ impl Store {
 
     /// Findings, newest first; only open ones when `open_only`.
     pub fn findings(&self, open_only: bool) -> Result<Vec<FindingRow>> {
+        let mut all = Vec::new();
+        self.each_finding(open_only, |f| {
+            all.push(f);
+            Ok::<(), std::convert::Infallible>(())
+        })?
+        .unwrap_or_else(|never| match never {});
+        Ok(all)
+    }
+
+    /// The same findings handed to `each` one at a time, as they are read:
+    /// a store with tens of thousands need not hold them all (their details
+    /// as JSON trees took 580 MB for 29,000). Stops at `each`'s first error,
+    /// which it returns.
+    pub fn each_finding<E>(
+        &self,
+        open_only: bool,
+        mut each: impl FnMut(FindingRow) -> std::result::Result<(), E>,
+    ) -> Result<std::result::Result<(), E>> {
         let sql = if open_only {
             format!("{FINDING_SELECT} WHERE g.status = 'open' ORDER BY g.id DESC")
         } else {
             format!("{FINDING_SELECT} ORDER BY g.id DESC")
         };
         let mut stmt = self.conn.prepare(&sql).map_err(self.wrap())?;
-        let rows = stmt.query_map([], finding_row).map_err(self.wrap())?;
-        rows.collect::<std::result::Result<Vec<_>, _>>()
-            .map_err(self.wrap())
+        let mut rows = stmt.query([]).map_err(self.wrap())?;
+        while let Some(r) = rows.next().map_err(self.wrap())? {
+            if let Err(e) = each(finding_row(r).map_err(self.wrap())?) {
+                return Ok(Err(e));
+            }
+        }
+        Ok(Ok(()))
     }
 
     /// One finding.

@@ -65,6 +65,18 @@ pub fn gather(
     pattern: Option<&str>,
     records: Records,
 ) -> Result<ReportData, ReportError> {
+    let rows = matching_series(store, pattern)?;
+    let mut data = gather_rows(store, rows, pattern.is_some(), records)?;
+    data.pattern = pattern.map(str::to_string);
+    Ok(data)
+}
+
+/// The rows of the series whose key matches `pattern` (all without one),
+/// in report order.
+pub fn matching_series(
+    store: &Store,
+    pattern: Option<&str>,
+) -> Result<Vec<ReportSeriesRow>, ReportError> {
     let matcher = match pattern {
         Some(p) => Some(
             Glob::new(p)
@@ -76,14 +88,11 @@ pub fn gather(
         ),
         None => None,
     };
-    let rows: Vec<ReportSeriesRow> = store
+    Ok(store
         .report_series()?
         .into_iter()
         .filter(|s| matcher.as_ref().is_none_or(|m| m.is_match(&s.key)))
-        .collect();
-    let mut data = gather_rows(store, rows, matcher.is_some(), records)?;
-    data.pattern = pattern.map(str::to_string);
-    Ok(data)
+        .collect())
 }
 
 /// Reads everything of the given series. With `only_these`, findings and

@@ -14,7 +14,7 @@ use crate::stats::{LineFit, Moments, MomentsParts, Transform};
 use crate::store::{ReportFindingRow, ReportFitRow, ReportRecordRow, ReportVerdictRow};
 
 use super::band::{grid, mean_band};
-use super::data::{DetailFit, ReportData, SeriesData, detail_fit, line_stats};
+use super::data::{DetailFit, SeriesData, detail_fit, line_stats};
 use super::escape::html;
 use super::format::{html_number, level as level_text, opt, opt_p, sig, trimmed};
 use super::svg::{Flag, HistoryPoint, Marker, PlotPoint, Scatter, history, scatter};
@@ -82,8 +82,42 @@ a { color: #1f4e79; }
 }
 "#;
 
-/// The whole page.
-pub fn render(data: &ReportData, generated_at: &str) -> String {
+/// The end of the page, after the last series.
+pub const TAIL: &str = "</body>\n</html>\n";
+
+/// What the summary page shows of one series (its row in the overview
+/// table), kept while the series' own section is written and dropped.
+#[derive(Debug, Clone)]
+pub struct Glance {
+    id: i64,
+    key: String,
+    open_findings: i64,
+    fit: Option<ReportFitRow>,
+    slope_unit: String,
+}
+
+impl Glance {
+    /// The overview row of a series.
+    pub fn of(s: &SeriesData) -> Glance {
+        Glance {
+            id: s.row.id.0,
+            key: s.row.key.clone(),
+            open_findings: s.row.open_findings,
+            fit: s.current_fit().cloned(),
+            slope_unit: s.labels().slope_unit,
+        }
+    }
+}
+
+/// The page up to the first series' section: the head, and the summary
+/// page over `glances` (the series in report order) and `loose` (findings
+/// about files and feeds).
+pub fn head(
+    glances: &[Glance],
+    loose: &[ReportFindingRow],
+    pattern: Option<&str>,
+    generated_at: &str,
+) -> String {
     let mut out = String::with_capacity(64 * 1024);
     out.push_str("<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n");
     // No script may run, whatever the data holds: belt and braces beside
@@ -103,11 +137,7 @@ pub fn render(data: &ReportData, generated_at: &str) -> String {
         html(generated_at)
     );
     let _ = writeln!(out, "<style>{STYLE}</style>\n</head>\n<body>");
-    summary_page(&mut out, data, generated_at);
-    for s in &data.series {
-        series_section(&mut out, s);
-    }
-    out.push_str("</body>\n</html>\n");
+    summary_page(&mut out, glances, loose, pattern, generated_at);
     out
 }
 
@@ -147,13 +177,15 @@ fn non_detect_policy(policy: &str) -> String {
     }
 }
 
-fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
-    let open: i64 = data.series.iter().map(|s| s.row.open_findings).sum::<i64>()
-        + data
-            .loose_findings
-            .iter()
-            .filter(|f| f.status == "open")
-            .count() as i64;
+fn summary_page(
+    out: &mut String,
+    glances: &[Glance],
+    loose: &[ReportFindingRow],
+    pattern: Option<&str>,
+    generated_at: &str,
+) {
+    let open: i64 = glances.iter().map(|s| s.open_findings).sum::<i64>()
+        + loose.iter().filter(|f| f.status == "open").count() as i64;
     out.push_str(
         "<header class=\"summary\">\n<p class=\"kicker\">slopewarden</p>\n<h1>Trend report</h1>\n",
     );
@@ -161,8 +193,8 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
         out,
         "<p class=\"meta\">Generated <time datetime=\"{g}\">{g}</time> · {n} series{filter} · {open} open finding{s}</p>",
         g = html(generated_at),
-        n = data.series.len(),
-        filter = data.pattern.as_deref().map_or(String::new(), |p| format!(
+        n = glances.len(),
+        filter = pattern.map_or(String::new(), |p| format!(
             " matching <code>{}</code>",
             html(p)
         )),
@@ -186,13 +218,12 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
     );
 
     out.push_str("<h2>Series at a glance</h2>\n");
-    if data.series.is_empty() {
+    if glances.is_empty() {
         out.push_str("<p class=\"empty\">No series match.</p>\n");
     } else {
-        let levels: Vec<f64> = data
-            .series
+        let levels: Vec<f64> = glances
             .iter()
-            .filter_map(|s| s.current_fit().map(|f| f.level))
+            .filter_map(|s| s.fit.as_ref().map(|f| f.level))
             .collect();
         let common = levels
             .first()
@@ -205,9 +236,8 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
             out,
             "<table class=\"overview\">\n<thead><tr><th>Series</th><th class=\"num\">n</th><th class=\"num\">Slope</th><th>Slope unit</th><th class=\"num\">{ci_head}</th><th class=\"num\">p</th><th class=\"num\">Open findings</th><th>Last refit</th></tr></thead>\n<tbody>\n"
         );
-        for s in &data.series {
-            let f = s.current_fit();
-            let labels = s.labels();
+        for s in glances {
+            let f = s.fit.as_ref();
             let ci = match f {
                 Some(f) if common.is_none() => format!(
                     "{} ({})",
@@ -220,13 +250,13 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
             let _ = writeln!(
                 out,
                 "<tr><td class=\"text\"><a href=\"#series-{id}\" class=\"key\">{key}</a></td><td class=\"num n\">{n}</td><td class=\"num slope\">{slope}</td><td>{unit}</td><td class=\"num ci\">{ci}</td><td class=\"num p\">{p}</td><td class=\"num\">{open}</td><td>{at}</td></tr>",
-                id = s.row.id.0,
-                key = html(&s.row.key),
+                id = s.id,
+                key = html(&s.key),
                 n = f.map_or(0, |f| f.n),
                 slope = num(f.and_then(|f| f.slope)),
-                unit = html(&labels.slope_unit),
+                unit = html(&s.slope_unit),
                 p = p_html(f.and_then(|f| f.slope_p)),
-                open = s.row.open_findings,
+                open = s.open_findings,
                 at = f.map_or("—".into(), |f| date_of(&f.created_at)),
             );
         }
@@ -234,9 +264,9 @@ fn summary_page(out: &mut String, data: &ReportData, generated_at: &str) {
         out.push_str("<p class=\"muted\">Slopes and intervals are on each series' fitted scale (see the slope unit); p is two-sided, against a slope of zero. n counts the records in the current fit.</p>\n");
     }
 
-    if !data.loose_findings.is_empty() {
+    if !loose.is_empty() {
         out.push_str("<h2>Findings about files and feeds</h2>\n<p class=\"muted\">Not tied to a series: files or rows set aside, feeds gone quiet.</p>\n");
-        findings_table(out, &data.loose_findings, true);
+        findings_table(out, loose, true);
     }
 
     out.push_str(
@@ -345,7 +375,8 @@ fn fitted_point(r: &ReportRecordRow, t: Transform) -> Option<(f64, f64)> {
     }
 }
 
-fn series_section(out: &mut String, s: &SeriesData) {
+/// One series' section of the page.
+pub fn series_section(out: &mut String, s: &SeriesData) {
     let id = s.row.id.0;
     let labels = s.labels();
     let transform = s.transform();

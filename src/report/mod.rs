@@ -115,11 +115,10 @@ pub fn write_report(
     out: &Path,
     generated_at: &str,
 ) -> Result<ReportSummary, ReportError> {
-    let records = match format {
-        ReportFormat::Html => data::Records::Read,
-        ReportFormat::Csv => data::Records::Skip,
-    };
-    let data = data::gather(store, pattern, records)?;
+    if format == ReportFormat::Html {
+        return write_html(store, pattern, out, generated_at, RECORDS_PER_RUN);
+    }
+    let data = data::gather(store, pattern, data::Records::Skip)?;
     let mut summary = ReportSummary {
         series: data.series.len(),
         findings: data.finding_count(),
@@ -127,12 +126,7 @@ pub fn write_report(
         size_note: None,
     };
     match format {
-        ReportFormat::Html => {
-            let page = html::render(&data, generated_at);
-            write_atomically(out, page.as_bytes())?;
-            summary.size_note = size_note(page.len(), summary.series);
-            summary.files.push(out.to_path_buf());
-        }
+        ReportFormat::Html => unreachable!("BUG: written by write_html above"),
         ReportFormat::Csv => {
             let tables = [
                 csv_export::fits(&data),
@@ -153,6 +147,92 @@ pub fn write_report(
     Ok(summary)
 }
 
+/// Record versions read at once for an HTML report: its series are read
+/// and written in runs of about this many, so that a large store's report
+/// holds one run, not every record (a million took 1.4 GB).
+const RECORDS_PER_RUN: i64 = 100_000;
+
+/// The HTML report, series after series: each run of series is read, its
+/// sections written to a scratch file beside `out`, and dropped; then the
+/// summary page (which lists every series first) and the sections go into
+/// `out`.
+fn write_html(
+    store: &Store,
+    pattern: Option<&str>,
+    out: &Path,
+    generated_at: &str,
+    run_records: i64,
+) -> Result<ReportSummary, ReportError> {
+    let rows = data::matching_series(store, pattern)?;
+    let loose = match pattern {
+        None => store.report_loose_findings()?,
+        Some(_) => Vec::new(),
+    };
+    let mut summary = ReportSummary {
+        series: rows.len(),
+        findings: loose.len(),
+        files: Vec::new(),
+        size_note: None,
+    };
+    let scratch = beside(out, "sections");
+    let wrote = |e| ReportError::Write {
+        path: scratch.clone(),
+        source: e,
+    };
+    let written = (|| -> Result<u64, ReportError> {
+        let mut sections = std::io::BufWriter::new(std::fs::File::create(&scratch).map_err(wrote)?);
+        let mut glances = Vec::with_capacity(rows.len());
+        let mut run = Vec::new();
+        let mut in_run = 0i64;
+        let mut rows = rows.into_iter().peekable();
+        while let Some(row) = rows.next() {
+            in_run += row.records;
+            run.push(row);
+            if in_run < run_records && rows.peek().is_some() {
+                continue;
+            }
+            let data =
+                data::gather_rows(store, std::mem::take(&mut run), true, data::Records::Read)?;
+            in_run = 0;
+            let mut text = String::new();
+            for s in &data.series {
+                glances.push(html::Glance::of(s));
+                summary.findings += s.findings.len();
+                text.clear();
+                html::series_section(&mut text, s);
+                sections.write_all(text.as_bytes()).map_err(wrote)?;
+            }
+        }
+        sections.flush().map_err(wrote)?;
+        drop(sections);
+        let head = html::head(&glances, &loose, pattern, generated_at);
+        let mut size = 0u64;
+        write_atomically_with(out, |f| {
+            let mut w = std::io::BufWriter::new(f);
+            w.write_all(head.as_bytes())?;
+            let copied = std::io::copy(&mut std::fs::File::open(&scratch)?, &mut w)?;
+            w.write_all(html::TAIL.as_bytes())?;
+            size = head.len() as u64 + copied + html::TAIL.len() as u64;
+            w.into_inner().map_err(|e| e.into_error())?;
+            Ok(())
+        })?;
+        Ok(size)
+    })();
+    let _ = std::fs::remove_file(&scratch);
+    let size = written?;
+    summary.size_note = size_note(usize::try_from(size).unwrap_or(usize::MAX), summary.series);
+    summary.files.push(out.to_path_buf());
+    Ok(summary)
+}
+
+/// A scratch file's path beside `path`: hidden, named for this process.
+fn beside(path: &Path, what: &str) -> PathBuf {
+    let mut name = std::ffi::OsString::from(".");
+    name.push(path.file_name().unwrap_or_default());
+    name.push(format!(".{what}.{}.tmp", std::process::id()));
+    path.with_file_name(name)
+}
+
 /// The scatter of each series in `rows` (in that order), drawn exactly as
 /// in the report's section of the series: records on the fitted scale,
 /// the current line and its confidence band, flagged records labelled.
@@ -167,12 +247,6 @@ pub(crate) fn scatter_figures(
     }
     let data = data::gather_rows(store, rows, true, data::Records::Read)?;
     Ok(data.series.iter().map(html::series_scatter).collect())
-}
-
-/// Writes `bytes` to a temporary file beside `path`, syncs it and renames
-/// it over `path`.
-fn write_atomically(path: &Path, bytes: &[u8]) -> Result<(), ReportError> {
-    write_atomically_with(path, |f| f.write_all(bytes))
 }
 
 /// Has `write` fill a temporary file beside `path`, syncs it and renames
@@ -209,6 +283,57 @@ fn write_atomically_with(
 mod tests {
     #![allow(clippy::unwrap_used)]
     use super::*;
+
+    /// A report written a series at a time is the one written in one
+    /// run, byte for byte, and leaves no scratch file behind.
+    #[test]
+    fn a_report_written_in_runs_is_the_report_written_at_once() {
+        use std::time::SystemTime;
+        let dir = tempfile::tempdir().unwrap();
+        let config = crate::config::Config::defaults_in(dir.path());
+        std::fs::create_dir_all(&config.inbox).unwrap();
+        let mut store = Store::open(&config.database).unwrap();
+        let mut cache = crate::pipeline::SeriesCache::new();
+        let mut text = String::from("record_id,series,x,y,unit\n");
+        for i in 0..40 {
+            let series = ["MW-1/nitrate", "MW-2/nitrate", "MW-3/boron"][i % 3];
+            let y = 4.0 + (i % 7) as f64 * 0.1 + if i == 31 { 40.0 } else { 0.0 };
+            text.push_str(&format!("R{i},{series},{}.5,{y},mg/L\n", 2000 + i));
+        }
+        let path = config.inbox.join("a.csv");
+        std::fs::write(&path, &text).unwrap();
+        let file = crate::inbox::ReadyFile {
+            size: text.len() as u64,
+            path,
+            relative: "a.csv".into(),
+            modified: SystemTime::UNIX_EPOCH,
+        };
+        crate::pipeline::process_file(&config, &mut store, &mut cache, &file, SystemTime::now())
+            .unwrap();
+        let at = "2026-12-05T07:00:00Z";
+        let once = dir.path().join("once.html");
+        let runs = dir.path().join("runs.html");
+        let a = write_html(&store, None, &once, at, i64::MAX).unwrap();
+        let b = write_html(&store, None, &runs, at, 1).unwrap();
+        assert_eq!((a.series, a.findings), (b.series, b.findings));
+        assert_eq!(a.series, 3);
+        assert!(a.findings > 0, "the planted value raises a finding");
+        let page = std::fs::read_to_string(&once).unwrap();
+        assert_eq!(page, std::fs::read_to_string(&runs).unwrap());
+        assert!(page.starts_with("<!DOCTYPE html>") && page.ends_with(html::TAIL));
+        assert_eq!(page.matches("<section class=\"series\"").count(), 3);
+        for key in ["MW-1/nitrate", "MW-2/nitrate", "MW-3/boron"] {
+            let heading = format!("<span class=\"key\">{key}</span></h2>");
+            assert!(page.contains(&heading), "{key}");
+        }
+        let left: Vec<_> = std::fs::read_dir(dir.path())
+            .unwrap()
+            .filter_map(|e| e.ok())
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .filter(|n| n.ends_with(".tmp"))
+            .collect();
+        assert!(left.is_empty(), "{left:?}");
+    }
 
     /// The size at which a browser struggles is common practice, not a
     /// standard: the note only points at the narrower ways to write one.

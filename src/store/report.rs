@@ -435,17 +435,31 @@ impl Store {
     /// Findings oldest first: those of the given series, or, with `None`,
     /// every finding (those about files and feeds without a series too).
     pub fn report_findings(&self, series: Option<&[SeriesRowId]>) -> Result<Vec<ReportFindingRow>> {
+        self.report_findings_of(series, false)
+    }
+
+    /// The findings about files and feeds (without a series), oldest first.
+    pub fn report_loose_findings(&self) -> Result<Vec<ReportFindingRow>> {
+        self.report_findings_of(None, true)
+    }
+
+    fn report_findings_of(
+        &self,
+        series: Option<&[SeriesRowId]>,
+        loose_only: bool,
+    ) -> Result<Vec<ReportFindingRow>> {
         let sql =
             "SELECT g.id, g.created_at, g.series_id, s.key, sf.name, g.record_row, g.record_ids,
                           g.kinds, g.severity, g.status, g.fit_version, g.summary, g.detail
                    FROM findings g LEFT JOIN series s ON s.id = g.series_id
                    LEFT JOIN source_files sf ON sf.id = g.file_id
-                   WHERE ?1 IS NULL OR g.series_id IN (SELECT value FROM json_each(?1))
+                   WHERE (?1 IS NULL OR g.series_id IN (SELECT value FROM json_each(?1)))
+                     AND (?2 = 0 OR g.series_id IS NULL)
                    ORDER BY g.id";
         let mut stmt = self.conn.prepare(sql).map_err(self.wrap())?;
         let filter = series.map(id_list);
         let rows = stmt
-            .query_map(params![filter], |r| {
+            .query_map(params![filter, loose_only], |r| {
                 let ids: String = r.get(6)?;
                 let kinds: String = r.get(7)?;
                 let detail: String = r.get(12)?;

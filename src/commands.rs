@@ -721,7 +721,7 @@ pub fn review(
     note: &str,
     by: Option<&str>,
 ) -> ExitCode {
-    use slopewarden::review::{Review, ReviewError, review};
+    use slopewarden::review::{Review, review};
     let config_path = config;
     let (config, mut store) = match setup(config) {
         Ok(v) => v,
@@ -768,14 +768,18 @@ pub fn review(
             }
             ExitCode::SUCCESS
         }
-        Err(ReviewError::Refused(msg)) => {
-            eprintln!("slopewarden: {msg}");
-            ExitCode::from(EXIT_BAD_INPUT)
-        }
-        Err(e) => {
-            eprintln!("slopewarden: {e}");
-            ExitCode::from(EXIT_STORE)
-        }
+        Err(e) => review_failed(e),
+    }
+}
+
+/// What a refused verdict or window change prints, and its exit code: a
+/// refusal is input to fix; anything else is the store's.
+fn review_failed(e: slopewarden::review::ReviewError) -> ExitCode {
+    use slopewarden::review::ReviewError;
+    eprintln!("slopewarden: {e}");
+    match e {
+        ReviewError::Refused(_) => ExitCode::from(EXIT_BAD_INPUT),
+        ReviewError::Store(_) => ExitCode::from(EXIT_STORE),
     }
 }
 
@@ -806,7 +810,7 @@ pub fn window(
     note: &str,
     by: Option<&str>,
 ) -> ExitCode {
-    use slopewarden::review::{ReviewError, set_window};
+    use slopewarden::review::set_window;
     let (config, mut store) = match setup(config) {
         Ok(v) => v,
         Err(code) => return code,
@@ -825,14 +829,7 @@ pub fn window(
             println!("  after:  {}", fit_summary(&c.after));
             ExitCode::SUCCESS
         }
-        Err(ReviewError::Refused(msg)) => {
-            eprintln!("slopewarden: {msg}");
-            ExitCode::from(EXIT_BAD_INPUT)
-        }
-        Err(e) => {
-            eprintln!("slopewarden: {e}");
-            ExitCode::from(EXIT_STORE)
-        }
+        Err(e) => review_failed(e),
     }
 }
 

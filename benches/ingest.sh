@@ -12,11 +12,16 @@
 #        (default 1000 1000 1000: 1,000,000 records in 1,000 files)
 # ERRORS=0 benches/ingest.sh generates the stream without injected entry
 # errors or planted extremes (the workload's defaults are 3 % and 0.5 %).
+# RUNS=N (default 3) runs the bare insert and slopewarden N times each,
+# alternating, on the same inbox, and reports the median of each and of
+# their ratio pair by pair: on a shared VM one run of either swings by tens
+# of percent.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 SERIES=${1:-1000}
 POINTS=${2:-1000}
 BATCH=${3:-1000}
+RUNS=${RUNS:-3}
 SHARED=${SHARED:-../shared}
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
@@ -46,10 +51,15 @@ cargo build --release --quiet
 cargo bench --bench bare_insert --no-run --quiet 2>/dev/null || true
 bare_bin=$(ls -t target/release/deps/bare_insert-* | grep -v '\.d$' | head -1)
 
-t0=$(cpu_line)
-bare_out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
-echo "$bare_out (steal $(steal_since "$t0"))"
-bare_s=$(echo "$bare_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+# One bare insert and one slopewarden ingest, each into a fresh database.
+bare_run() {
+  rm -f "$work"/bare.sqlite3*
+  local t0 out
+  t0=$(cpu_line)
+  out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
+  echo "$out (steal $(steal_since "$t0"))" >&2
+  echo "$out" | sed -E 's/.*seconds=([0-9.]+).*/\1/'
+}
 # The same rows in the shape of slopewarden's records table, nothing
 # computed: what the row shape alone costs against the bare insert.
 shape_out=$("$bare_bin" "$work/w/inbox" "$work/shape.sqlite3" records)
@@ -77,22 +87,39 @@ database = "sw.sqlite3"
 [watch]
 keep_files = true
 TOML
-t0=$(cpu_line)
-/usr/bin/time -v target/release/slopewarden ingest --config "$work/sw.toml" "$work/w/inbox" \
-  >"$work/sw.out" 2>"$work/sw.err" &
-wait $! || { cat "$work/sw.err" | tail -20; exit 1; }
-sw_steal=$(steal_since "$t0")
-sw_s=$(grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }')
-rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
+sw_run() {
+  rm -f "$work"/sw.sqlite3*
+  local t0
+  t0=$(cpu_line)
+  /usr/bin/time -v target/release/slopewarden ingest --config "$work/sw.toml" "$work/w/inbox" \
+    >"$work/sw.out" 2>"$work/sw.err" &
+  wait $! || { tail -20 "$work/sw.err" >&2; exit 1; }
+  echo "slopewarden ingest: steal $(steal_since "$t0")" >&2
+  grep 'Elapsed (wall clock)' "$work/sw.err" | awk '{print $NF}' | awk -F: '{ if (NF==3) print $1*3600+$2*60+$3; else print $1*60+$2 }'
+}
+bare_all=""
+sw_all=""
+rss_max=0
+for run in $(seq 1 "$RUNS"); do
+  bare_all="$bare_all $(bare_run)"
+  sw_all="$sw_all $(sw_run)"
+  rss_kb=$(grep 'Maximum resident set size' "$work/sw.err" | awk '{print $NF}')
+  [ "$rss_kb" -gt "$rss_max" ] && rss_max=$rss_kb
+done
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
-echo "steal time during slopewarden ingest: $sw_steal"
-python3 - "$records" "$sw_s" "$bare_s" "$rss_kb" "$shape_s" "$lean_s" "$floor_s" <<'PY'
-import sys
-records, sw, bare, rss = int(sys.argv[1]), float(sys.argv[2]), float(sys.argv[3]), int(sys.argv[4])
+python3 - "$records" "$sw_all" "$bare_all" "$rss_max" "$shape_s" "$lean_s" "$floor_s" <<'PY'
+import statistics, sys
+records, rss = int(sys.argv[1]), int(sys.argv[4])
+sws = [float(v) for v in sys.argv[2].split()]
+bares = [float(v) for v in sys.argv[3].split()]
 shape, lean, floor = float(sys.argv[5]), float(sys.argv[6]), float(sys.argv[7])
-print(f"slopewarden ingest: {records} records in {sw:.2f} s = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
-print(f"bare SQLite insert: {bare:.2f} s; ratio slopewarden / bare = {sw/bare:.2f}")
+for i, (s, b) in enumerate(zip(sws, bares), 1):
+    print(f"pair {i}: bare {b:.2f} s, slopewarden {s:.2f} s, ratio {s/b:.2f}")
+sw, bare = statistics.median(sws), statistics.median(bares)
+ratio = statistics.median(s / b for s, b in zip(sws, bares))
+print(f"slopewarden ingest: {records} records in {sw:.2f} s (median of {len(sws)}) = {records/sw:,.0f} records/s; peak RSS {rss/1024:.0f} MB")
+print(f"bare SQLite insert: {bare:.2f} s (median); ratio slopewarden / bare = {ratio:.2f} (median of the pairs; {min(s/b for s,b in zip(sws,bares)):.2f}-{max(s/b for s,b in zip(sws,bares)):.2f})")
 print(f"records-shaped insert (nothing computed): {shape:.2f} s = {shape/bare:.2f} x bare")
 print(f"narrow record rows (no diagnostics, no raw line; nothing computed): {lean:.2f} s = {lean/bare:.2f} x bare")
 print(f"fewest rows the requirements allow (records with provenance and diagnostics, fit rows, audit; nothing computed): {floor:.2f} s = {floor/bare:.2f} x bare")

@@ -508,9 +508,16 @@ pub fn findings(config: Option<&Path>, open: bool, series: Option<&str>, json: b
             )
         });
         match each {
-            Ok(Ok(())) if listed == 0 => {
-                writeln!(out, "no {}findings", if open { "open " } else { "" }).map(Ok)
+            // A pattern that matches nothing must not read like a clean site.
+            Ok(Ok(())) if listed == 0 => match series {
+                Some(p) => writeln!(
+                    out,
+                    "no {}findings in series matching `{p}` (`slopewarden status` lists the series)",
+                    if open { "open " } else { "" }
+                ),
+                None => writeln!(out, "no {}findings", if open { "open " } else { "" }),
             }
+            .map(Ok),
             Ok(Ok(())) => writeln!(
                 out,
                 "\nA flag is a prompt to verify a record, not a compliance determination. Check the record, then record a verdict with `slopewarden review ID --verdict confirmed|corrected|excluded --note TEXT`."

@@ -212,6 +212,13 @@ fn the_demo_finds_each_planted_problem_and_leaves_messages_a_report_and_a_sound_
         .count();
     assert!(expected > 0);
     assert_eq!(east.len(), expected);
+    // A pattern that matches no series says so, rather than reading like a
+    // site with nothing to check.
+    let none = run(&["findings", "--series", "AB-MW9/*"]);
+    assert_eq!(
+        none.trim(),
+        "no findings in series matching `AB-MW9/*` (`slopewarden status` lists the series)"
+    );
 
     // `record` gathers what is stored about one record: its version with
     // the line as written and its diagnostics on arrival (the same Cook's

@@ -35,8 +35,11 @@ pub(super) fn reconcile_units(
     }
     let mut targets: HashMap<String, Target> = HashMap::default();
     let mut refused = Vec::new();
-    let mut records = Vec::with_capacity(chunk.records.len());
-    for mut record in std::mem::take(&mut chunk.records) {
+    // Records are converted where they lie and only the refused ones are
+    // taken out: moving every record (about 480 bytes each) into a new
+    // vector cost the computing thread a copy of the whole chunk.
+    let mut refused_at: Vec<usize> = Vec::new();
+    for (index, record) in chunk.records.iter_mut().enumerate() {
         let key = record.series.as_str();
         let target = match targets.get_mut(key) {
             Some(t) => t,
@@ -85,23 +88,33 @@ pub(super) fn reconcile_units(
             ),
         };
         match converted {
-            None => records.push(record),
+            None => {}
             Some(Ok((y, unit))) => {
                 record.y = y;
                 record.unit = Some(unit);
-                records.push(record);
             }
-            Some(Err(reason)) => refused.push(RecordError {
-                line: record.line,
-                column: chunk.unit_column.as_ref().map(|c| c.0),
-                field: chunk.unit_column.as_ref().map(|c| c.1.clone()),
-                record_id: Some(record.record_id),
-                reason,
-                raw: record.raw,
-            }),
+            Some(Err(reason)) => {
+                refused_at.push(index);
+                refused.push(RecordError {
+                    line: record.line,
+                    column: chunk.unit_column.as_ref().map(|c| c.0),
+                    field: chunk.unit_column.as_ref().map(|c| c.1.clone()),
+                    record_id: Some(std::mem::take(&mut record.record_id)),
+                    reason,
+                    raw: std::mem::take(&mut record.raw),
+                });
+            }
         }
     }
-    chunk.records = records;
+    if !refused_at.is_empty() {
+        let mut index = 0;
+        let mut next = refused_at.iter().peekable();
+        chunk.records.retain(|_| {
+            let keep = next.next_if_eq(&&index).is_none();
+            index += 1;
+            keep
+        });
+    }
     if !refused.is_empty() {
         chunk.errors.append(&mut refused);
         chunk.errors.sort_by_key(|e| e.line);

@@ -19,8 +19,13 @@
 //! the slope without it), and one fit row per touched series (n, the fit's
 //! statistics, the robust slope with its interval, Mann-Kendall). Whatever
 //! this takes is spent before anything is parsed, validated or computed.
+//! `-- INBOX DB packed` writes the same content as `floor` in a
+//! hypothetical packed layout: a file's records of one series in one row,
+//! their columns as arrays, and a narrow row per record id under the
+//! unique key, to find a record by its id: what storing records in batches
+//! would save.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::time::Instant;
 
 fn main() {
@@ -30,7 +35,7 @@ fn main() {
         .collect();
     let (Some(inbox), Some(db)) = (args.first(), args.get(1)) else {
         eprintln!(
-            "usage: bare_insert INBOX DB [records|lean|floor] (run through benches/ingest.sh)"
+            "usage: bare_insert INBOX DB [records|lean|floor|packed] (run through benches/ingest.sh)"
         );
         return;
     };
@@ -59,6 +64,9 @@ fn main() {
     }
     if shape == Some("floor") {
         return floor(&mut conn, &files);
+    }
+    if shape == Some("packed") {
+        return packed(&mut conn, &files);
     }
     let start = Instant::now();
     let mut rows = 0u64;
@@ -312,30 +320,139 @@ impl Chunked {
     }
 }
 
+/// The per-file and per-series rows both `floor` and `packed` write: a
+/// source file row, one fit row per touched series, one audit entry.
+const FILE_FIT_AUDIT_TABLES: &str =
+    "CREATE TABLE source_files (id INTEGER PRIMARY KEY, name TEXT NOT NULL,
+        sha256 TEXT NOT NULL UNIQUE, size INTEGER NOT NULL, arrived_at TEXT NOT NULL,
+        outcome TEXT NOT NULL);
+     CREATE TABLE fits (id INTEGER PRIMARY KEY, series_id INTEGER NOT NULL,
+        version INTEGER NOT NULL, trigger_file INTEGER NOT NULL, n INTEGER NOT NULL,
+        slope REAL, intercept REAL, slope_se REAL, slope_p REAL, slope_ci_low REAL,
+        slope_ci_high REAL, r_squared REAL, residual_sd REAL, theil_sen_slope REAL,
+        theil_sen_ci_low REAL, theil_sen_ci_high REAL, mann_kendall_s INTEGER,
+        mann_kendall_p REAL);
+     CREATE TABLE audit_log (id INTEGER PRIMARY KEY, at TEXT NOT NULL, kind TEXT NOT NULL,
+        subject TEXT NOT NULL, detail TEXT NOT NULL, prev_hash TEXT NOT NULL,
+        hash TEXT NOT NULL);";
+
+/// Writes a file's source file row, fit rows (placeholders, one per series
+/// in `touched`) and audit entry into `tx`.
+struct FileFitAudit {
+    fits: Chunked,
+    hash: String,
+}
+
+impl FileFitAudit {
+    fn new() -> FileFitAudit {
+        FileFitAudit {
+            fits: Chunked::new(
+                "fits",
+                &[
+                    "series_id",
+                    "version",
+                    "trigger_file",
+                    "n",
+                    "slope",
+                    "intercept",
+                    "slope_se",
+                    "slope_p",
+                    "slope_ci_low",
+                    "slope_ci_high",
+                    "r_squared",
+                    "residual_sd",
+                    "theil_sen_slope",
+                    "theil_sen_ci_low",
+                    "theil_sen_ci_high",
+                    "mann_kendall_s",
+                    "mann_kendall_p",
+                ],
+            ),
+            hash: "0123456789abcdef".repeat(4),
+        }
+    }
+
+    fn source_file(&self, tx: &rusqlite::Transaction<'_>, file_id: i64, f: &Path, size: usize) {
+        tx.execute(
+            "INSERT INTO source_files (id, name, sha256, size, arrived_at, outcome) \
+             VALUES (?1, ?2, ?3, ?4, '2026-12-04T19:00:00Z', 'ingested')",
+            rusqlite::params![
+                file_id,
+                f.to_string_lossy(),
+                format!("{file_id:064}"),
+                size as i64
+            ],
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+    }
+
+    fn fits_and_audit(
+        &self,
+        tx: &rusqlite::Transaction<'_>,
+        file_id: i64,
+        f: &Path,
+        touched: &[i64],
+    ) {
+        use rusqlite::types::ValueRef;
+        let mut fits: Vec<ValueRef<'_>> = Vec::new();
+        for &s in touched {
+            let d = s as f64 * 1e-3 + file_id as f64;
+            fits.extend_from_slice(&[
+                ValueRef::Integer(s),
+                ValueRef::Integer(file_id),
+                ValueRef::Integer(file_id),
+                ValueRef::Integer(file_id),
+            ]);
+            fits.extend((1..=11).map(|c| ValueRef::Real(d * c as f64)));
+            fits.extend_from_slice(&[ValueRef::Integer(s), ValueRef::Real(d)]);
+        }
+        self.fits.insert(tx, &fits);
+        tx.execute(
+            "INSERT INTO audit_log (at, kind, subject, detail, prev_hash, hash) \
+             VALUES ('2026-12-04T19:00:00Z', 'file_ingested', ?1, ?2, ?3, ?3)",
+            rusqlite::params![f.to_string_lossy(), "ingested", self.hash],
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+    }
+}
+
+/// A series id for each key, and the series a file touched, in order.
+#[derive(Default)]
+struct SeriesIds {
+    ids: std::collections::HashMap<String, (i64, i64)>,
+}
+
+impl SeriesIds {
+    /// The series id of `key`, noting it in `touched` the first time
+    /// `file_id` meets it.
+    fn of(&mut self, key: &str, file_id: i64, touched: &mut Vec<i64>) -> i64 {
+        let next = self.ids.len() as i64 + 1;
+        let entry = self
+            .ids
+            .entry(key.to_string())
+            .or_insert((next, file_id - 1));
+        if entry.1 != file_id {
+            entry.1 = file_id;
+            touched.push(entry.0);
+        }
+        entry.0
+    }
+}
+
 /// The fewest rows the store's requirements allow (see the module notes),
 /// placeholders for everything computed.
 fn floor(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
     use rusqlite::types::ValueRef;
+    conn.execute_batch(FILE_FIT_AUDIT_TABLES)
+        .unwrap_or_else(|e| panic!("{e}"));
     conn.execute_batch(
-        "CREATE TABLE source_files (id INTEGER PRIMARY KEY, name TEXT NOT NULL,
-            sha256 TEXT NOT NULL UNIQUE, size INTEGER NOT NULL, arrived_at TEXT NOT NULL,
-            outcome TEXT NOT NULL);
-         CREATE TABLE records (id INTEGER PRIMARY KEY, record_id TEXT NOT NULL,
+        "CREATE TABLE records (id INTEGER PRIMARY KEY, record_id TEXT NOT NULL,
             version INTEGER NOT NULL, series_id INTEGER NOT NULL, x REAL NOT NULL,
             y REAL NOT NULL, censored INTEGER NOT NULL, file_id INTEGER NOT NULL,
             line INTEGER NOT NULL, raw TEXT NOT NULL, leverage REAL,
             studentized_residual REAL, cooks_distance REAL, dffits REAL,
             dfbetas_intercept REAL, dfbetas_slope REAL, slope_without REAL,
-            UNIQUE (record_id, version));
-         CREATE TABLE fits (id INTEGER PRIMARY KEY, series_id INTEGER NOT NULL,
-            version INTEGER NOT NULL, trigger_file INTEGER NOT NULL, n INTEGER NOT NULL,
-            slope REAL, intercept REAL, slope_se REAL, slope_p REAL, slope_ci_low REAL,
-            slope_ci_high REAL, r_squared REAL, residual_sd REAL, theil_sen_slope REAL,
-            theil_sen_ci_low REAL, theil_sen_ci_high REAL, mann_kendall_s INTEGER,
-            mann_kendall_p REAL);
-         CREATE TABLE audit_log (id INTEGER PRIMARY KEY, at TEXT NOT NULL, kind TEXT NOT NULL,
-            subject TEXT NOT NULL, detail TEXT NOT NULL, prev_hash TEXT NOT NULL,
-            hash TEXT NOT NULL);",
+            UNIQUE (record_id, version));",
     )
     .unwrap_or_else(|e| panic!("{e}"));
     let record_rows = Chunked::new(
@@ -360,62 +477,21 @@ fn floor(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
             "slope_without",
         ],
     );
-    let fit_rows = Chunked::new(
-        "fits",
-        &[
-            "series_id",
-            "version",
-            "trigger_file",
-            "n",
-            "slope",
-            "intercept",
-            "slope_se",
-            "slope_p",
-            "slope_ci_low",
-            "slope_ci_high",
-            "r_squared",
-            "residual_sd",
-            "theil_sen_slope",
-            "theil_sen_ci_low",
-            "theil_sen_ci_high",
-            "mann_kendall_s",
-            "mann_kendall_p",
-        ],
-    );
-    let hash = "0123456789abcdef".repeat(4);
+    let rest = FileFitAudit::new();
     let start = Instant::now();
     let mut id = 0i64;
-    let mut series: std::collections::HashMap<String, (i64, i64, i64)> =
-        std::collections::HashMap::new();
+    let mut series = SeriesIds::default();
     for (file_no, f) in files.iter().enumerate() {
         let text = std::fs::read_to_string(f).unwrap_or_else(|e| panic!("{e}"));
         let file_id = file_no as i64 + 1;
         let tx = conn.transaction().unwrap_or_else(|e| panic!("{e}"));
-        tx.execute(
-            "INSERT INTO source_files (id, name, sha256, size, arrived_at, outcome) \
-             VALUES (?1, ?2, ?3, ?4, '2026-12-04T19:00:00Z', 'ingested')",
-            rusqlite::params![
-                file_id,
-                f.to_string_lossy(),
-                format!("{file_id:064}"),
-                text.len() as i64
-            ],
-        )
-        .unwrap_or_else(|e| panic!("{e}"));
+        rest.source_file(&tx, file_id, f, text.len());
         let mut rows: Vec<ValueRef<'_>> = Vec::new();
         let mut touched: Vec<i64> = Vec::new();
         for (line_no, line) in text.lines().enumerate().skip(1) {
             let g: Vec<&str> = line.split(',').collect();
             let field = |i: usize| g.get(i).copied().unwrap_or("");
-            let next = series.len() as i64 + 1;
-            let entry = series
-                .entry(field(1).to_string())
-                .or_insert((next, 0, file_id - 1));
-            entry.1 += 1;
-            if entry.2 != file_id {
-                entry.2 = file_id;
-                touched.push(entry.0);
-            }
+            let series_id = series.of(field(1), file_id, &mut touched);
             id += 1;
             let number = |i: usize| field(i).parse().unwrap_or(0.0);
             let d = id as f64 * 1e-7;
@@ -423,7 +499,7 @@ fn floor(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
                 ValueRef::Integer(id),
                 ValueRef::Text(field(0).as_bytes()),
                 ValueRef::Integer(1),
-                ValueRef::Integer(entry.0),
+                ValueRef::Integer(series_id),
                 ValueRef::Real(number(2)),
                 ValueRef::Real(number(3)),
                 ValueRef::Integer(0),
@@ -434,26 +510,126 @@ fn floor(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
             rows.extend((1..=7).map(|c| ValueRef::Real(d * c as f64)));
         }
         record_rows.insert(&tx, &rows);
-        let mut fits: Vec<ValueRef<'_>> = Vec::new();
-        for s in touched {
-            let d = s as f64 * 1e-3 + file_id as f64;
-            fits.extend_from_slice(&[
-                ValueRef::Integer(s),
-                ValueRef::Integer(file_id),
-                ValueRef::Integer(file_id),
-                ValueRef::Integer(file_id),
-            ]);
-            fits.extend((1..=11).map(|c| ValueRef::Real(d * c as f64)));
-            fits.extend_from_slice(&[ValueRef::Integer(s), ValueRef::Real(d)]);
-        }
-        fit_rows.insert(&tx, &fits);
-        tx.execute(
-            "INSERT INTO audit_log (at, kind, subject, detail, prev_hash, hash) \
-             VALUES ('2026-12-04T19:00:00Z', 'file_ingested', ?1, ?2, ?3, ?3)",
-            rusqlite::params![f.to_string_lossy(), "ingested", hash],
-        )
-        .unwrap_or_else(|e| panic!("{e}"));
+        rest.fits_and_audit(&tx, file_id, f, &touched);
         tx.commit().unwrap_or_else(|e| panic!("{e}"));
     }
     print_rate("required_floor", files.len(), id as u64, start);
+}
+
+/// The same content as `floor` in a hypothetical packed layout (not the
+/// store's schema): a file's records of one series in one row, their
+/// columns as arrays (ids and raw lines as newline-joined text; lines,
+/// x, y, censoring and the seven diagnostics as little-endian blobs),
+/// and one narrow row per record id, under the unique key (record id,
+/// version), to find a record by its id. What a record would cost if it
+/// were stored in batches.
+fn packed(conn: &mut rusqlite::Connection, files: &[PathBuf]) {
+    conn.execute_batch(FILE_FIT_AUDIT_TABLES)
+        .unwrap_or_else(|e| panic!("{e}"));
+    conn.execute_batch(
+        "CREATE TABLE record_batches (id INTEGER PRIMARY KEY, file_id INTEGER NOT NULL,
+            series_id INTEGER NOT NULL, count INTEGER NOT NULL, record_ids TEXT NOT NULL,
+            lines BLOB NOT NULL, x BLOB NOT NULL, y BLOB NOT NULL, censored BLOB NOT NULL,
+            raw TEXT NOT NULL, diagnostics BLOB NOT NULL);
+         CREATE TABLE record_keys (record_id TEXT NOT NULL, version INTEGER NOT NULL,
+            batch INTEGER NOT NULL, slot INTEGER NOT NULL,
+            PRIMARY KEY (record_id, version)) WITHOUT ROWID;",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let keys = Chunked::new("record_keys", &["record_id", "version", "batch", "slot"]);
+    #[derive(Default)]
+    struct Batch {
+        series_id: i64,
+        ids: String,
+        lines: Vec<u8>,
+        x: Vec<u8>,
+        y: Vec<u8>,
+        censored: Vec<u8>,
+        raw: String,
+        diagnostics: Vec<u8>,
+        count: i64,
+    }
+    let rest = FileFitAudit::new();
+    let start = Instant::now();
+    let mut id = 0i64;
+    let mut batch_id = 0i64;
+    let mut series = SeriesIds::default();
+    for (file_no, f) in files.iter().enumerate() {
+        use rusqlite::types::ValueRef;
+        let text = std::fs::read_to_string(f).unwrap_or_else(|e| panic!("{e}"));
+        let file_id = file_no as i64 + 1;
+        let tx = conn.transaction().unwrap_or_else(|e| panic!("{e}"));
+        rest.source_file(&tx, file_id, f, text.len());
+        let mut touched: Vec<i64> = Vec::new();
+        let mut batches: Vec<Batch> = Vec::new();
+        let mut slot_of: std::collections::HashMap<i64, usize> = Default::default();
+        let mut key_rows: Vec<ValueRef<'_>> = Vec::new();
+        for (line_no, line) in text.lines().enumerate().skip(1) {
+            let g: Vec<&str> = line.split(',').collect();
+            let field = |i: usize| g.get(i).copied().unwrap_or("");
+            let series_id = series.of(field(1), file_id, &mut touched);
+            id += 1;
+            let number = |i: usize| field(i).parse::<f64>().unwrap_or(0.0);
+            let d = id as f64 * 1e-7;
+            let at = *slot_of.entry(series_id).or_insert_with(|| {
+                batches.push(Batch {
+                    series_id,
+                    ..Batch::default()
+                });
+                batches.len() - 1
+            });
+            let b = &mut batches[at];
+            b.ids.push_str(field(0));
+            b.ids.push('\n');
+            b.lines
+                .extend_from_slice(&(line_no as u32 + 1).to_le_bytes());
+            b.x.extend_from_slice(&number(2).to_le_bytes());
+            b.y.extend_from_slice(&number(3).to_le_bytes());
+            b.censored.push(0);
+            b.raw.push_str(line);
+            b.raw.push('\n');
+            for c in 1..=7 {
+                b.diagnostics
+                    .extend_from_slice(&(d * c as f64).to_le_bytes());
+            }
+            key_rows.extend_from_slice(&[
+                ValueRef::Text(field(0).as_bytes()),
+                ValueRef::Integer(1),
+                ValueRef::Integer(batch_id + 1 + at as i64),
+                ValueRef::Integer(b.count),
+            ]);
+            b.count += 1;
+        }
+        {
+            let mut insert = tx
+                .prepare_cached(
+                    "INSERT INTO record_batches (id, file_id, series_id, count, record_ids, \
+                     lines, x, y, censored, raw, diagnostics) \
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+                )
+                .unwrap_or_else(|e| panic!("{e}"));
+            for b in &batches {
+                batch_id += 1;
+                insert
+                    .execute(rusqlite::params![
+                        batch_id,
+                        file_id,
+                        b.series_id,
+                        b.count,
+                        b.ids,
+                        b.lines,
+                        b.x,
+                        b.y,
+                        b.censored,
+                        b.raw,
+                        b.diagnostics
+                    ])
+                    .unwrap_or_else(|e| panic!("{e}"));
+            }
+        }
+        keys.insert(&tx, &key_rows);
+        rest.fits_and_audit(&tx, file_id, f, &touched);
+        tx.commit().unwrap_or_else(|e| panic!("{e}"));
+    }
+    print_rate("packed_floor", files.len(), id as u64, start);
 }

@@ -4,8 +4,9 @@
 #   1. a bare SQLite insert of the same rows (benches/bare_insert.rs), and
 #      the same rows in the shape of slopewarden's records table (its
 #      `records` mode: what the row shape alone costs), in a narrower
-#      hypothetical shape (its `lean` mode), and as the fewest rows the
-#      store's requirements allow (its `floor` mode),
+#      hypothetical shape (its `lean` mode), as the fewest rows the
+#      store's requirements allow (its `floor` mode), and that content
+#      packed in a row per file and series (its `packed` mode),
 #   2. `slopewarden ingest` over the same inbox (parse, validate, refit,
 #      diagnostics, audit, commit per file), with its peak RSS.
 # Usage: benches/ingest.sh [SERIES] [POINTS_PER_SERIES] [BATCH]
@@ -74,11 +75,17 @@ lean_s=$(echo "$lean_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
 rm -f "$work"/lean.sqlite3*
 # The fewest rows the store's requirements allow (a source file row, an
 # audit entry, each record with its provenance and diagnostics, a fit row
-# per touched series), nothing computed: the floor of any schema.
+# per touched series), nothing computed: the floor of a schema with a row per record.
 floor_out=$("$bare_bin" "$work/w/inbox" "$work/floor.sqlite3" floor)
 echo "$floor_out"
 floor_s=$(echo "$floor_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
 rm -f "$work"/floor.sqlite3*
+# The same content packed: a file's records of one series in one row, and
+# a narrow row per record id: what storing records in batches would save.
+packed_out=$("$bare_bin" "$work/w/inbox" "$work/packed.sqlite3" packed)
+echo "$packed_out"
+packed_s=$(echo "$packed_out" | sed -E 's/.*seconds=([0-9.]+).*/\1/')
+rm -f "$work"/packed.sqlite3*
 
 cat > "$work/sw.toml" <<TOML
 [paths]
@@ -108,12 +115,12 @@ for run in $(seq 1 "$RUNS"); do
 done
 records=$(python3 -c "import sqlite3;print(sqlite3.connect('$work/sw.sqlite3').execute('select count(*) from records').fetchone()[0])")
 cat "$work/sw.out"
-python3 - "$records" "$sw_all" "$bare_all" "$rss_max" "$shape_s" "$lean_s" "$floor_s" <<'PY'
+python3 - "$records" "$sw_all" "$bare_all" "$rss_max" "$shape_s" "$lean_s" "$floor_s" "$packed_s" <<'PY'
 import statistics, sys
 records, rss = int(sys.argv[1]), int(sys.argv[4])
 sws = [float(v) for v in sys.argv[2].split()]
 bares = [float(v) for v in sys.argv[3].split()]
-shape, lean, floor = float(sys.argv[5]), float(sys.argv[6]), float(sys.argv[7])
+shape, lean, floor, packed = (float(v) for v in sys.argv[5:9])
 for i, (s, b) in enumerate(zip(sws, bares), 1):
     print(f"pair {i}: bare {b:.2f} s, slopewarden {s:.2f} s, ratio {s/b:.2f}")
 sw, bare = statistics.median(sws), statistics.median(bares)
@@ -123,4 +130,5 @@ print(f"bare SQLite insert: {bare:.2f} s (median); ratio slopewarden / bare = {r
 print(f"records-shaped insert (nothing computed): {shape:.2f} s = {shape/bare:.2f} x bare")
 print(f"narrow record rows (no diagnostics, no raw line; nothing computed): {lean:.2f} s = {lean/bare:.2f} x bare")
 print(f"fewest rows the requirements allow (records with provenance and diagnostics, fit rows, audit; nothing computed): {floor:.2f} s = {floor/bare:.2f} x bare")
+print(f"the same content packed (a row per file and series, a narrow row per record id; nothing computed): {packed:.2f} s = {packed/bare:.2f} x bare")
 PY

@@ -767,7 +767,7 @@ pub fn review(
                         slopewarden::review::close_trend_command(
                             *id,
                             finding,
-                            &done.verdict,
+                            done.verdict,
                             done.verdict_id
                         )
                     );

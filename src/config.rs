@@ -18,6 +18,7 @@ use std::time::Duration;
 use globset::{Glob, GlobMatcher};
 use toml::{Table, Value};
 
+use crate::findings::Severity;
 use crate::findings::rules::{CooksRule, Thresholds};
 use crate::records::SeriesId;
 use crate::records::{DateFormat, Layout, Matrix, SeriesKey, SeriesRules, XSource};
@@ -231,8 +232,8 @@ pub struct MailSettings {
     pub outbox_dir: PathBuf,
     /// The SMTP server, when configured.
     pub smtp: Option<SmtpConfig>,
-    /// Severity per finding kind (kind name -> notice, warning, alert).
-    pub severity: Vec<(String, String)>,
+    /// Severity per finding kind (kind name -> severity).
+    pub severity: Vec<(String, Severity)>,
     /// First wait before retrying a failed delivery; it doubles per
     /// attempt, up to an hour.
     pub retry_first: Duration,
@@ -260,11 +261,11 @@ impl MailSettings {
     }
 
     /// The configured severity of a finding kind.
-    pub fn severity_of(&self, kind: &str) -> &str {
+    pub fn severity_of(&self, kind: &str) -> Severity {
         self.severity
             .iter()
             .find(|(k, _)| k == kind)
-            .map_or("warning", |(_, v)| v.as_str())
+            .map_or(Severity::Warning, |(_, v)| *v)
     }
 }
 
@@ -887,28 +888,29 @@ impl Walker {
                 ),
             }
         }
-        let mut severity: Vec<(String, String)> = [
-            ("high_leverage", "warning"),
-            ("influential", "warning"),
-            ("outlier", "warning"),
-            ("sign_reversal", "alert"),
-            ("significance_change", "warning"),
-            ("conflict", "warning"),
-            ("quarantined", "warning"),
-            ("silent_feed", "notice"),
-            ("disk_space", "alert"),
-            ("similar_series", "warning"),
+        let mut severity: Vec<(String, Severity)> = [
+            ("high_leverage", Severity::Warning),
+            ("influential", Severity::Warning),
+            ("outlier", Severity::Warning),
+            ("sign_reversal", Severity::Alert),
+            ("significance_change", Severity::Warning),
+            ("conflict", Severity::Warning),
+            ("quarantined", Severity::Warning),
+            ("silent_feed", Severity::Notice),
+            ("disk_space", Severity::Alert),
+            ("similar_series", Severity::Warning),
         ]
         .iter()
-        .map(|(k, v)| (k.to_string(), v.to_string()))
+        .map(|&(k, v)| (k.to_string(), v))
         .collect();
         if let Some(sev) = self.table(m, "severity") {
             for (k, v) in sev {
                 let at = format!("mail.severity.{k}");
-                match (severity.iter_mut().find(|(kk, _)| kk == k), v.as_str()) {
-                    (Some(slot), Some(level @ ("notice" | "warning" | "alert"))) => {
-                        slot.1 = level.to_string()
-                    }
+                match (
+                    severity.iter_mut().find(|(kk, _)| kk == k),
+                    v.as_str().and_then(Severity::from_word),
+                ) {
+                    (Some(slot), Some(level)) => slot.1 = level,
                     (None, _) => self.problem(
                         &at,
                         "unknown finding kind; use high_leverage, influential, outlier, sign_reversal, significance_change, conflict, quarantined, silent_feed, disk_space or similar_series".into(),

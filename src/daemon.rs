@@ -686,6 +686,6 @@ mod tests {
         assert_eq!(f.len(), 1);
         assert_eq!(f[0].kinds, vec!["silent_feed".to_string()]);
         assert_eq!(f[0].detail["feed"], "ridge-lab");
-        assert_eq!(f[0].severity, "notice");
+        assert_eq!(f[0].severity, crate::findings::Severity::Notice);
     }
 }

@@ -17,7 +17,7 @@ use crate::clock;
 use crate::config::{Config, SmtpConfig};
 use crate::messages::{
     Digest, DigestLine, InlineImage, Mailer, OutboxDir, Outgoing, Rendered, Secret, SendError,
-    Severity, Smtp, SmtpSettings, TlsMode, render_digest,
+    Smtp, SmtpSettings, TlsMode, render_digest,
 };
 use crate::store::{NewMessage, Store, StoreError};
 
@@ -188,11 +188,7 @@ fn queue_digests(config: &Config, store: &mut Store, now: SystemTime) -> Result<
                         .iter()
                         .filter_map(|k| crate::messages::FindingKind::from_name(k))
                         .collect(),
-                    severity: match f.severity.as_str() {
-                        "alert" => Severity::Alert,
-                        "notice" => Severity::Notice,
-                        _ => Severity::Warning,
-                    },
+                    severity: f.severity,
                 });
             }
         }
@@ -251,7 +247,7 @@ mod tests {
                     record_row: None,
                     record_ids: &ids,
                     kinds: &kinds,
-                    severity: "warning",
+                    severity: crate::findings::Severity::Warning,
                     fit_version: None,
                     fit_point: None,
                     summary: "test",

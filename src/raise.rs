@@ -269,7 +269,7 @@ pub fn record_finding(
         record_row: Some(case.row_id),
         record_ids: std::slice::from_ref(&r.record_id),
         kinds: &kinds,
-        severity: severity.as_str(),
+        severity,
         // The version this file's refit gave the series (already counted).
         fit_version: Some(case.series.fit_version),
         // Only a suspect record is kept out of later judging (see pipeline).
@@ -407,7 +407,7 @@ pub fn plain_finding(
         record_row,
         record_ids,
         kinds: &kinds,
-        severity: severity.as_str(),
+        severity,
         fit_version: series.map(|s| s.fit_version),
         fit_point: None,
         summary,
@@ -711,26 +711,16 @@ fn verdict_commands(id: i64, value: Option<f64>) -> Vec<String> {
 }
 
 fn severity_of(config: &Config, kinds: &[String]) -> Severity {
-    let rank = |s: &str| match s {
-        "alert" => 2,
-        "warning" => 1,
-        _ => 0,
-    };
-    let mut best = kinds
-        .iter()
-        .map(|k| rank(config.mail.severity_of(k)))
-        .max()
-        .unwrap_or(0);
     // Two independent record-level signals at once: the record changes
     // what the trend says.
     if kinds.len() >= 2 {
-        best = best.max(2);
+        return Severity::Alert;
     }
-    match best {
-        2 => Severity::Alert,
-        1 => Severity::Warning,
-        _ => Severity::Notice,
-    }
+    kinds
+        .iter()
+        .map(|k| config.mail.severity_of(k))
+        .max()
+        .unwrap_or(Severity::Notice)
 }
 
 /// Whether every recipient of the series is at their hourly limit, so that

@@ -17,7 +17,10 @@ use crate::findings::rules::next_significance;
 use crate::records::SeriesId;
 use crate::stats::{LineFit, Transform, fit_line};
 use crate::store::seal::SealScope;
-use crate::store::{AuditKind, NewFit, NewVerdict, SeriesRow, Store, StoreError, Tx};
+use crate::store::{
+    AuditKind, FindingStatus, NewFit, NewVerdict, RecordStatus, SeriesRow, Store, StoreError, Tx,
+    VerdictKind,
+};
 use crate::window::Window;
 
 /// What the analyst says about a finding's record.
@@ -35,12 +38,12 @@ pub enum Verdict {
 }
 
 impl Verdict {
-    /// The stored name.
-    pub fn name(self) -> &'static str {
+    /// What is stored of it.
+    pub fn kind(self) -> VerdictKind {
         match self {
-            Verdict::Confirmed => "confirmed",
-            Verdict::Corrected { .. } => "corrected",
-            Verdict::Excluded => "excluded",
+            Verdict::Confirmed => VerdictKind::Confirmed,
+            Verdict::Corrected { .. } => VerdictKind::Corrected,
+            Verdict::Excluded => VerdictKind::Excluded,
         }
     }
 }
@@ -74,8 +77,8 @@ pub struct Review<'a> {
 pub struct Reviewed {
     /// The verdict row written.
     pub verdict_id: i64,
-    /// The verdict's name (`reverted` for a revert).
-    pub verdict: String,
+    /// What the verdict said (`Reverted` for a revert).
+    pub verdict: VerdictKind,
     /// The series refitted, if the finding has one.
     pub series: Option<String>,
     /// The new fit version.
@@ -87,7 +90,7 @@ pub struct Reviewed {
     /// The corrected version's row, for `corrected`.
     pub new_record_row: Option<i64>,
     /// The finding's status now.
-    pub finding_status: String,
+    pub finding_status: FindingStatus,
     /// Open trend findings of the series that the record corrected or
     /// excluded here caused alone: (id, summary). They stay open (a
     /// verdict is the analyst's), but the refit may have undone them.
@@ -108,7 +111,12 @@ pub enum ReviewError {
 /// The command that closes trend finding `trend` once the record that
 /// alone caused it has been answered on finding `finding` by verdict
 /// `verdict_id` (`corrected` or `excluded`).
-pub fn close_trend_command(trend: i64, finding: i64, verdict: &str, verdict_id: i64) -> String {
+pub fn close_trend_command(
+    trend: i64,
+    finding: i64,
+    verdict: VerdictKind,
+    verdict_id: i64,
+) -> String {
     format!(
         "slopewarden review {trend} --verdict confirmed --note \"caused by the record of finding {finding}, {verdict} by verdict {verdict_id}\""
     )
@@ -140,7 +148,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
     let active = history
         .iter()
         .rev()
-        .find(|v| v.verdict != "reverted" && !undone.contains(&v.id))
+        .find(|v| v.verdict != VerdictKind::Reverted && !undone.contains(&v.id))
         .cloned();
 
     let series = match &target.series {
@@ -149,7 +157,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
     };
     let mut new_record_row = None;
     let mut head_change: Option<i64> = None;
-    let (name, value, reverts, record_row, finding_status) = match r.action {
+    let (kind, value, reverts, record_row) = match r.action {
         Action::Verdict(v) => {
             if let Some(a) = &active {
                 return Err(refused(format!(
@@ -157,7 +165,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
                     r.finding, a.verdict, a.by, a.at, a.id, r.finding
                 )));
             }
-            if target.status != "open" {
+            if !target.status.is_open() {
                 return Err(refused(format!(
                     "finding {} is {}, not open",
                     r.finding, target.status
@@ -176,7 +184,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
             }
             match (v, &record, &series) {
                 (Verdict::Excluded, Some(rec), _) => {
-                    if rec.status != "current" {
+                    if rec.status != RecordStatus::Current {
                         return Err(refused(format!(
                             "record {} (row {}) is {}, not the current version",
                             rec.record_id, rec.row, rec.status
@@ -197,7 +205,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
                             rec.unit.as_deref().unwrap_or("the stored unit")
                         )));
                     }
-                    if rec.status != "current" {
+                    if rec.status != RecordStatus::Current {
                         return Err(refused(format!(
                             "record {} (row {}) is {}, not the current version",
                             rec.record_id, rec.row, rec.status
@@ -214,7 +222,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
                         s.latest_record,
                         &note,
                     )?;
-                    tx.set_record_status(rec.row, "superseded")?;
+                    tx.set_record_status(rec.row, RecordStatus::Superseded)?;
                     new_record_row = Some(row);
                     head_change = Some(row);
                 }
@@ -230,13 +238,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
                 Verdict::Corrected { value } => Some(value),
                 _ => None,
             };
-            (
-                v.name().to_string(),
-                value,
-                None,
-                target.record_row,
-                v.name().to_string(),
-            )
+            (v.kind(), value, None, target.record_row)
         }
         Action::Revert => {
             let Some(a) = active else {
@@ -245,27 +247,21 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
                     r.finding
                 )));
             };
-            match a.verdict.as_str() {
-                "excluded" => {
+            match a.verdict {
+                VerdictKind::Excluded => {
                     if let Some(row) = a.record_row {
                         tx.set_excluded(row, false)?;
                     }
                 }
-                "corrected" => {
+                VerdictKind::Corrected => {
                     if let (Some(old), Some(new)) = (a.record_row, a.new_record_row) {
-                        tx.set_record_status(new, "superseded")?;
-                        tx.set_record_status(old, "current")?;
+                        tx.set_record_status(new, RecordStatus::Superseded)?;
+                        tx.set_record_status(old, RecordStatus::Current)?;
                     }
                 }
-                _ => {}
+                VerdictKind::Confirmed | VerdictKind::Reverted => {}
             }
-            (
-                "reverted".to_string(),
-                None,
-                Some(a.id),
-                a.record_row,
-                "open".to_string(),
-            )
+            (VerdictKind::Reverted, None, Some(a.id), a.record_row)
         }
     };
     // The trend changes this record caused alone, for the analyst to look
@@ -281,7 +277,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
     };
     let verdict_id = tx.insert_verdict(&NewVerdict {
         finding: r.finding,
-        verdict: &name,
+        verdict: kind,
         record_row,
         new_record_row,
         value,
@@ -290,7 +286,8 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
         by: r.by,
         at: r.at,
     })?;
-    tx.set_finding_status(r.finding, &finding_status)?;
+    let finding_status = kind.finding_status();
+    tx.set_finding_status(r.finding, finding_status)?;
 
     let (before, after, fit_version) = match series {
         Some(mut s) => {
@@ -314,7 +311,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
     let seal = tx.seal(SealScope::Verdict(verdict_id))?;
     let what = match (r.action, reverts) {
         (Action::Revert, Some(v)) => format!("reverted verdict {v}"),
-        _ => name.clone(),
+        _ => kind.to_string(),
     };
     let fit_text = match (&target.series, fit_version, &after) {
         (Some(k), Some(v), Some(f)) => format!(
@@ -336,7 +333,7 @@ pub fn review(store: &mut Store, config: &Config, r: &Review<'_>) -> Result<Revi
     tx.commit()?;
     Ok(Reviewed {
         verdict_id,
-        verdict: name,
+        verdict: kind,
         series: target.series,
         fit_version,
         before,

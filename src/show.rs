@@ -7,7 +7,9 @@ use std::fmt::Write;
 use serde_json::Value;
 
 use crate::raise::CAUTION;
-use crate::store::{FindingRow, FitHistoryRow, RecordVersion, VerdictRow};
+use crate::store::{
+    FindingRow, FitHistoryRow, RecordStatus, RecordVersion, VerdictKind, VerdictRow,
+};
 
 /// What became, since a trend finding was raised, of the record it hinged
 /// on: read by the caller for a finding whose change the newest record
@@ -27,7 +29,11 @@ fn deciding(f: &FindingRow, verdicts: &[VerdictRow]) -> Option<VerdictRow> {
     verdicts
         .iter()
         .rev()
-        .find(|v| v.verdict == f.status && v.reverts.is_none())
+        .find(|v| {
+            v.verdict != VerdictKind::Reverted
+                && v.verdict.finding_status() == f.status
+                && v.reverts.is_none()
+        })
         .cloned()
 }
 
@@ -232,7 +238,7 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
                         v.by,
                         v.note
                     );
-                    if matches!(v.verdict.as_str(), "corrected" | "excluded") {
+                    if matches!(v.verdict, VerdictKind::Corrected | VerdictKind::Excluded) {
                         settled_by = Some((g.id, v));
                     }
                 }
@@ -284,26 +290,26 @@ pub fn describe_finding(f: &FindingRow, verdicts: &[VerdictRow], since: Option<&
             v.note
         );
     }
-    if let (true, Some((finding, v))) = (f.status == "open", &settled_by) {
+    if let (true, Some((finding, v))) = (f.status.is_open(), &settled_by) {
         let _ = writeln!(
             o,
             "\nthe record this change hinged on has been {}; compare the series now (above) with the change, then close this finding:\n  {}",
             v.verdict,
-            crate::review::close_trend_command(f.id, *finding, &v.verdict, v.id)
+            crate::review::close_trend_command(f.id, *finding, v.verdict, v.id)
         );
-    } else if let (true, Some(y)) = (f.status == "open", d["proposed_y"].as_f64()) {
+    } else if let (true, Some(y)) = (f.status.is_open(), d["proposed_y"].as_f64()) {
         let _ = writeln!(
             o,
             "\nonce both versions are checked (confirmed keeps the stored value; corrected takes the resubmitted one, or the one you found, and refits; excluded leaves the record out of the fit):\n  slopewarden review {id} --verdict confirmed --note \"...\"\n  slopewarden review {id} --verdict corrected --value {y} --note \"...\"\n  slopewarden review {id} --verdict excluded --note \"...\"",
             id = f.id
         );
-    } else if f.status == "open" && !r.is_object() {
+    } else if f.status.is_open() && !r.is_object() {
         let _ = writeln!(
             o,
             "\nthis finding concerns no single record; once it has been looked into:\n  slopewarden review {} --verdict confirmed --note \"...\"",
             f.id
         );
-    } else if f.status == "open" {
+    } else if f.status.is_open() {
         let _ = writeln!(
             o,
             "\nafter checking the record (field sheet, chain of custody, lab report):\n  slopewarden review {id} --verdict confirmed --note \"...\"\n  slopewarden review {id} --verdict corrected --value V --note \"...\"\n  slopewarden review {id} --verdict excluded --note \"...\"",
@@ -370,13 +376,15 @@ pub fn describe_record(
             .x_unit
             .as_deref()
             .map_or(String::new(), |u| format!(" {u}"));
-        let state = match (v.status.as_str(), v.in_fit, v.excluded) {
+        let state = match (v.status, v.in_fit, v.excluded) {
             (_, _, true) => "excluded from the fit by a verdict",
-            ("current", true, false) => "in the fit",
-            ("current", false, false) if v.censored => "not in the fit (a non-detect)",
-            ("current", false, false) => "not in the fit",
-            ("proposed", _, _) => "a resubmission kept aside, not in the fit",
-            _ => "no longer in use: a later version, or the revert of its verdict, replaced it",
+            (RecordStatus::Current, true, false) => "in the fit",
+            (RecordStatus::Current, false, false) if v.censored => "not in the fit (a non-detect)",
+            (RecordStatus::Current, false, false) => "not in the fit",
+            (RecordStatus::Proposed, _, _) => "a resubmission kept aside, not in the fit",
+            (RecordStatus::Superseded, _, _) => {
+                "no longer in use: a later version, or the revert of its verdict, replaced it"
+            }
         };
         let _ = writeln!(
             o,
@@ -487,6 +495,7 @@ pub fn describe_record(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::store::FindingStatus;
     use serde_json::json;
 
     fn row(status: &str, detail: Value) -> FindingRow {
@@ -495,8 +504,8 @@ mod tests {
             series: Some("MW-2/boron".into()),
             record_ids: vec!["Q-17".into()],
             kinds: vec!["outlier".into()],
-            severity: "warning".into(),
-            status: status.into(),
+            severity: crate::findings::Severity::Warning,
+            status: FindingStatus::from_word(status).unwrap_or_else(|| panic!("{status}")),
             created_at: "2026-03-01T00:00:00Z".into(),
             file: Some("march.csv".into()),
             fit_version: Some(4),
@@ -530,7 +539,7 @@ mod tests {
         let v = VerdictRow {
             id: 3,
             finding: 7,
-            verdict: "corrected".into(),
+            verdict: VerdictKind::Corrected,
             record_row: Some(17),
             new_record_row: Some(90),
             value: Some(4.1),
@@ -562,7 +571,7 @@ mod tests {
         let verdict = |id: i64, verdict: &str, reverts: Option<i64>| VerdictRow {
             id,
             finding: 7,
-            verdict: verdict.into(),
+            verdict: VerdictKind::from_word(verdict).unwrap_or_else(|| panic!("{verdict}")),
             record_row: Some(17),
             new_record_row: None,
             value: None,
@@ -616,7 +625,7 @@ mod tests {
     fn a_record_lists_each_version_in_its_state() {
         let version = |version: i64, status: &str, joined: Option<i64>| RecordVersion {
             version,
-            status: status.into(),
+            status: RecordStatus::from_word(status).unwrap_or_else(|| panic!("{status}")),
             series: "MW-2/boron".into(),
             x_name: None,
             x_unit: None,

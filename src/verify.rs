@@ -26,7 +26,8 @@ use crate::stats::robust::theil_sen;
 use crate::stats::{LineFit, Moments, MomentsParts, TQuantiles, Transform};
 use crate::store::seal::{SealKind, seals_in};
 use crate::store::{
-    SeriesReplay, Store, StoreError, StoredPoint, VerdictRow, decode_log_screen, verify_chain,
+    FindingStatus, RecordStatus, SeriesReplay, Store, StoreError, StoredPoint, VerdictKind,
+    VerdictRow, decode_log_screen, verify_chain,
 };
 use crate::window::Window;
 
@@ -169,37 +170,37 @@ pub fn verify(store: &Store) -> Result<VerifyReport, StoreError> {
     let mut active: BTreeMap<i64, Option<&VerdictRow>> = BTreeMap::new();
     for v in &verdicts {
         let slot = active.entry(v.finding).or_insert(None);
-        *slot = if v.verdict == "reverted" {
+        *slot = if v.verdict == VerdictKind::Reverted {
             None
         } else {
             Some(v)
         };
     }
     let mut want_excluded: HashSet<i64> = HashSet::new();
-    let mut want_status: HashMap<i64, &'static str> = HashMap::new();
+    let mut want_status: HashMap<i64, RecordStatus> = HashMap::new();
     for v in &verdicts {
-        if v.verdict == "corrected"
+        if v.verdict == VerdictKind::Corrected
             && let Some(new) = v.new_record_row
         {
-            want_status.insert(new, "superseded");
+            want_status.insert(new, RecordStatus::Superseded);
         }
     }
     for v in active.values().flatten() {
-        match v.verdict.as_str() {
-            "excluded" => {
+        match v.verdict {
+            VerdictKind::Excluded => {
                 if let Some(r) = v.record_row {
                     want_excluded.insert(r);
                 }
             }
-            "corrected" => {
+            VerdictKind::Corrected => {
                 if let Some(r) = v.record_row {
-                    want_status.insert(r, "superseded");
+                    want_status.insert(r, RecordStatus::Superseded);
                 }
                 if let Some(n) = v.new_record_row {
-                    want_status.insert(n, "current");
+                    want_status.insert(n, RecordStatus::Current);
                 }
             }
-            _ => {}
+            VerdictKind::Confirmed | VerdictKind::Reverted => {}
         }
     }
     for (row, status, excluded, version) in store.record_flags()? {
@@ -214,25 +215,31 @@ pub fn verify(store: &Store) -> Result<VerifyReport, StoreError> {
             );
         }
         let ok = match want_status.get(&row) {
-            Some(w) => status == *w,
-            None => status == "current" || (status == "proposed" && version > 1),
+            Some(w) => status == w.as_str(),
+            None => {
+                status == RecordStatus::Current.as_str()
+                    || (status == RecordStatus::Proposed.as_str() && version > 1)
+            }
         };
         if !ok {
             rep.problem(
                 format!("records {row}"),
                 format!(
                     "status `{status}` is not what the verdict log gives ({})",
-                    want_status.get(&row).copied().unwrap_or("current")
+                    want_status
+                        .get(&row)
+                        .copied()
+                        .unwrap_or(RecordStatus::Current)
                 ),
             );
         }
     }
     for (id, status) in store.finding_statuses()? {
         let want = match active.get(&id) {
-            Some(Some(v)) => v.verdict.as_str(),
-            _ => "open",
+            Some(Some(v)) => v.verdict.finding_status(),
+            _ => FindingStatus::Open,
         };
-        if status != want {
+        if status != want.as_str() {
             rep.problem(
                 format!("findings {id}"),
                 format!("status `{status}`, but the verdict log gives `{want}`"),
@@ -412,15 +419,15 @@ fn apply_verdict(
             set.remove(&r);
         }
     };
-    match v.verdict.as_str() {
-        "excluded" => undo(v.record_row, set),
-        "corrected" => {
+    match v.verdict {
+        VerdictKind::Excluded => undo(v.record_row, set),
+        VerdictKind::Corrected => {
             undo(v.record_row, set);
             add(v.new_record_row, set, rep);
         }
-        "reverted" => match v.reverts.and_then(|w| verdicts.get(&w)) {
-            Some(w) if w.verdict == "excluded" => add(w.record_row, set, rep),
-            Some(w) if w.verdict == "corrected" => {
+        VerdictKind::Reverted => match v.reverts.and_then(|w| verdicts.get(&w)) {
+            Some(w) if w.verdict == VerdictKind::Excluded => add(w.record_row, set, rep),
+            Some(w) if w.verdict == VerdictKind::Corrected => {
                 undo(w.new_record_row, set);
                 add(w.record_row, set, rep);
             }
@@ -430,7 +437,7 @@ fn apply_verdict(
                 "reverts a verdict that is not stored",
             ),
         },
-        _ => {}
+        VerdictKind::Confirmed => {}
     }
 }
 

@@ -236,7 +236,7 @@ fn findings_list(out: &mut String, o: &Overview) {
             "<tr id=\"finding-{id}\"><td class=\"num\">{id}</td><td class=\"when\">{at}</td><td class=\"sev-{sev}\">{sev}</td><td class=\"text\">{about}</td><td>{kinds}</td><td class=\"text\">{records}</td><td class=\"text\">{summary}</td></tr>",
             id = f.id,
             at = html(&f.created_at),
-            sev = html(&f.severity),
+            sev = html(f.severity.as_str()),
             about = match (&f.series, &f.file) {
                 (Some(s), _) => format!("<span class=\"key\">{}</span>", html(s)),
                 (None, Some(file)) => format!("file {}", html(file)),
@@ -380,7 +380,7 @@ mod tests {
                 series: Some(evil.into()),
                 file: Some("b.csv".into()),
                 kinds: vec!["influential".into(), "outlier".into()],
-                severity: "alert".into(),
+                severity: crate::findings::Severity::Alert,
                 record_ids: vec!["<b>R-1</b>".into()],
                 summary: "\"quoted\" & <i>odd</i>".into(),
             }],

@@ -46,27 +46,7 @@ const FIELD_CHARS: usize = 200;
 /// How long a free-text sentence (advice, policy) may be.
 const SENTENCE_CHARS: usize = 2000;
 
-/// How urgent a finding is, mildest first.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
-pub enum Severity {
-    /// Worth a look when convenient.
-    Notice,
-    /// Check before the trend is used.
-    Warning,
-    /// Check now: the record changes what the trend says.
-    Alert,
-}
-
-impl Severity {
-    /// The lower-case word used in subjects and bodies.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Severity::Notice => "notice",
-            Severity::Warning => "warning",
-            Severity::Alert => "alert",
-        }
-    }
-}
+pub use crate::findings::Severity;
 
 /// What kind of thing was found.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]

@@ -11,7 +11,9 @@ use std::collections::{BTreeMap, HashMap, HashSet};
 use std::fmt::Write as _;
 
 use crate::stats::{LineFit, Moments, MomentsParts, Transform};
-use crate::store::{ReportFindingRow, ReportFitRow, ReportRecordRow, ReportVerdictRow};
+use crate::store::{
+    RecordStatus, ReportFindingRow, ReportFitRow, ReportRecordRow, ReportVerdictRow,
+};
 
 use super::band::{grid, mean_band};
 use super::data::{DetailFit, SeriesData, detail_fit, line_stats};
@@ -185,7 +187,7 @@ fn summary_page(
     generated_at: &str,
 ) {
     let open: i64 = glances.iter().map(|s| s.open_findings).sum::<i64>()
-        + loose.iter().filter(|f| f.status == "open").count() as i64;
+        + loose.iter().filter(|f| f.status.is_open()).count() as i64;
     out.push_str(
         "<header class=\"summary\">\n<p class=\"kicker\">slopewarden</p>\n<h1>Trend report</h1>\n",
     );
@@ -284,7 +286,11 @@ fn summary_page(
 /// Which records findings concern: record row → (record id, any open).
 fn flagged(s: &SeriesData) -> HashMap<i64, Flag> {
     let mut current: HashMap<&str, i64> = HashMap::new();
-    for r in s.records.iter().filter(|r| r.status == "current") {
+    for r in s
+        .records
+        .iter()
+        .filter(|r| r.status == RecordStatus::Current)
+    {
         current.insert(r.record_id.as_str(), r.row);
     }
     let mut map: HashMap<i64, Flag> = HashMap::new();
@@ -302,7 +308,7 @@ fn flagged(s: &SeriesData) -> HashMap<i64, Flag> {
             let Some(r) = s.records.iter().find(|r| r.row == row) else {
                 continue;
             };
-            let open = f.status == "open";
+            let open = f.status.is_open();
             map.entry(row)
                 .and_modify(|flag| flag.open |= open)
                 .or_insert(Flag {
@@ -327,7 +333,7 @@ fn window_rows(s: &SeriesData) -> Option<HashSet<i64>> {
     let eligible: Vec<(i64, f64)> = s
         .records
         .iter()
-        .filter(|r| r.status == "current" && r.in_fit && !r.excluded)
+        .filter(|r| r.status == RecordStatus::Current && r.in_fit && !r.excluded)
         .filter_map(|r| r.fit_x.map(|x| (r.row, x)))
         .collect();
     Some(
@@ -340,9 +346,9 @@ fn window_rows(s: &SeriesData) -> Option<HashSet<i64>> {
 }
 
 fn marker_of(r: &ReportRecordRow, window: Option<&HashSet<i64>>) -> Marker {
-    match r.status.as_str() {
-        "superseded" => Marker::Superseded,
-        "proposed" => Marker::Proposed,
+    match r.status {
+        RecordStatus::Superseded => Marker::Superseded,
+        RecordStatus::Proposed => Marker::Proposed,
         _ if r.excluded => Marker::Excluded,
         _ if r.in_fit && window.is_some_and(|w| !w.contains(&r.row)) => Marker::OutsideWindow,
         _ if r.in_fit && r.censored => Marker::InFitNonDetect,
@@ -391,8 +397,11 @@ pub fn series_section(out: &mut String, s: &SeriesData) {
     // Facts.
     let window = window_rows(s);
     let window = window.as_ref();
-    let current: Vec<&ReportRecordRow> =
-        s.records.iter().filter(|r| r.status == "current").collect();
+    let current: Vec<&ReportRecordRow> = s
+        .records
+        .iter()
+        .filter(|r| r.status == RecordStatus::Current)
+        .collect();
     let in_fit = current
         .iter()
         .filter(|r| matches!(marker_of(r, window), Marker::InFit | Marker::InFitNonDetect))
@@ -406,9 +415,13 @@ pub fn series_section(out: &mut String, s: &SeriesData) {
     let superseded = s
         .records
         .iter()
-        .filter(|r| r.status == "superseded")
+        .filter(|r| r.status == RecordStatus::Superseded)
         .count();
-    let proposed = s.records.iter().filter(|r| r.status == "proposed").count();
+    let proposed = s
+        .records
+        .iter()
+        .filter(|r| r.status == RecordStatus::Proposed)
+        .count();
     out.push_str("<dl class=\"facts\">\n");
     let _ = writeln!(out, "<dt>Unit of y</dt><dd>{}</dd>", html(unit));
     // What x is: as configured, else as read from its range.
@@ -648,8 +661,7 @@ fn trigger_text(f: &ReportFitRow) -> String {
         (Some(v), _) => format!(
             "after verdict {v}{}{}",
             f.trigger_verdict_kind
-                .as_deref()
-                .map_or(String::new(), |k| format!(" ({})", html(k))),
+                .map_or(String::new(), |k| format!(" ({})", html(k.as_str()))),
             f.trigger_finding
                 .map_or(String::new(), |g| format!(" on finding {g}"))
         ),
@@ -910,7 +922,6 @@ fn slope_history(out: &mut String, s: &SeriesData, slope_unit: &str) {
                     format!(
                         "verdict {v}{}",
                         f.trigger_verdict_kind
-                            .as_deref()
                             .map_or(String::new(), |k| format!(": {k}"))
                     )
                 }),
@@ -1045,8 +1056,8 @@ fn findings_table(out: &mut String, findings: &[ReportFindingRow], with_file: bo
             ),
             html(&f.summary),
             id = f.id,
-            sev = html(&f.severity),
-            status = html(&f.status),
+            sev = html(f.severity.as_str()),
+            status = html(f.status.as_str()),
         );
     }
     out.push_str("</tbody>\n</table>\n");

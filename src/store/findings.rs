@@ -3,7 +3,8 @@
 
 use rusqlite::{OptionalExtension, params};
 
-use super::{FileId, Result, SeriesRowId, Store, Tx, seal};
+use super::{FileId, FindingStatus, RecordStatus, Result, SeriesRowId, Store, Tx, seal};
+use crate::findings::Severity;
 
 /// A finding about to be stored.
 #[derive(Debug, Clone, PartialEq)]
@@ -20,8 +21,8 @@ pub struct NewFinding<'a> {
     pub record_ids: &'a [String],
     /// Kind names.
     pub kinds: &'a [String],
-    /// `notice`, `warning` or `alert`.
-    pub severity: &'a str,
+    /// How urgent.
+    pub severity: Severity,
     /// The fit version the finding was made on.
     pub fit_version: Option<i64>,
     /// The record's point on the fitted scale, kept out of judging later
@@ -44,10 +45,10 @@ pub struct FindingRow {
     pub record_ids: Vec<String>,
     /// Kind names.
     pub kinds: Vec<String>,
-    /// Severity.
-    pub severity: String,
-    /// `open` until a verdict.
-    pub status: String,
+    /// How urgent.
+    pub severity: Severity,
+    /// Open until a verdict.
+    pub status: FindingStatus,
     /// RFC 3339 UTC.
     pub created_at: String,
     /// The file that brought it, if any.
@@ -161,7 +162,7 @@ impl Tx<'_> {
             .put(&f.record_row)
             .put(&ids)
             .put(&kinds)
-            .put(f.severity)
+            .put(f.severity.as_str())
             .put(&f.fit_version)
             .put(&f.fit_point.map(|p| p.0))
             .put(&f.fit_point.map(|p| p.1))
@@ -312,8 +313,8 @@ fn finding_row(r: &rusqlite::Row<'_>) -> rusqlite::Result<FindingRow> {
 pub struct RecordVersion {
     /// Version number (1 as delivered first).
     pub version: i64,
-    /// `current`, `proposed` or `superseded`.
-    pub status: String,
+    /// Where this version stands.
+    pub status: RecordStatus,
     /// Series key.
     pub series: String,
     /// What x measures and its unit, when the series' configuration says.
@@ -716,7 +717,7 @@ mod tests {
                     record_row: None,
                     record_ids: &ids,
                     kinds: &kinds,
-                    severity: "alert",
+                    severity: Severity::Alert,
                     fit_version: Some(3),
                     fit_point: Some(point),
                     summary: "a summary",

@@ -89,8 +89,8 @@ pub struct OpenFinding {
     pub file: Option<String>,
     /// Kind names.
     pub kinds: Vec<String>,
-    /// `notice`, `warning` or `alert`.
-    pub severity: String,
+    /// How urgent.
+    pub severity: crate::findings::Severity,
     /// Record ids concerned.
     pub record_ids: Vec<String>,
     /// One line for lists.

@@ -41,6 +41,7 @@ mod metrics;
 mod report;
 mod rows;
 pub mod seal;
+mod states;
 mod verdicts;
 
 use std::collections::HashSet;
@@ -67,6 +68,7 @@ pub use report::{
 };
 use rows::*;
 pub use rows::{FitBatch, IdCounters, RecordBatch};
+pub use states::{FileOutcome, FindingStatus, RecordStatus, VerdictKind};
 pub use verdicts::{NewVerdict, RecordState, ReviewTarget, SeriesAxis, VerdictRow};
 
 /// The file stored with this content, if any.
@@ -186,7 +188,7 @@ pub struct FileRow {
     /// When it arrived.
     pub arrived_at: String,
     /// What happened to it.
-    pub outcome: String,
+    pub outcome: FileOutcome,
 }
 
 /// A file about to be recorded.
@@ -435,8 +437,8 @@ pub struct VerdictTrigger {
     pub id: i64,
     /// The finding it closed or reopened.
     pub finding: i64,
-    /// `confirmed`, `corrected`, `excluded` or `reverted`.
-    pub verdict: String,
+    /// What it said.
+    pub verdict: VerdictKind,
 }
 
 /// One series in `status`.
@@ -1236,7 +1238,7 @@ impl Tx<'_> {
             id,
             index: 0,
             version,
-            status: "proposed",
+            status: RecordStatus::Proposed,
             series: series.0,
             file: file.0,
             fit_point: None,
@@ -1545,27 +1547,6 @@ impl Drop for Tx<'_> {
         if !self.tx.is_autocommit() {
             // Nothing of a file's transaction is kept unless it commits.
             let _ = self.tx.execute_batch("ROLLBACK");
-        }
-    }
-}
-
-/// What happened to a file.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum FileOutcome {
-    /// Every row stored (or already stored).
-    Ingested,
-    /// Some rows refused and quarantined, the rest stored.
-    Partial,
-    /// The whole file set aside.
-    Quarantined,
-}
-
-impl FileOutcome {
-    fn as_str(self) -> &'static str {
-        match self {
-            FileOutcome::Ingested => "ingested",
-            FileOutcome::Partial => "partial",
-            FileOutcome::Quarantined => "quarantined",
         }
     }
 }
@@ -1908,7 +1889,7 @@ mod tests {
                     id,
                     index: i,
                     version: 1,
-                    status: "current",
+                    status: RecordStatus::Current,
                     series: row.id.0,
                     file: file.0,
                     fit_point: Some((0.0, -0.0)),

@@ -4,7 +4,8 @@
 
 use rusqlite::params;
 
-use super::{Result, SeriesRowId, Store};
+use super::{FindingStatus, RecordStatus, Result, SeriesRowId, Store, VerdictKind};
+use crate::findings::Severity;
 
 /// A series as the report lists it.
 #[derive(Debug, Clone, PartialEq)]
@@ -49,8 +50,8 @@ pub struct ReportFitRow {
     pub trigger_file: Option<String>,
     /// The verdict that triggered it.
     pub trigger_verdict: Option<i64>,
-    /// That verdict's kind (`confirmed`, `corrected`, `excluded`, `reverted`).
-    pub trigger_verdict_kind: Option<String>,
+    /// What that verdict said.
+    pub trigger_verdict_kind: Option<VerdictKind>,
     /// The finding that verdict was on.
     pub trigger_finding: Option<i64>,
     /// The analysis-window change that triggered it: its id and source
@@ -130,8 +131,8 @@ pub struct ReportRecordRow {
     pub record_id: String,
     /// Version number.
     pub version: i64,
-    /// `current`, `proposed` or `superseded`.
-    pub status: String,
+    /// Where this version stands.
+    pub status: RecordStatus,
     /// x as recorded.
     pub x: f64,
     /// y as recorded (the limit of a non-detect).
@@ -189,10 +190,10 @@ pub struct ReportFindingRow {
     pub record_ids: Vec<String>,
     /// Kind names.
     pub kinds: Vec<String>,
-    /// `notice`, `warning` or `alert`.
-    pub severity: String,
-    /// `open`, `confirmed`, `corrected`, `excluded` or `closed`.
-    pub status: String,
+    /// How urgent.
+    pub severity: Severity,
+    /// Where it stands.
+    pub status: FindingStatus,
     /// The fit version stored with it.
     pub fit_version: Option<i64>,
     /// One line.
@@ -220,8 +221,8 @@ pub struct ReportVerdictRow {
     pub series: Option<SeriesRowId>,
     /// The finding's series key, if any.
     pub series_key: Option<String>,
-    /// `confirmed`, `corrected`, `excluded` or `reverted`.
-    pub verdict: String,
+    /// What it said.
+    pub verdict: VerdictKind,
     /// Record id of the record concerned.
     pub record_id: Option<String>,
     /// Corrected: version number of the new record version.

@@ -141,7 +141,7 @@ pub(super) struct PendingRecord {
     pub(super) id: i64,
     pub(super) index: usize,
     pub(super) version: i64,
-    pub(super) status: &'static str,
+    pub(super) status: RecordStatus,
     pub(super) series: i64,
     pub(super) file: i64,
     pub(super) fit_point: Option<(f64, f64)>,
@@ -311,7 +311,7 @@ impl RecordBatch {
             id,
             index,
             version: 1,
-            status: "current",
+            status: RecordStatus::Current,
             series: series.0,
             file: file.0,
             fit_point: placement.fit_point,
@@ -556,7 +556,7 @@ pub(super) fn record_columns<'a>(r: &'a Record, row: &'a PendingRecord, s: &mut 
     s.put(row.id, Both);
     s.put(&r.record_id, Both);
     s.put(row.version, Both);
-    s.put(row.status, Insert);
+    s.put(row.status.as_str(), Insert);
     s.put(row.series, Both);
     s.put(r.x, Both);
     s.put(r.y.number(), Both);

@@ -4,7 +4,7 @@
 
 use rusqlite::{OptionalExtension, params};
 
-use super::{Result, SeriesRow, Store, Tx, series_row};
+use super::{FindingStatus, RecordStatus, Result, SeriesRow, Store, Tx, VerdictKind, series_row};
 
 /// A finding as a verdict needs it.
 #[derive(Debug, Clone, PartialEq)]
@@ -15,8 +15,8 @@ pub struct ReviewTarget {
     pub series: Option<String>,
     /// The record row it concerns, if any.
     pub record_row: Option<i64>,
-    /// `open`, `confirmed`, `corrected`, `excluded` or `closed`.
-    pub status: String,
+    /// Where the finding stands.
+    pub status: FindingStatus,
     /// One line for lists.
     pub summary: String,
 }
@@ -30,8 +30,8 @@ pub struct RecordState {
     pub record_id: String,
     /// Version number.
     pub version: i64,
-    /// `current`, `proposed` or `superseded`.
-    pub status: String,
+    /// Where this version stands.
+    pub status: RecordStatus,
     /// x as stored.
     pub x: f64,
     /// y as stored (the limit of a non-detect).
@@ -53,8 +53,8 @@ pub struct VerdictRow {
     pub id: i64,
     /// The finding.
     pub finding: i64,
-    /// `confirmed`, `corrected`, `excluded` or `reverted`.
-    pub verdict: String,
+    /// What it said.
+    pub verdict: VerdictKind,
     /// The record judged.
     pub record_row: Option<i64>,
     /// The corrected version stored.
@@ -90,8 +90,8 @@ pub struct SeriesAxis {
 pub struct NewVerdict<'a> {
     /// The finding.
     pub finding: i64,
-    /// `confirmed`, `corrected`, `excluded` or `reverted`.
-    pub verdict: &'a str,
+    /// What it says.
+    pub verdict: VerdictKind,
     /// The record judged.
     pub record_row: Option<i64>,
     /// The corrected version stored.
@@ -302,7 +302,7 @@ impl Tx<'_> {
     }
 
     /// Sets a record row's status (`current` or `superseded`).
-    pub fn set_record_status(&self, row: i64, status: &str) -> Result<()> {
+    pub fn set_record_status(&self, row: i64, status: RecordStatus) -> Result<()> {
         self.tx
             .prepare_cached("UPDATE records SET status = ?2 WHERE id = ?1")
             .and_then(|mut s| s.execute(params![row, status]))
@@ -320,7 +320,7 @@ impl Tx<'_> {
     }
 
     /// Sets a finding's status.
-    pub fn set_finding_status(&self, finding: i64, status: &str) -> Result<()> {
+    pub fn set_finding_status(&self, finding: i64, status: FindingStatus) -> Result<()> {
         self.tx
             .prepare_cached("UPDATE findings SET status = ?2 WHERE id = ?1")
             .and_then(|mut s| s.execute(params![finding, status]))

@@ -165,7 +165,20 @@ pub fn verify(store: &Store) -> Result<VerifyReport, StoreError> {
     }
 
     // States that verdicts change.
-    let verdicts = store.verdicts(None)?;
+    let (verdicts, unknown) = store.verdicts_to_check()?;
+    for (id, word) in unknown {
+        rep.problem(
+            format!("verdicts {id}"),
+            format!(
+                "verdict `{word}` is none that slopewarden writes ({})",
+                VerdictKind::ALL
+                    .iter()
+                    .map(|v| v.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        );
+    }
     let by_id: HashMap<i64, &VerdictRow> = verdicts.iter().map(|v| (v.id, v)).collect();
     let mut active: BTreeMap<i64, Option<&VerdictRow>> = BTreeMap::new();
     for v in &verdicts {

@@ -477,6 +477,25 @@ fn tampering_with_any_row_through_sqlite3_is_caught_by_verify() {
         (format!("UPDATE findings SET status = 'open' WHERE id = {finding}"), "findings"),
         ("UPDATE verdicts SET note = 'never mind' WHERE id = 1".to_string(), "verdict 1"),
         ("UPDATE verdicts SET value = 50.07 WHERE id = 1".to_string(), "verdict 1"),
+        // Words no command writes, past the CHECK constraints: reported,
+        // not a failure to read the store.
+        (
+            "PRAGMA ignore_check_constraints = ON; UPDATE verdicts SET verdict = 'overruled' WHERE id = 1"
+                .to_string(),
+            "verdicts 1: verdict `overruled` is none that slopewarden writes",
+        ),
+        (
+            format!("PRAGMA ignore_check_constraints = ON; UPDATE records SET status = 'draft' WHERE id = {typo_row}"),
+            "status `draft`",
+        ),
+        (
+            format!("PRAGMA ignore_check_constraints = ON; UPDATE findings SET status = 'parked' WHERE id = {finding}"),
+            "status `parked`",
+        ),
+        (
+            format!("PRAGMA ignore_check_constraints = ON; UPDATE findings SET severity = 'urgent' WHERE id = {finding}"),
+            "finding",
+        ),
         ("UPDATE outbox SET subject = 'hello' WHERE id = 1".to_string(), "finding"),
         ("UPDATE source_files SET name = 'other.csv' WHERE id = 2".to_string(), "file 2"),
         ("UPDATE audit_log SET detail = detail || '.' WHERE id = 2".to_string(), "audit_log 2"),

@@ -4,7 +4,12 @@
 use rusqlite::params;
 
 use super::seal::{self, SealKind};
-use super::{FIT_CHAIN, RECORD_CHAIN, Result, Store};
+use super::verdicts::{VERDICT_COLUMNS, verdict_of};
+use super::{FIT_CHAIN, RECORD_CHAIN, Result, Store, VerdictKind, VerdictRow};
+
+/// A row whose state column holds a word no command writes: its id and
+/// the word.
+pub type UnknownWord = (i64, String);
 
 /// A fit row as verify replays it.
 #[derive(Debug, Clone, PartialEq)]
@@ -209,6 +214,45 @@ impl Store {
             .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))
             .map_err(self.wrap())?;
         rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
+    }
+
+    /// Every verdict, oldest first, as `verify` reads them: a row whose
+    /// verdict is not a word slopewarden writes (only a write that got
+    /// past the CHECK constraint can store one) comes apart as (id, word),
+    /// so that it is reported instead of failing the read.
+    pub fn verdicts_to_check(&self) -> Result<(Vec<VerdictRow>, Vec<UnknownWord>)> {
+        let words = VerdictKind::ALL
+            .iter()
+            .map(|v| format!("'{}'", v.as_str()))
+            .collect::<Vec<_>>()
+            .join(", ");
+        let mut known = self
+            .conn
+            .prepare(&format!(
+                "SELECT {VERDICT_COLUMNS} FROM verdicts WHERE verdict IN ({words}) ORDER BY id"
+            ))
+            .map_err(self.wrap())?;
+        let rows = known
+            .query_map([], verdict_of)
+            .and_then(|rows| rows.collect::<rusqlite::Result<Vec<_>>>())
+            .map_err(self.wrap())?;
+        let mut unknown = self
+            .conn
+            .prepare(&format!(
+                "SELECT id, CAST(verdict AS TEXT) FROM verdicts
+                 WHERE verdict IS NULL OR verdict NOT IN ({words}) ORDER BY id"
+            ))
+            .map_err(self.wrap())?;
+        let odd = unknown
+            .query_map([], |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get::<_, Option<String>>(1)?.unwrap_or_default(),
+                ))
+            })
+            .and_then(|rows| rows.collect::<rusqlite::Result<Vec<_>>>())
+            .map_err(self.wrap())?;
+        Ok((rows, odd))
     }
 
     /// (finding id, status) of every finding.

@@ -108,7 +108,7 @@ pub struct NewVerdict<'a> {
     pub at: &'a str,
 }
 
-fn verdict_of(r: &rusqlite::Row<'_>) -> rusqlite::Result<VerdictRow> {
+pub(super) fn verdict_of(r: &rusqlite::Row<'_>) -> rusqlite::Result<VerdictRow> {
     Ok(VerdictRow {
         id: r.get(0)?,
         finding: r.get(1)?,
@@ -123,7 +123,7 @@ fn verdict_of(r: &rusqlite::Row<'_>) -> rusqlite::Result<VerdictRow> {
     })
 }
 
-const VERDICT_COLUMNS: &str =
+pub(super) const VERDICT_COLUMNS: &str =
     "id, finding_id, verdict, record_row, new_record_row, value, reverts, note, by_whom, at";
 
 fn verdicts_of(

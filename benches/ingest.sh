@@ -52,9 +52,13 @@ cargo build --release --quiet
 cargo bench --bench bare_insert --no-run --quiet 2>/dev/null || true
 bare_bin=$(ls -t target/release/deps/bare_insert-* | grep -v '\.d$' | head -1)
 
-# One bare insert and one slopewarden ingest, each into a fresh database.
+# One bare insert and one slopewarden ingest, each into a fresh database,
+# each after a sync: the kernel's writeback of what ran before (the
+# workload, the shapes above, the other side's database) would otherwise
+# compete with the run's own fsyncs.
 bare_run() {
   rm -f "$work"/bare.sqlite3*
+  sync
   local t0 out
   t0=$(cpu_line)
   out=$("$bare_bin" "$work/w/inbox" "$work/bare.sqlite3")
@@ -96,6 +100,7 @@ keep_files = true
 TOML
 sw_run() {
   rm -f "$work"/sw.sqlite3*
+  sync
   local t0
   t0=$(cpu_line)
   /usr/bin/time -v target/release/slopewarden ingest --config "$work/sw.toml" "$work/w/inbox" \

@@ -338,8 +338,11 @@ fn send_until_stopped(
         }
         sleep_unless_stopped(SEND_EVERY, stop);
         if stop.load(Ordering::SeqCst) {
-            // One last pass so that findings of the last file go out.
-            let _ = crate::outbox::send_due(config, store, mailer, SystemTime::now());
+            // One last pass so that findings of the last file go out;
+            // what it cannot send stays pending for the next start.
+            if let Err(e) = crate::outbox::send_due(config, store, mailer, SystemTime::now()) {
+                error!(error = %e, "last outbox pass failed; pending messages go out at the next start");
+            }
             return;
         }
     }

@@ -394,9 +394,9 @@ fn a_verdict_round_trip_refits_to_exactly_the_engine_fit_of_the_remaining_record
     assert!(out.contains("intact"), "{out}");
 }
 
-/// Copies the store (with its WAL) into a fresh folder with a config that
-/// points at it, applies `sql` with Debian's sqlite3 shell and runs verify.
-fn tampered(site: &Site, sql: &str) -> (Option<i32>, String) {
+/// A copy of the site's store changed by `sql` through Debian's sqlite3
+/// shell, and a configuration naming it.
+fn tampered_copy(site: &Site, sql: &str) -> (tempfile::TempDir, PathBuf) {
     let dir = tempfile::tempdir().unwrap();
     let db = dir.path().join("store.sqlite3");
     std::fs::copy(site.db_path(), &db).unwrap();
@@ -420,12 +420,45 @@ fn tampered(site: &Site, sql: &str) -> (Option<i32>, String) {
         "{sql}: {}",
         String::from_utf8_lossy(&shell.stderr)
     );
+    (dir, config)
+}
+
+/// `verify` on a copy of the site's store changed by `sql`: its exit code
+/// and report.
+fn tampered(site: &Site, sql: &str) -> (Option<i32>, String) {
+    let (_dir, config) = tampered_copy(site, sql);
     let out = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
         .args(["verify", "--config"])
         .arg(&config)
         .output()
         .unwrap();
     (out.status.code(), String::from_utf8(out.stdout).unwrap())
+}
+
+/// A state word no command writes, stored past the CHECK constraint, stops
+/// a reading command with a database error that says what to run, rather
+/// than a bare conversion error.
+#[test]
+fn a_command_meeting_a_word_no_command_writes_points_to_verify() {
+    let (site, finding) = site_with_typo();
+    let (_dir, config) = tampered_copy(
+        &site,
+        &format!(
+            "PRAGMA ignore_check_constraints = ON; UPDATE findings SET severity = 'urgent' WHERE id = {finding}"
+        ),
+    );
+    let out = Command::new(env!("CARGO_BIN_EXE_slopewarden"))
+        .args(["findings", "--config"])
+        .arg(&config)
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(4), "{err}");
+    assert!(
+        err.contains("not a Severity: `urgent`")
+            && err.contains("changed outside slopewarden: run `slopewarden verify`"),
+        "{err}"
+    );
 }
 
 #[test]

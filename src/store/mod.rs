@@ -113,7 +113,7 @@ const MIGRATIONS: &[(&str, &str)] = &[
 #[derive(Debug, Error)]
 pub enum StoreError {
     /// SQLite reported an error.
-    #[error("database {path}: {source}", path = path.display())]
+    #[error("database {path}: {}", sqlite_detail(source), path = path.display())]
     Sqlite {
         /// The database file.
         path: PathBuf,
@@ -169,6 +169,20 @@ pub enum StoreError {
 }
 
 type Result<T> = std::result::Result<T, StoreError>;
+
+/// SQLite's error, and for a stored value no command writes (a state word
+/// unknown to this build, text where a number belongs) what to do: only a
+/// change made outside slopewarden leaves one.
+fn sqlite_detail(e: &rusqlite::Error) -> String {
+    match e {
+        rusqlite::Error::FromSqlConversionFailure(..) | rusqlite::Error::InvalidColumnType(..) => {
+            format!(
+                "{e}; the database holds a value slopewarden does not write, so it was changed outside slopewarden: run `slopewarden verify`"
+            )
+        }
+        _ => e.to_string(),
+    }
+}
 
 /// Row id of a source file.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]

@@ -222,42 +222,31 @@ mod tests {
         );
     }
 
+    /// Each of `all` is bound as its word and read back as itself.
+    fn round_trip<T>(
+        conn: &rusqlite::Connection,
+        all: &[T],
+        word: fn(T) -> &'static str,
+    ) -> rusqlite::Result<()>
+    where
+        T: ToSql + FromSql + Copy + PartialEq + std::fmt::Debug,
+    {
+        for &v in all {
+            let text: String = conn.query_row("SELECT ?1", [v], |r| r.get(0))?;
+            assert_eq!(text, word(v));
+            assert_eq!(conn.query_row("SELECT ?1", [v], |r| r.get::<_, T>(0))?, v);
+        }
+        Ok(())
+    }
+
     #[test]
     fn each_state_is_read_back_from_sqlite_as_written() -> rusqlite::Result<()> {
         let conn = rusqlite::Connection::open_in_memory()?;
-        for &o in FileOutcome::ALL {
-            assert_eq!(
-                conn.query_row("SELECT ?1", [o], |r| r.get::<_, FileOutcome>(0))?,
-                o
-            );
-        }
-        for &s in RecordStatus::ALL {
-            assert_eq!(
-                conn.query_row("SELECT ?1", [s], |r| r.get::<_, RecordStatus>(0))?,
-                s
-            );
-        }
-        for &s in FindingStatus::ALL {
-            assert_eq!(
-                conn.query_row("SELECT ?1", [s], |r| r.get::<_, FindingStatus>(0))?,
-                s
-            );
-        }
-        for &v in VerdictKind::ALL {
-            assert_eq!(
-                conn.query_row("SELECT ?1", [v], |r| r.get::<_, VerdictKind>(0))?,
-                v
-            );
-        }
-        for &s in Severity::ALL {
-            let text: String = conn.query_row("SELECT ?1", [s], |r| r.get(0))?;
-            assert_eq!(text, s.as_str());
-            assert_eq!(
-                conn.query_row("SELECT ?1", [s], |r| r.get::<_, Severity>(0))?,
-                s
-            );
-        }
-        Ok(())
+        round_trip(&conn, FileOutcome::ALL, FileOutcome::as_str)?;
+        round_trip(&conn, RecordStatus::ALL, RecordStatus::as_str)?;
+        round_trip(&conn, FindingStatus::ALL, FindingStatus::as_str)?;
+        round_trip(&conn, VerdictKind::ALL, VerdictKind::as_str)?;
+        round_trip(&conn, Severity::ALL, Severity::as_str)
     }
 
     #[test]

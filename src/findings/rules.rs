@@ -122,7 +122,10 @@ pub struct Measured {
     pub measure: &'static str,
     /// Its value.
     pub value: f64,
-    /// The cutoff.
+    /// The cutoff. NaN in the judgement of a record that crosses nothing
+    /// where the measure was decided by a neighbouring cutoff (see
+    /// [`CutoffCache`]); a flagged record's are all filled in
+    /// ([`exact_cutoffs`]).
     pub cutoff: f64,
     /// Whether the cutoff was crossed.
     pub crossed: bool,
@@ -226,10 +229,88 @@ pub fn judge_record(
 /// a quantile costs microseconds, and a backlog judges millions of
 /// records against a few thousand distinct values. Memoisation only; the
 /// results are those of [`judge_record`].
+///
+/// A long series meets a new df with every record, so past [`GRID_FROM`]
+/// a record's side of a cutoff is settled, where it can be, by the cutoffs
+/// at the two grid points around its df: both cutoffs fall as the df grow
+/// (t(1 − α/2k, df) towards the normal quantile, the median of F(2, n − 2)
+/// towards ln 2), so one at most as large as the record's measure, or one
+/// at least as small, decides it. Only a measure between the two, and a
+/// record that is flagged (whose every cutoff is shown), needs the exact
+/// value at its own df. Decisions and shown values are those of the exact
+/// computation: [`BRACKET_MARGIN`] keeps round-off out of the comparison.
 #[derive(Debug, Default, Clone)]
 pub struct CutoffCache {
     outlier_t: std::collections::HashMap<(usize, usize, u64), f64>,
     median_f: std::collections::HashMap<usize, f64>,
+}
+
+/// Below this many degrees of freedom (or points), cutoffs are computed at
+/// each value: series that short are many, and share them.
+const GRID_FROM: usize = 256;
+
+/// The relative margin by which a measure must clear a neighbouring
+/// cutoff to be decided by it (the quantiles are accurate to far better).
+const BRACKET_MARGIN: f64 = 1e-9;
+
+/// The grid points around `v` (the largest at most `v`, the smallest
+/// above it), spaced by the power of two nearest `v / GRID_FROM` from
+/// below: about 256 per doubling. `None` when `v` is below the grid or on
+/// it (its own value is then the one to compute and keep).
+fn grid_around(v: usize) -> Option<(usize, usize)> {
+    if v < 2 * GRID_FROM {
+        return None;
+    }
+    let step = 1usize << (v / GRID_FROM).ilog2();
+    let low = v - v % step;
+    (low != v).then_some((low, low + step))
+}
+
+/// Whether `value` exceeds `cutoff(at)`, where `cutoff` falls as `at`
+/// grows, asked of the grid points around `at` first (see [`CutoffCache`]).
+fn beyond_falling(value: f64, at: usize, cutoff: &mut dyn FnMut(usize) -> f64) -> bool {
+    if let Some((low, high)) = grid_around(at) {
+        if value <= cutoff(high) * (1.0 - BRACKET_MARGIN) {
+            return false;
+        }
+        if value > cutoff(low) * (1.0 + BRACKET_MARGIN) {
+            return true;
+        }
+    }
+    value > cutoff(at)
+}
+
+impl CutoffCache {
+    /// t(1 − alpha/2k, df), memoised.
+    fn outlier_t(&mut self, df: usize, k: usize, alpha: f64) -> f64 {
+        *self
+            .outlier_t
+            .entry((df, k, alpha.to_bits()))
+            .or_insert_with(|| t_quantile(1.0 - alpha / (2.0 * k as f64), df as f64))
+    }
+
+    /// [`CutoffCache::outlier_t`] when computed already, else NaN.
+    fn known_outlier_t(&self, df: usize, k: usize, alpha: f64) -> f64 {
+        self.outlier_t
+            .get(&(df, k, alpha.to_bits()))
+            .copied()
+            .unwrap_or(f64::NAN)
+    }
+
+    /// [`CutoffCache::median_f`] when computed already, else NaN.
+    fn known_median_f(&self, n: usize) -> f64 {
+        self.median_f.get(&n).copied().unwrap_or(f64::NAN)
+    }
+
+    /// The median of F(p, n − p), memoised.
+    fn median_f(&mut self, n: usize) -> f64 {
+        *self.median_f.entry(n).or_insert_with(|| {
+            let (pf, nf) = (P as f64, n as f64);
+            FisherSnedecor::new(pf, nf - pf)
+                .map(|f| f.inverse_cdf(0.5))
+                .unwrap_or(f64::INFINITY)
+        })
+    }
 }
 
 /// The fewest points the fit a record is judged against may have for the
@@ -311,19 +392,25 @@ pub fn outlier_measure(
         return None;
     }
     let kk = k.max(1);
+    let alpha = t.outlier_alpha;
     // |t| beyond the Bonferroni critical value t(1 − alpha/2k, df): the
     // very cutoff the finding shows, memoised per (df, k), so a backlog
-    // pays one quantile per distinct pair instead of one per record.
-    let cutoff = *cache
-        .outlier_t
-        .entry((pred.df, kk, t.outlier_alpha.to_bits()))
-        .or_insert_with(|| t_quantile(1.0 - t.outlier_alpha / (2.0 * kk as f64), pred.df as f64));
+    // pays one quantile per distinct pair instead of one per record, and
+    // past the grid's start mostly decided by its neighbours.
+    let crossed = beyond_falling(tv.abs(), pred.df, &mut |df| cache.outlier_t(df, kk, alpha));
+    // Computed for a flagged record; else known already, or left for
+    // `exact_cutoffs` (NaN) when the grid decided.
+    let cutoff = if crossed {
+        cache.outlier_t(pred.df, kk, alpha)
+    } else {
+        cache.known_outlier_t(pred.df, kk, alpha)
+    };
     Some(Measured {
         kind: "outlier",
         measure: "prediction t (externally studentized residual)",
         value: tv,
         cutoff,
-        crossed: tv.abs() > cutoff,
+        crossed,
         source: CutoffSource::Outlier {
             alpha: t.outlier_alpha,
             df: pred.df,
@@ -403,18 +490,19 @@ pub fn judge_record_with(
     // Influence.
     if let Some(inf) = judged.influence.as_ref() {
         if let Some(d) = inf.cooks_distance() {
-            let (cut, source) = match t.cooks {
-                CooksRule::MedianF => (
-                    *cache.median_f.entry(n).or_insert_with(|| {
-                        FisherSnedecor::new(pf, nf - pf)
-                            .map(|f| f.inverse_cdf(0.5))
-                            .unwrap_or(f64::INFINITY)
-                    }),
-                    "median of F(p, n-p) (Cook 1977)",
-                ),
-                CooksRule::FourOverN => (4.0 / nf, "4/n (Bollen & Jackman 1990)"),
+            let (cut, crossed, source) = match t.cooks {
+                CooksRule::MedianF => {
+                    let crossed = beyond_falling(d, n, &mut |n| cache.median_f(n));
+                    // As for the outlier test's cutoff.
+                    let cut = if crossed {
+                        cache.median_f(n)
+                    } else {
+                        cache.known_median_f(n)
+                    };
+                    (cut, crossed, "median of F(p, n-p) (Cook 1977)")
+                }
+                CooksRule::FourOverN => (4.0 / nf, d > 4.0 / nf, "4/n (Bollen & Jackman 1990)"),
             };
-            let crossed = d > cut;
             if crossed {
                 kinds.push(RecordKind::Influential);
             }
@@ -457,6 +545,9 @@ pub fn judge_record_with(
         measures.retain(|m| m.kind == "outlier");
     }
     kinds.sort();
+    if !kinds.is_empty() {
+        exact_cutoffs(&mut measures, n, cache);
+    }
     Some(RecordJudgement {
         kinds,
         measures,
@@ -464,6 +555,21 @@ pub fn judge_record_with(
         expected_leverage,
         n,
     })
+}
+
+/// Fills in the cutoffs a judgement left out while deciding (NaN: the
+/// measure stayed below a neighbouring cutoff), for a record that is
+/// flagged and shows every measure with its cutoff; `n` counts the judged
+/// fit's points with the record ([`RecordJudgement::n`]). A judgement that
+/// becomes flagged later (by the ln(y) screen) needs it called again.
+pub fn exact_cutoffs(measures: &mut [Measured], n: usize, cache: &mut CutoffCache) {
+    for m in measures.iter_mut().filter(|m| m.cutoff.is_nan()) {
+        m.cutoff = match m.source {
+            CutoffSource::Outlier { alpha, df, k } => cache.outlier_t(df, k, alpha),
+            // The only other cutoff left out: the median of F(p, n - p).
+            _ => cache.median_f(n),
+        };
+    }
 }
 
 /// A change in the trend reported by [`judge_trend`].
@@ -701,6 +807,95 @@ mod tests {
             ln_scale_advantage(&Moments::from_points(&x, &y), &three),
             None
         );
+    }
+
+    /// The grid of cutoffs: none below 512, then about 256 points per
+    /// doubling, a power of two apart, around every value not on it.
+    #[test]
+    fn the_cutoff_grid_brackets_each_value_from_512_on() {
+        assert!((0..512).all(|v| grid_around(v).is_none()));
+        for v in [513usize, 701, 1023, 1025, 4097, 100_003, 10_000_001] {
+            let (low, high) = grid_around(v).unwrap();
+            let step = high - low;
+            assert!(low < v && v < high, "{v}: {low}..{high}");
+            assert!(step.is_power_of_two(), "{v}: {step}");
+            assert!(
+                step <= v / GRID_FROM && 2 * step > v / GRID_FROM,
+                "{v}: {step}"
+            );
+        }
+        assert_eq!(grid_around(1024), None);
+        assert_eq!(grid_around(100_000 - 100_000 % 256), None);
+    }
+
+    /// Deciding from the cutoffs at the neighbouring grid points gives the
+    /// exact decision (the t quantile and the median of F computed at the
+    /// record's own df or n) on both sides of the cutoff, within round-off
+    /// of it, and at it, from short series to a million points.
+    #[test]
+    fn decisions_from_neighbouring_cutoffs_are_the_exact_ones() {
+        let mut cache = CutoffCache::default();
+        let offsets = [1e-3, 1e-6, 1e-9, 1e-12, 0.0, -1e-12, -1e-9, -1e-6, -1e-3];
+        let alpha = 0.001;
+        for df in (3..4_000).step_by(37).chain([99_999, 100_003, 1_000_001]) {
+            for k in [1usize, 7, 1_000] {
+                let exact = t_quantile(1.0 - alpha / (2.0 * k as f64), df as f64);
+                for f in offsets {
+                    let t = exact * (1.0 + f);
+                    let got = beyond_falling(t, df, &mut |d| cache.outlier_t(d, k, alpha));
+                    assert_eq!(got, t > exact, "df {df}, k {k}, t {t}, cutoff {exact}");
+                }
+            }
+        }
+        for n in (5..5_000).step_by(41).chain([100_002, 1_000_003]) {
+            let exact = FisherSnedecor::new(P as f64, (n - P) as f64)
+                .unwrap()
+                .inverse_cdf(0.5);
+            for f in offsets {
+                let d = exact * (1.0 + f);
+                let got = beyond_falling(d, n, &mut |m| cache.median_f(m));
+                assert_eq!(got, d > exact, "n {n}, D {d}, cutoff {exact}");
+            }
+        }
+    }
+
+    /// A long series (past the grid's start) flagged for leverage alone
+    /// shows every measure with its exact cutoff, the outlier test's and
+    /// Cook's among them, though neither was needed to flag it; a routine
+    /// record on the same series crosses nothing.
+    #[test]
+    fn a_flagged_record_of_a_long_series_shows_every_cutoff() {
+        let pts = quarterly(2_000);
+        let last = pts[pts.len() - 1].0;
+        let line = {
+            let mut s = SeriesState::new();
+            for &(x, y) in &pts {
+                s.add(x, y).unwrap();
+            }
+            LineFit::from_moments(s.moments(), 0.95).unwrap()
+        };
+        // Four hundred years beyond a range of five hundred (quarterly
+        // from 2010), on the fitted line.
+        let far = (last + 400.0, line.predict(last + 400.0));
+        let j = judge(&pts, far);
+        assert!(j.kinds.contains(&RecordKind::HighLeverage), "{j:?}");
+        assert!(!j.kinds.contains(&RecordKind::Outlier), "{j:?}");
+        // The prediction t of a newcomer to n points has n - 2 df.
+        let df = pts.len() - 2;
+        let outlier = j.measures.iter().find(|m| m.kind == "outlier").unwrap();
+        assert_eq!(outlier.cutoff, t_quantile(1.0 - 0.001 / 2.0, df as f64));
+        let cooks = j
+            .measures
+            .iter()
+            .find(|m| m.measure == "Cook's distance")
+            .unwrap();
+        let median = FisherSnedecor::new(2.0, (pts.len() + 1 - 2) as f64)
+            .unwrap()
+            .inverse_cdf(0.5);
+        assert_eq!(cooks.cutoff, median);
+        assert!(j.measures.iter().all(|m| m.cutoff.is_finite()), "{j:?}");
+        let routine = judge(&pts, (last + 0.25, line.predict(last + 0.25)));
+        assert!(routine.kinds.is_empty(), "{routine:?}");
     }
 
     /// Quarterly series with a small deterministic wiggle (invented).

@@ -43,8 +43,8 @@ use crate::clock;
 use crate::config::{BadRows, Config, NonDetectPolicy, SeriesSettings};
 use crate::findings::causes::Candidate;
 use crate::findings::rules::{
-    CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, judge_record_with,
-    judge_trend, ln_scale_ruled_out, outlier_measure,
+    CutoffCache, Measured, RecordJudgement, RecordKind, Span, TrendChange, exact_cutoffs,
+    judge_record_with, judge_trend, ln_scale_ruled_out, outlier_measure,
 };
 use crate::inbox::{self, InboxError, ReadyFile};
 use crate::raise;

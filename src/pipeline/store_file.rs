@@ -918,6 +918,8 @@ fn judge_arrival(
     {
         j.kinds.push(RecordKind::Outlier);
         j.kinds.sort();
+        // Flagged now: its other measures show their cutoffs too.
+        exact_cutoffs(&mut j.measures, j.n, &mut cache.cutoffs);
         j.measures.push(Measured {
             measure: "prediction t on the ln(y) scale (second screen for multiplicative slips)",
             ..m

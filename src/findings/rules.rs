@@ -245,6 +245,9 @@ pub struct CutoffCache {
     median_f: std::collections::HashMap<usize, f64>,
 }
 
+/// The name of Cook's distance among a judgement's measures.
+const COOKS_DISTANCE: &str = "Cook's distance";
+
 /// Below this many degrees of freedom (or points), cutoffs are computed at
 /// each value: series that short are many, and share them.
 const GRID_FROM: usize = 256;
@@ -508,7 +511,7 @@ pub fn judge_record_with(
             }
             measures.push(Measured {
                 kind: "influential",
-                measure: "Cook's distance",
+                measure: COOKS_DISTANCE,
                 value: d,
                 cutoff: cut,
                 crossed,
@@ -567,7 +570,8 @@ pub fn exact_cutoffs(measures: &mut [Measured], n: usize, cache: &mut CutoffCach
         m.cutoff = match m.source {
             CutoffSource::Outlier { alpha, df, k } => cache.outlier_t(df, k, alpha),
             // The only other cutoff left out: the median of F(p, n - p).
-            _ => cache.median_f(n),
+            _ if m.measure == COOKS_DISTANCE => cache.median_f(n),
+            _ => continue,
         };
     }
 }

@@ -270,17 +270,19 @@ fn grid_around(v: usize) -> Option<(usize, usize)> {
 }
 
 /// Whether `value` exceeds `cutoff(at)`, where `cutoff` falls as `at`
-/// grows, asked of the grid points around `at` first (see [`CutoffCache`]).
-fn beyond_falling(value: f64, at: usize, cutoff: &mut dyn FnMut(usize) -> f64) -> bool {
+/// grows, asked of the grid points around `at` first (see [`CutoffCache`]);
+/// with `cutoff(at)` when that was needed, else NaN.
+fn beyond_falling(value: f64, at: usize, cutoff: &mut dyn FnMut(usize) -> f64) -> (bool, f64) {
     if let Some((low, high)) = grid_around(at) {
         if value <= cutoff(high) * (1.0 - BRACKET_MARGIN) {
-            return false;
+            return (false, f64::NAN);
         }
         if value > cutoff(low) * (1.0 + BRACKET_MARGIN) {
-            return true;
+            return (true, f64::NAN);
         }
     }
-    value > cutoff(at)
+    let exact = cutoff(at);
+    (value > exact, exact)
 }
 
 impl CutoffCache {
@@ -290,19 +292,6 @@ impl CutoffCache {
             .outlier_t
             .entry((df, k, alpha.to_bits()))
             .or_insert_with(|| t_quantile(1.0 - alpha / (2.0 * k as f64), df as f64))
-    }
-
-    /// [`CutoffCache::outlier_t`] when computed already, else NaN.
-    fn known_outlier_t(&self, df: usize, k: usize, alpha: f64) -> f64 {
-        self.outlier_t
-            .get(&(df, k, alpha.to_bits()))
-            .copied()
-            .unwrap_or(f64::NAN)
-    }
-
-    /// [`CutoffCache::median_f`] when computed already, else NaN.
-    fn known_median_f(&self, n: usize) -> f64 {
-        self.median_f.get(&n).copied().unwrap_or(f64::NAN)
     }
 
     /// The median of F(p, n − p), memoised.
@@ -400,14 +389,13 @@ pub fn outlier_measure(
     // very cutoff the finding shows, memoised per (df, k), so a backlog
     // pays one quantile per distinct pair instead of one per record, and
     // past the grid's start mostly decided by its neighbours.
-    let crossed = beyond_falling(tv.abs(), pred.df, &mut |df| cache.outlier_t(df, kk, alpha));
-    // Computed for a flagged record; else known already, or left for
-    // `exact_cutoffs` (NaN) when the grid decided.
-    let cutoff = if crossed {
-        cache.outlier_t(pred.df, kk, alpha)
-    } else {
-        cache.known_outlier_t(pred.df, kk, alpha)
-    };
+    let (crossed, mut cutoff) =
+        beyond_falling(tv.abs(), pred.df, &mut |df| cache.outlier_t(df, kk, alpha));
+    // A crossed cutoff is shown; one the grid decided is otherwise left
+    // for `exact_cutoffs` (NaN).
+    if crossed && cutoff.is_nan() {
+        cutoff = cache.outlier_t(pred.df, kk, alpha);
+    }
     Some(Measured {
         kind: "outlier",
         measure: "prediction t (externally studentized residual)",
@@ -495,13 +483,11 @@ pub fn judge_record_with(
         if let Some(d) = inf.cooks_distance() {
             let (cut, crossed, source) = match t.cooks {
                 CooksRule::MedianF => {
-                    let crossed = beyond_falling(d, n, &mut |n| cache.median_f(n));
+                    let (crossed, mut cut) = beyond_falling(d, n, &mut |n| cache.median_f(n));
                     // As for the outlier test's cutoff.
-                    let cut = if crossed {
-                        cache.median_f(n)
-                    } else {
-                        cache.known_median_f(n)
-                    };
+                    if crossed && cut.is_nan() {
+                        cut = cache.median_f(n);
+                    }
                     (cut, crossed, "median of F(p, n-p) (Cook 1977)")
                 }
                 CooksRule::FourOverN => (4.0 / nf, d > 4.0 / nf, "4/n (Bollen & Jackman 1990)"),
@@ -846,7 +832,7 @@ mod tests {
                 let exact = t_quantile(1.0 - alpha / (2.0 * k as f64), df as f64);
                 for f in offsets {
                     let t = exact * (1.0 + f);
-                    let got = beyond_falling(t, df, &mut |d| cache.outlier_t(d, k, alpha));
+                    let (got, _) = beyond_falling(t, df, &mut |d| cache.outlier_t(d, k, alpha));
                     assert_eq!(got, t > exact, "df {df}, k {k}, t {t}, cutoff {exact}");
                 }
             }
@@ -857,7 +843,7 @@ mod tests {
                 .inverse_cdf(0.5);
             for f in offsets {
                 let d = exact * (1.0 + f);
-                let got = beyond_falling(d, n, &mut |m| cache.median_f(m));
+                let (got, _) = beyond_falling(d, n, &mut |m| cache.median_f(m));
                 assert_eq!(got, d > exact, "n {n}, D {d}, cutoff {exact}");
             }
         }

@@ -821,7 +821,10 @@ mod tests {
     /// Deciding from the cutoffs at the neighbouring grid points gives the
     /// exact decision (the t quantile and the median of F computed at the
     /// record's own df or n) on both sides of the cutoff, within round-off
-    /// of it, and at it, from short series to a million points.
+    /// of it, and at it, from short series to a million points. The exact
+    /// values are `stats::dist::t_quantile` (checked against R's `qt` in
+    /// its own tests) and statrs 0.19's F inverse CDF; this test holds the
+    /// grid to them, and the next one holds both to R.
     #[test]
     fn decisions_from_neighbouring_cutoffs_are_the_exact_ones() {
         let mut cache = CutoffCache::default();
@@ -852,7 +855,9 @@ mod tests {
     /// A long series (past the grid's start) flagged for leverage alone
     /// shows every measure with its exact cutoff, the outlier test's and
     /// Cook's among them, though neither was needed to flag it; a routine
-    /// record on the same series crosses nothing.
+    /// record on the same series crosses nothing. Reference values from R
+    /// 4.2.2 (Debian r-base-core): `qt(1 - 0.0005, 1998)` =
+    /// 3.2954030195709718 and `qf(0.5, 2, 1999)` = 0.69338758280960477.
     #[test]
     fn a_flagged_record_of_a_long_series_shows_every_cutoff() {
         let pts = quarterly(2_000);
@@ -883,6 +888,8 @@ mod tests {
             .unwrap()
             .inverse_cdf(0.5);
         assert_eq!(cooks.cutoff, median);
+        assert!((outlier.cutoff / 3.295_403_019_570_972 - 1.0).abs() < 1e-9);
+        assert!((cooks.cutoff / 0.693_387_582_809_605 - 1.0).abs() < 1e-9);
         assert!(j.measures.iter().all(|m| m.cutoff.is_finite()), "{j:?}");
         let routine = judge(&pts, (last + 0.25, line.predict(last + 0.25)));
         assert!(routine.kinds.is_empty(), "{routine:?}");

@@ -8,7 +8,9 @@
 //! 3. The states that verdicts change (a record's status and exclusion, a
 //!    finding's status) must be what the verdict log says.
 //! 4. Every reference between rows (a record's series and file, a fit's
-//!    series, a finding's record) names a row that exists.
+//!    series, a finding's record) names a row that exists, and SQLite's
+//!    own check of the file (pages, indexes, NOT NULL and CHECK
+//!    constraints) finds nothing.
 //! 5. Every stored fit is recomputed from the stored records with the
 //!    stored settings, replaying the series in version order: a file adds
 //!    its records' points, a verdict refits from scratch on the remaining
@@ -129,6 +131,14 @@ pub fn verify(store: &Store) -> Result<VerifyReport, StoreError> {
             format!(
                 "it refers to a row of {parent} that does not exist (deleted or never written)"
             ),
+        );
+    }
+    // The file itself, and the CHECK constraints the writer leaves to
+    // verify in release builds.
+    for found in store.file_problems()? {
+        rep.problem(
+            "database file",
+            format!("SQLite's integrity check: {found}"),
         );
     }
     let ids = |k: &str| -> Vec<i64> {

@@ -530,6 +530,15 @@ fn tampering_with_any_row_through_sqlite3_is_caught_by_verify() {
             "finding",
         ),
         ("UPDATE outbox SET subject = 'hello' WHERE id = 1".to_string(), "finding"),
+        // A state no seal covers (a message's delivery state changes after
+        // its finding is sealed), past its CHECK constraint, as a release
+        // writer (which leaves CHECKs to verify) could store it: SQLite's
+        // integrity check names it.
+        (
+            "PRAGMA ignore_check_constraints = ON; UPDATE outbox SET status = 'lost' WHERE id = 1"
+                .to_string(),
+            "CHECK constraint failed in outbox",
+        ),
         ("UPDATE source_files SET name = 'other.csv' WHERE id = 2".to_string(), "file 2"),
         ("UPDATE audit_log SET detail = detail || '.' WHERE id = 2".to_string(), "audit_log 2"),
         ("DELETE FROM audit_log WHERE id = 1".to_string(), "audit_log"),

@@ -129,6 +129,24 @@ impl Store {
         rows.collect::<rusqlite::Result<_>>().map_err(self.wrap())
     }
 
+    /// What SQLite's own check of the database file finds (`PRAGMA
+    /// integrity_check`: pages, indexes, and rows breaking a NOT NULL or
+    /// CHECK constraint, such as a state word no command writes); empty
+    /// when it finds nothing. At most 100 messages, as SQLite gives them.
+    pub fn file_problems(&self) -> Result<Vec<String>> {
+        let mut stmt = self
+            .conn
+            .prepare("PRAGMA integrity_check")
+            .map_err(self.wrap())?;
+        let rows = stmt
+            .query_map([], |r| r.get::<_, String>(0))
+            .map_err(self.wrap())?;
+        let found = rows
+            .collect::<rusqlite::Result<Vec<_>>>()
+            .map_err(self.wrap())?;
+        Ok(found.into_iter().filter(|m| m != "ok").collect())
+    }
+
     /// Record rows whose file is not among `files` and that no verdict in
     /// `verdicts` stored; fit rows triggered by neither; outbox rows of
     /// findings not in `findings`. Returns (table, row id) pairs.

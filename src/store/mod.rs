@@ -618,9 +618,9 @@ impl Store {
     /// writer. SQLite tests a CHECK's `IN` list of three or more words by
     /// building a temporary b-tree of the words for every row written: on a
     /// 1,000,000-record backlog that was 0.4 s of the writing thread's
-    /// 3.5 s (two runs each way, `benches/threads.py`). The words written
-    /// come from the enums of [`states`] (bound values) or from SQL text
-    /// that every test runs under the constraints.
+    /// 3.5 s (three alternated runs each way, `benches/threads.py`). The
+    /// words written come from the enums of [`states`] (bound values) or
+    /// from SQL text that every test runs under the constraints.
     pub fn for_ingest(&mut self) -> Result<()> {
         self.conn
             .pragma_update(None, "temp_store", "MEMORY")

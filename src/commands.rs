@@ -901,7 +901,7 @@ pub fn verify(config: Option<&Path>, json: bool) -> ExitCode {
     );
     if report.ok() {
         println!(
-            "intact: the chain holds, every row is vouched for, every fit recomputes from the stored records"
+            "intact: the chain holds, every row is vouched for, SQLite finds the file sound, every fit recomputes from the stored records"
         );
         return ExitCode::SUCCESS;
     }

@@ -157,6 +157,17 @@ pub enum StoreError {
         /// What differed.
         what: String,
     },
+    /// Rows written without their ids were given others than the ones
+    /// queued for them (see `rows::Given`; a defect, never expected): the
+    /// transaction is rolled back rather than keep rows whose links point
+    /// elsewhere.
+    #[error(
+        "rows were given other ids than queued ({what}); the file's transaction was rolled back and the file stays in the inbox: please report this"
+    )]
+    IdsOutOfStep {
+        /// Which rows, and the ids.
+        what: String,
+    },
     /// A transaction committed, but the fsync that makes it durable
     /// failed: the file is not moved, and is taken again.
     #[error("database {path}: a committed transaction could not be made durable (fsync of the write-ahead log: {source}); check the disk; the file stays in the inbox and is taken again", path = path.display())]
@@ -660,6 +671,7 @@ impl Store {
             recent: std::cell::RefCell::new(Vec::new()),
             findings_written: std::cell::RefCell::new(Vec::new()),
             bulk: std::cell::RefCell::new(&mut self.bulk),
+            next_rowid: std::cell::Cell::default(),
             catch_up: &self.catch_up,
         };
         tx.renew()?;
@@ -942,6 +954,10 @@ pub struct Tx<'a> {
     findings_written: std::cell::RefCell<Vec<(i64, seal::FindingRows)>>,
     /// The connection's multi-row INSERTs of record and fit rows.
     bulk: std::cell::RefCell<&'a mut BulkStatements>,
+    /// The id SQLite gives the next record row and the next fit row
+    /// inserted without one (the table's highest id + 1), kept as rows are
+    /// written (see [`rows::Given`]).
+    next_rowid: std::cell::Cell<NextRowIds>,
     /// The store's flag from the background checkpointer.
     catch_up: &'a AtomicBool,
 }
@@ -1167,10 +1183,14 @@ impl Tx<'_> {
                 },
             ),
         }
-        let rows = batch.rows.iter().map(|r| (&source[r.index], r));
-        let written = self.write_bulk(rows, BulkTable::Records, |(r, row), out| {
-            record_columns(r, row, &mut Values { out });
-        });
+        let mut next = self.next_rowid.get();
+        let written = self.write_bulk(
+            &batch.rows,
+            BulkTable::Records,
+            (|row: &PendingRecord| row.id, &mut next.records),
+            |row, out| record_columns(&source[row.index], row, out),
+        );
+        self.next_rowid.set(next);
         batch.rows.clear();
         written
     }
@@ -1216,36 +1236,87 @@ impl Tx<'_> {
         }
     }
 
-    /// Writes `rows` with `table`'s multi-row statement, a whole chunk at a
-    /// time, then the rest one by one; `values` gives a row's values in
-    /// the statement's column order.
+    /// Inserts `rows` in multi-row statements, their values bound in place
+    /// by `columns`. The rows at the front whose ids continue the table's
+    /// (`next`, `next + 1`, ...) go without their ids, which SQLite then
+    /// gives them (see [`rows::Given`]); the others, if any, name theirs.
+    /// `next` is left at the id SQLite gives the next row without one.
     fn write_bulk<'r, R>(
         &self,
-        mut rows: impl ExactSizeIterator<Item = R>,
+        rows: &'r [R],
         table: BulkTable,
-        values: impl Fn(R, &mut Vec<bulk::Val<'r>>),
+        (id_of, next): (impl Fn(&R) -> i64, &mut i64),
+        columns: impl Fn(&'r R, &mut Values<'r, '_>),
     ) -> Result<()> {
-        let (chunk, columns) = table.shape();
-        let mut statements = self.bulk.borrow_mut();
-        let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * columns);
-        let full = rows.len() / chunk;
-        if full > 0 {
-            let stmt = statements.get(self.tx, table, true).map_err(self.wrap())?;
-            for _ in 0..full {
-                bound.clear();
-                for row in rows.by_ref().take(chunk) {
-                    values(row, &mut bound);
-                }
-                stmt.run(&bound).map_err(self.wrap())?;
+        let continuing = rows
+            .iter()
+            .zip(*next..)
+            .take_while(|(r, id)| id_of(r) == *id)
+            .count();
+        let (by_sqlite, named) = rows.split_at(continuing);
+        self.write_bulk_as(by_sqlite, table, Given::BySqlite, &columns)?;
+        if !by_sqlite.is_empty() {
+            *next += continuing as i64;
+            // SQLite gave the last of them the id it was queued with, or
+            // the rows already chained to it would point elsewhere.
+            let last = self.tx.last_insert_rowid();
+            if last != *next - 1 {
+                return Err(StoreError::IdsOutOfStep {
+                    what: format!(
+                        "{table:?} rows took ids up to {last}, not up to {} as queued",
+                        *next - 1
+                    ),
+                });
             }
         }
-        if rows.len() > 0 {
-            let stmt = statements.get(self.tx, table, false).map_err(self.wrap())?;
-            for row in rows {
-                bound.clear();
+        self.write_bulk_as(named, table, Given::Named, &columns)?;
+        if let Some(highest) = named.iter().map(&id_of).max() {
+            *next = (*next).max(highest + 1);
+        }
+        Ok(())
+    }
+
+    /// [`Tx::write_bulk`]'s statements for `rows`, with ids `given` so.
+    fn write_bulk_as<'r, R>(
+        &self,
+        rows: &'r [R],
+        table: BulkTable,
+        given: Given,
+        columns: impl Fn(&'r R, &mut Values<'r, '_>),
+    ) -> Result<()> {
+        if rows.is_empty() {
+            return Ok(());
+        }
+        let (chunk, _) = table.shape();
+        let mut statements = self.bulk.borrow_mut();
+        let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * 40);
+        let values = |row: &'r R, out: &mut Vec<bulk::Val<'r>>| {
+            columns(
+                row,
+                &mut Values {
+                    out,
+                    without_id: given == Given::BySqlite,
+                },
+            )
+        };
+        let mut groups = rows.chunks_exact(chunk);
+        for group in groups.by_ref() {
+            let stmt = statements
+                .get(self.tx, table, given, true)
+                .map_err(self.wrap())?;
+            bound.clear();
+            for row in group {
                 values(row, &mut bound);
-                stmt.run(&bound).map_err(self.wrap())?;
             }
+            stmt.run(&bound).map_err(self.wrap())?;
+        }
+        for row in groups.remainder() {
+            let stmt = statements
+                .get(self.tx, table, given, false)
+                .map_err(self.wrap())?;
+            bound.clear();
+            values(row, &mut bound);
+            stmt.run(&bound).map_err(self.wrap())?;
         }
         Ok(())
     }
@@ -1388,9 +1459,14 @@ impl Tx<'_> {
                 },
             ),
         }
-        let written = self.write_bulk(batch.rows.iter(), BulkTable::Fits, |row, out| {
-            fit_columns(row, &mut Values { out });
-        });
+        let mut next = self.next_rowid.get();
+        let written = self.write_bulk(
+            &batch.rows,
+            BulkTable::Fits,
+            (|row: &PendingFit| row.id, &mut next.fits),
+            |row, out| fit_columns(row, out),
+        );
+        self.next_rowid.set(next);
         batch.rows.clear();
         written
     }
@@ -1534,6 +1610,10 @@ impl Tx<'_> {
         ids.records.store(first.records, Ordering::Relaxed);
         ids.fits.store(first.fits, Ordering::Relaxed);
         *self.ids.get_mut() = Arc::new(ids);
+        self.next_rowid.set(NextRowIds {
+            records: first.records,
+            fits: first.fits,
+        });
         self.first = first;
         self.written.get_mut().clear();
         self.recent.get_mut().clear();
@@ -1998,6 +2078,142 @@ mod tests {
         let totals = store.totals().unwrap();
         assert_eq!(totals.proposed, 9);
         assert!(totals.quarantined_rows >= 5);
+    }
+
+    /// `batch`'s records queued as current versions of `series` (written
+    /// as the batch fills), for the id tests; returns the ids they were
+    /// queued with.
+    fn queue_plain(
+        tx: &Tx<'_>,
+        batch: &mut RecordBatch,
+        series: SeriesRowId,
+        file: FileId,
+    ) -> Vec<i64> {
+        (0..batch.source.len())
+            .map(|i| {
+                tx.queue_current(
+                    batch,
+                    i,
+                    series,
+                    file,
+                    RecordPlacement {
+                        fit_point: None,
+                        arrival: None,
+                    },
+                    None,
+                )
+                .unwrap()
+            })
+            .collect()
+    }
+
+    fn plain_records(prefix: &str, count: u32) -> Arc<Vec<Record>> {
+        Arc::new(
+            (0..count)
+                .map(|i| {
+                    let id = format!("{prefix}-{i}");
+                    record(
+                        &id,
+                        2020.0 + f64::from(i),
+                        Measure::Detected(1.0),
+                        u64::from(i) + 2,
+                    )
+                })
+                .collect(),
+        )
+    }
+
+    fn ids_of(tx: &Tx<'_>, like: &str) -> Vec<(i64, String)> {
+        let mut stmt = tx
+            .tx
+            .prepare("SELECT id, record_id FROM records WHERE record_id LIKE ?1 ORDER BY id")
+            .unwrap();
+        stmt.query_map([like], |r| Ok((r.get(0)?, r.get(1)?)))
+            .unwrap()
+            .collect::<rusqlite::Result<_>>()
+            .unwrap()
+    }
+
+    #[test]
+    fn rows_continuing_the_table_ids_go_without_them_and_keep_the_queued_ones() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
+        let row = tx
+            .create_series("MW-Ü/nitrate", None, "none", "exclude", None, None)
+            .unwrap();
+        // Two whole statements and six rows one by one, all continuing.
+        let mut batch = RecordBatch::new(plain_records("A", 70));
+        let queued = queue_plain(&tx, &mut batch, row.id, file);
+        tx.flush_records(&mut batch).unwrap();
+        let stored = ids_of(&tx, "A-%");
+        assert_eq!(stored.iter().map(|r| r.0).collect::<Vec<_>>(), queued);
+        assert_eq!(stored[0].1, "A-0");
+        assert_eq!(stored[69].1, "A-69");
+        assert_eq!(tx.next_rowid.get().records, queued[69] + 1);
+        {
+            // Only the statements without ids were needed.
+            let bulk = tx.bulk.borrow();
+            let prepared: Vec<bool> = bulk.records.iter().map(Option::is_some).collect();
+            assert_eq!(prepared, [false, false, true, true]);
+        }
+        // Rows queued, then a proposed version written ahead of them with
+        // a later id: the queued rows no longer continue the table's ids
+        // and name theirs; the rows after them continue again.
+        let mut batch = RecordBatch::new(plain_records("B", 40));
+        let queued = queue_plain(&tx, &mut batch, row.id, file);
+        assert!(!batch.rows.is_empty(), "some of them still queued");
+        let proposed = tx
+            .insert_proposed(&plain_records("C", 1)[0], row.id, file, 2)
+            .unwrap();
+        assert!(proposed > queued[39]);
+        tx.flush_records(&mut batch).unwrap();
+        assert_eq!(
+            ids_of(&tx, "B-%").iter().map(|r| r.0).collect::<Vec<_>>(),
+            queued
+        );
+        assert_eq!(tx.next_rowid.get().records, proposed + 1);
+        {
+            // The rows still queued named their ids.
+            let bulk = tx.bulk.borrow();
+            assert!(bulk.records[0].is_some() || bulk.records[1].is_some());
+        }
+        let mut batch = RecordBatch::new(plain_records("D", 3));
+        let queued = queue_plain(&tx, &mut batch, row.id, file);
+        assert_eq!(queued[0], proposed + 1);
+        tx.flush_records(&mut batch).unwrap();
+        assert_eq!(
+            ids_of(&tx, "D-%").iter().map(|r| r.0).collect::<Vec<_>>(),
+            queued
+        );
+        // The seal of the file, from the values as written, matches the
+        // rows read back, ids included.
+        seal_checked(&tx, file);
+    }
+
+    #[test]
+    fn rows_given_other_ids_than_queued_fail_the_transaction() {
+        let mut store = Store::open_in_memory().unwrap();
+        let tx = store.begin().unwrap();
+        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
+        let row = tx
+            .create_series("MW-Ü/nitrate", None, "none", "exclude", None, None)
+            .unwrap();
+        let mut batch = RecordBatch::new(plain_records("A", 5));
+        let first = queue_plain(&tx, &mut batch, row.id, file)[0];
+        assert_eq!(batch.rows.len(), 5, "all still queued");
+        // A row written behind the transaction's back takes the id the
+        // first queued row was to get from SQLite.
+        tx.tx
+            .execute(
+                "INSERT INTO records (id, record_id, version, status, series_id, x, y, censored,
+                 in_fit, file_id, line, raw) VALUES (?1, 'X', 1, 'current', ?2, 0, 0, 0, 0, ?3, 1, '')",
+                rusqlite::params![first, row.id.0, file.0],
+            )
+            .unwrap();
+        let err = tx.flush_records(&mut batch).unwrap_err();
+        assert!(matches!(err, StoreError::IdsOutOfStep { .. }), "{err}");
+        assert!(err.to_string().contains("please report this"), "{err}");
     }
 
     #[test]

@@ -56,22 +56,52 @@ impl BulkTable {
     }
 }
 
-/// A connection's prepared [`BulkTable`] statements: for each table, one
-/// of a whole chunk of rows and one of a single row, prepared when first
-/// needed and finalized with the [`Store`].
+/// The ids SQLite gives the next record row and fit row inserted without
+/// one: each table's highest id + 1.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub(super) struct NextRowIds {
+    pub(super) records: i64,
+    pub(super) fits: i64,
+}
+
+/// How a row's id reaches the table.
+///
+/// Rows are queued with the ids handed out by [`IdCounters`], which start
+/// at the table's highest id + 1, so rows written in the order queued
+/// usually continue the table's ids one by one: those go without their id
+/// (`Given::BySqlite`), and SQLite gives each the next one, the same. An
+/// INSERT naming the id makes SQLite check that no row has it (a b-tree
+/// search per row), and, as the id could fail to be an integer part way
+/// through a multi-row INSERT, keep a statement journal of every page the
+/// statement touches: together 0.2-0.4 s of the writing thread's 3.1 s on
+/// the 1,000,000-record backlog (`benches/threads.py`, three alternated
+/// runs). Rows that do not continue the table's ids (after a proposed
+/// version was written ahead of rows queued before it) name their ids.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(super) enum Given {
+    /// The INSERT names the id.
+    Named,
+    /// The INSERT leaves the id to SQLite, which gives the next one.
+    BySqlite,
+}
+
+/// A connection's prepared [`BulkTable`] statements: for each table and
+/// way of giving ids, one of a whole chunk of rows and one of a single row,
+/// prepared when first needed and finalized with the [`Store`].
 #[derive(Debug, Default)]
 pub(super) struct BulkStatements {
-    pub(super) records: [Option<bulk::BulkStatement>; 2],
-    pub(super) fits: [Option<bulk::BulkStatement>; 2],
+    pub(super) records: [Option<bulk::BulkStatement>; 4],
+    pub(super) fits: [Option<bulk::BulkStatement>; 4],
 }
 
 impl BulkStatements {
     /// `table`'s statement for a whole chunk of rows (`whole_chunk`) or
-    /// for one row.
+    /// for one row, with ids `given` as said.
     pub(super) fn get(
         &mut self,
         conn: &Connection,
         table: BulkTable,
+        given: Given,
         whole_chunk: bool,
     ) -> rusqlite::Result<&mut bulk::BulkStatement> {
         let (chunk, columns) = table.shape();
@@ -79,13 +109,16 @@ impl BulkStatements {
             BulkTable::Records => &mut self.records,
             BulkTable::Fits => &mut self.fits,
         };
-        let (slot, rows) = if whole_chunk {
-            (&mut slots[1], chunk)
-        } else {
-            (&mut slots[0], 1)
-        };
+        let at = usize::from(whole_chunk) + 2 * usize::from(given == Given::BySqlite);
+        let slot = &mut slots[at];
+        let rows = if whole_chunk { chunk } else { 1 };
         if slot.is_none() {
-            let sql = multi_row_insert(table.head(), columns, rows);
+            let sql = match given {
+                Given::Named => multi_row_insert(table.head(), columns, rows),
+                Given::BySqlite => {
+                    multi_row_insert(&table.head().replacen("(id, ", "(", 1), columns - 1, rows)
+                }
+            };
             *slot = Some(bulk::BulkStatement::prepare(conn, &sql)?);
         }
         match slot {
@@ -454,10 +487,15 @@ pub(super) trait Sink<'a> {
 /// Collects a row's values for an insert.
 pub(super) struct Values<'a, 'v> {
     pub(super) out: &'v mut Vec<bulk::Val<'a>>,
+    /// Whether the row's first column, its id, is left out (see [`Given`]).
+    pub(super) without_id: bool,
 }
 
 impl<'a> Sink<'a> for Values<'a, '_> {
     fn put<V: bulk::ToVal<'a> + seal::SealValue>(&mut self, v: V, goes: Goes) {
+        if std::mem::take(&mut self.without_id) {
+            return;
+        }
         if goes != Goes::Seal {
             self.out.push(v.to_val());
         }

@@ -1287,9 +1287,9 @@ impl Tx<'_> {
         if rows.is_empty() {
             return Ok(());
         }
-        let (chunk, _) = table.shape();
+        let (chunk, columns_per_row) = table.shape();
         let mut statements = self.bulk.borrow_mut();
-        let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * 40);
+        let mut bound: Vec<bulk::Val<'r>> = Vec::with_capacity(chunk * columns_per_row);
         let values = |row: &'r R, out: &mut Vec<bulk::Val<'r>>| {
             columns(
                 row,
@@ -1300,23 +1300,27 @@ impl Tx<'_> {
             )
         };
         let mut groups = rows.chunks_exact(chunk);
-        for group in groups.by_ref() {
+        if rows.len() >= chunk {
             let stmt = statements
                 .get(self.tx, table, given, true)
                 .map_err(self.wrap())?;
-            bound.clear();
-            for row in group {
-                values(row, &mut bound);
+            for group in groups.by_ref() {
+                bound.clear();
+                for row in group {
+                    values(row, &mut bound);
+                }
+                stmt.run(&bound).map_err(self.wrap())?;
             }
-            stmt.run(&bound).map_err(self.wrap())?;
         }
-        for row in groups.remainder() {
+        if !groups.remainder().is_empty() {
             let stmt = statements
                 .get(self.tx, table, given, false)
                 .map_err(self.wrap())?;
-            bound.clear();
-            values(row, &mut bound);
-            stmt.run(&bound).map_err(self.wrap())?;
+            for row in groups.remainder() {
+                bound.clear();
+                values(row, &mut bound);
+                stmt.run(&bound).map_err(self.wrap())?;
+            }
         }
         Ok(())
     }

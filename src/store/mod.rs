@@ -2127,6 +2127,20 @@ mod tests {
         )
     }
 
+    /// A file and a series to queue records of, for the id tests.
+    fn file_and_series(tx: &Tx<'_>) -> (FileId, SeriesRow) {
+        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
+        let row = tx
+            .create_series("MW-Ü/nitrate", None, "none", "exclude", None, None)
+            .unwrap();
+        (file, row)
+    }
+
+    /// The row ids of the records whose record id is `like`, in order.
+    fn row_ids_of(tx: &Tx<'_>, like: &str) -> Vec<i64> {
+        ids_of(tx, like).into_iter().map(|r| r.0).collect()
+    }
+
     fn ids_of(tx: &Tx<'_>, like: &str) -> Vec<(i64, String)> {
         let mut stmt = tx
             .tx
@@ -2142,16 +2156,13 @@ mod tests {
     fn rows_continuing_the_table_ids_go_without_them_and_keep_the_queued_ones() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
-        let row = tx
-            .create_series("MW-Ü/nitrate", None, "none", "exclude", None, None)
-            .unwrap();
+        let (file, row) = file_and_series(&tx);
         // Two whole statements and six rows one by one, all continuing.
         let mut batch = RecordBatch::new(plain_records("A", 70));
         let queued = queue_plain(&tx, &mut batch, row.id, file);
         tx.flush_records(&mut batch).unwrap();
         let stored = ids_of(&tx, "A-%");
-        assert_eq!(stored.iter().map(|r| r.0).collect::<Vec<_>>(), queued);
+        assert_eq!(row_ids_of(&tx, "A-%"), queued);
         assert_eq!(stored[0].1, "A-0");
         assert_eq!(stored[69].1, "A-69");
         assert_eq!(tx.next_rowid.get().records, queued[69] + 1);
@@ -2172,10 +2183,7 @@ mod tests {
             .unwrap();
         assert!(proposed > queued[39]);
         tx.flush_records(&mut batch).unwrap();
-        assert_eq!(
-            ids_of(&tx, "B-%").iter().map(|r| r.0).collect::<Vec<_>>(),
-            queued
-        );
+        assert_eq!(row_ids_of(&tx, "B-%"), queued);
         assert_eq!(tx.next_rowid.get().records, proposed + 1);
         {
             // The rows still queued named their ids.
@@ -2186,10 +2194,7 @@ mod tests {
         let queued = queue_plain(&tx, &mut batch, row.id, file);
         assert_eq!(queued[0], proposed + 1);
         tx.flush_records(&mut batch).unwrap();
-        assert_eq!(
-            ids_of(&tx, "D-%").iter().map(|r| r.0).collect::<Vec<_>>(),
-            queued
-        );
+        assert_eq!(row_ids_of(&tx, "D-%"), queued);
         // The seal of the file, from the values as written, matches the
         // rows read back, ids included.
         seal_checked(&tx, file);
@@ -2199,10 +2204,7 @@ mod tests {
     fn rows_given_other_ids_than_queued_fail_the_transaction() {
         let mut store = Store::open_in_memory().unwrap();
         let tx = store.begin().unwrap();
-        let file = tx.insert_file(&new_file("a.csv", "aa")).unwrap();
-        let row = tx
-            .create_series("MW-Ü/nitrate", None, "none", "exclude", None, None)
-            .unwrap();
+        let (file, row) = file_and_series(&tx);
         let mut batch = RecordBatch::new(plain_records("A", 5));
         let first = queue_plain(&tx, &mut batch, row.id, file)[0];
         assert_eq!(batch.rows.len(), 5, "all still queued");

@@ -54,7 +54,7 @@ use crate::stats::robust::{MannKendall, TheilSen, mann_kendall, theil_sen};
 use crate::stats::{Arrival, LineFit, Moments, SeriesState, TQuantiles, Transform};
 use crate::store::seal::SealScope;
 use crate::store::{
-    AuditKind, Behind, FileCounts, FileOutcome, FitBatch, NewFile, NewFit, RecordBatch,
+    AuditKind, Behind, FileCounts, FileOutcome, FitBatch, Joined, NewFile, NewFit, RecordBatch,
     RecordPlacement, RobustRow, SeriesHeads, SeriesRow, Store, StoreError, write_behind,
 };
 use crate::window::Window;

@@ -295,9 +295,19 @@ pub(super) fn store_file_behind<'t, 'c: 't>(
                 },
                 None => None,
             };
+            // The first record of a series in a file arrives on the fit of
+            // the file before, whose p is known: an incomplete beta
+            // function per record spared.
             let placement = RecordPlacement {
                 fit_point,
-                arrival: arrival.as_ref().map(|a| (a, joins, config.level)),
+                arrival: arrival.as_ref().map(|a| Joined {
+                    arrival: a,
+                    fit_version: joins,
+                    slope_p_without: (a.before == t.before)
+                        .then(|| cache.known_fit(key, &t.before, config.level))
+                        .flatten()
+                        .map(|f| f.slope_p),
+                }),
             };
             if !stored.contains(record.record_id.as_str()) {
                 let row_id = batch.queue_current(
@@ -592,10 +602,14 @@ fn queue_refits(
                 }
             };
             cache.line_fits.insert(key.clone(), *new_fit);
-            let without = t
-                .last
-                .as_ref()
-                .and_then(|(a, _)| a.slope_without().map(|s| (s, a.slope_p_without())));
+            // Without the newest record: for a series' only record of the
+            // file, the fit before (its p as that fit computed it).
+            let without = t.last.as_ref().and_then(|(a, _)| {
+                a.slope_without().map(|s| match &previous {
+                    Some(f) if a.before == t.before => (s, f.slope_p),
+                    _ => (s, a.slope_p_without()),
+                })
+            });
             let (significant, changes) = judge_trend(
                 previous.as_ref().map(|f| (f.slope, t.row.significant, f.n)),
                 new_fit,

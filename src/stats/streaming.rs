@@ -117,7 +117,9 @@ fn slope_p_of(m: &Moments) -> Option<f64> {
     if m.n() < 3 || m.sxx() <= 0.0 {
         return None;
     }
-    let s = (m.sse() / (n - 2.0)).sqrt();
+    // As [`LineFit::from_moments`] computes it, to the last bit (the
+    // pipeline takes a refit's p for it): a rounding-negative SSE is 0.
+    let s = (m.sse().max(0.0) / (n - 2.0)).sqrt();
     if is_exact(s, m.mean_y(), m.syy(), n) {
         return None;
     }
@@ -323,6 +325,55 @@ mod tests {
     #[test]
     fn series_state_is_64_bytes() {
         assert_eq!(std::mem::size_of::<SeriesState>(), 64);
+    }
+
+    /// The pipeline stores a refit's slope p as the next record's "p
+    /// without" (same moments), so the two must agree to the last bit,
+    /// exact lines and a single spread-free x included.
+    #[test]
+    fn slope_p_without_is_the_p_of_the_fit_before_bit_for_bit() {
+        let series: [&[(f64, f64)]; 4] = [
+            &[
+                (2019.1, 5.2),
+                (2019.4, 5.0),
+                (2019.6, 5.3),
+                (2019.9, 4.9),
+                (2020.2, 4.8),
+                (2021.0, 4.7),
+                (2023.5, 9.9),
+            ],
+            // An exact line: no p on either side.
+            &[(1.0, 2.0), (2.0, 4.0), (3.0, 6.0), (4.0, 8.0), (5.0, 10.0)],
+            &[
+                (0.0, 1e-9),
+                (10.0, 3e-9),
+                (20.0, 2e-9),
+                (30.0, 5e-9),
+                (45.0, 4e-9),
+            ],
+            &[
+                (100.0, 41.0),
+                (250.0, 40.5),
+                (400.0, 38.0),
+                (900.0, 30.5),
+                (1850.0, 48.2),
+            ],
+        ];
+        for points in series {
+            let mut st = SeriesState::new();
+            for (i, &(x, y)) in points.iter().enumerate() {
+                let before = *st.moments();
+                let arrival = st.add(x, y).unwrap();
+                let refit = LineFit::from_moments(&before, 0.95).ok();
+                let want = refit.and_then(|f| f.slope_p);
+                let got = arrival.slope_p_without();
+                assert_eq!(
+                    got.map(f64::to_bits),
+                    want.map(f64::to_bits),
+                    "point {i} of {points:?}"
+                );
+            }
+        }
     }
 
     #[test]

@@ -376,9 +376,21 @@ pub struct StoredRecord {
 pub struct RecordPlacement<'a> {
     /// Whether it enters the fit, and its point on the fitted scale.
     pub fit_point: Option<(f64, f64)>,
-    /// Its arrival in the series' streaming state, with the fit version it
-    /// joins and the confidence level, when it entered the fit.
-    pub arrival: Option<(&'a Arrival, i64, f64)>,
+    /// Its arrival in the series' streaming state, when it entered the fit.
+    pub arrival: Option<Joined<'a>>,
+}
+
+/// A record's arrival in its series' fit, as its row stores it.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Joined<'a> {
+    /// The arrival itself.
+    pub arrival: &'a Arrival,
+    /// The fit version the record joins.
+    pub fit_version: i64,
+    /// [`Arrival::slope_p_without`], when the caller knows it already (the
+    /// p of the fit before the record, kept from that fit's refit); else
+    /// worked out from the arrival.
+    pub slope_p_without: Option<Option<f64>>,
 }
 
 /// One fit-history row about to be written.
@@ -1990,7 +2002,11 @@ mod tests {
                 },
                 _ => RecordPlacement {
                     fit_point: Some((r.x, 0.25)),
-                    arrival: Some((arrival, 7, 0.95)),
+                    arrival: Some(Joined {
+                        arrival,
+                        fit_version: 7,
+                        slope_p_without: None,
+                    }),
                 },
             };
             if i % 11 == 3 {

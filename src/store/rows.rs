@@ -147,7 +147,12 @@ pub(super) struct DiagnosticsRow {
 }
 
 impl DiagnosticsRow {
-    pub(super) fn of(a: &Arrival, joined_fit: i64) -> Self {
+    pub(super) fn of(joined: Joined<'_>) -> Self {
+        let Joined {
+            arrival: a,
+            fit_version: joined_fit,
+            slope_p_without,
+        } = joined;
         let inf = a.influence.as_ref();
         DiagnosticsRow {
             joined_fit,
@@ -161,7 +166,7 @@ impl DiagnosticsRow {
             covariance_ratio: inf.and_then(|p| p.covariance_ratio()),
             prediction_t: a.prediction.and_then(|p| p.t),
             slope_without: a.slope_without(),
-            slope_p_without: a.slope_p_without(),
+            slope_p_without: slope_p_without.unwrap_or_else(|| a.slope_p_without()),
             undefined: inf.and_then(|p| p.undefined()).map(|u| u.explain()),
         }
     }
@@ -348,9 +353,7 @@ impl RecordBatch {
             series: series.0,
             file: file.0,
             fit_point: placement.fit_point,
-            diagnostics: placement
-                .arrival
-                .map(|(a, joins, _)| DiagnosticsRow::of(a, joins)),
+            diagnostics: placement.arrival.map(DiagnosticsRow::of),
             prev_in_series,
             attributes,
         });

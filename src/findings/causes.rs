@@ -65,7 +65,7 @@
 //! returned.
 
 use crate::records::units::{Matrix, convert};
-use crate::stats::dist::{t_two_sided_p, t_two_sided_p_bound};
+use crate::stats::dist::{t_beyond_p_bound, t_two_sided_p};
 use crate::stats::{LineFit, Transform};
 
 /// The p-value a candidate needs at least, however badly the record fits.
@@ -343,7 +343,7 @@ pub fn needed_p(as_written: Option<&Score>) -> f64 {
 /// the series without the record markedly better than the record as
 /// written, best first, at most `input.max`.
 pub fn rank_causes(input: &CauseInput<'_>) -> Ranked {
-    let scored = match score_with(input, Tail::Later) {
+    let (scored, settled) = match score_with(input, Tail::Later) {
         Ok(s) => s,
         Err(reason) => {
             return Ranked {
@@ -357,7 +357,7 @@ pub fn rank_causes(input: &CauseInput<'_>) -> Ranked {
         }
     };
     let needed = needed_p(scored.as_written.as_ref());
-    let count = scored.candidates.len();
+    let count = scored.candidates.len() + settled;
     let passes_leverage =
         |c: &Candidate| !c.kind.moves_x() || c.score.leverage_factor <= MAX_LEVERAGE_FACTOR;
     // The p-value (an incomplete beta function, most of the cost of
@@ -366,18 +366,13 @@ pub fn rank_causes(input: &CauseInput<'_>) -> Ranked {
     // |t|: the first below the needed p ends the visit, and after `max`
     // listed ones only exact ties of the last |t| are still visited (a tie
     // keeps the order tried and marks `tied`, as if every p were known).
-    // Candidates scored against other series' fits get their p, unless the
-    // t tail's upper bound already puts them below the needed p.
+    // Candidates scored against other series' fits get their p: those that
+    // the t tail's upper bound already put below the needed p, or that lie
+    // too far out in x, were settled in `score_with` and are not here.
     let mut own: Vec<(usize, Candidate)> = Vec::new();
     let mut listed: Vec<(usize, Candidate)> = Vec::new();
     for (i, mut c) in scored.candidates.into_iter().enumerate() {
         if c.kind == CauseKind::OtherSeries {
-            // Most other series fit the record far worse than needed: an
-            // upper bound on p well below it settles them without the
-            // exact tail (the margin keeps round-off out of the decision).
-            if !passes_leverage(&c) || t_two_sided_p_bound(c.score.t) < needed * 0.999 {
-                continue;
-            }
             c.score.p = t_two_sided_p(c.score.t, c.score.df as f64);
             if c.score.p >= needed {
                 listed.push((i, c));
@@ -450,14 +445,21 @@ enum Tail {
 /// Scores the record as written and every candidate, without filtering or
 /// sorting (for reports that show everything tried, and for tests).
 pub fn score_candidates(input: &CauseInput<'_>) -> Result<Scored, Unavailable> {
-    let mut scored = score_with(input, Tail::Now)?;
+    let (mut scored, _) = score_with(input, Tail::Now)?;
     for c in &mut scored.candidates {
         c.label = label_of(input, c.kind, &c.change, c.x, c.y);
     }
     Ok(scored)
 }
 
-fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable> {
+/// The record as written and its candidates scored, and (with
+/// [`Tail::Later`]) how many candidates against other series were settled
+/// unlisted and left out: a prediction interval that the record's value
+/// misses by far (the t tail's upper bound is below the p needed), or an x
+/// beyond [`MAX_LEVERAGE_FACTOR`] of that series. A record has a candidate
+/// per related series, often a hundred, nearly all settled so; building
+/// each (its series' name copied) was most of the cost of ranking.
+fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<(Scored, usize), Unavailable> {
     usable(input.fit_without)?;
     if !(input.x.is_finite() && input.y.is_finite()) {
         return Err(Unavailable::RecordNotFinite);
@@ -466,7 +468,22 @@ fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable>
     let proposals = proposals(input);
     let mut candidates = Vec::with_capacity(proposals.len());
     let mut off_scale = 0;
-    for proposal in proposals {
+    let mut settled = 0;
+    let needed = needed_p(as_written.as_ref());
+    // The |t| beyond which the t tail's upper bound is below the p needed
+    // (with a margin that keeps round-off out of the decision): a
+    // candidate there cannot be listed.
+    let settled_beyond = t_beyond_p_bound(needed * 0.999);
+    let others = input.others.iter().map(|&(series, fit)| Proposal {
+        kind: CauseKind::OtherSeries,
+        change: Change::OtherSeries {
+            series: String::new(),
+        },
+        x: input.x,
+        y: input.y,
+        against: Some((series, fit)),
+    });
+    for proposal in proposals.into_iter().chain(others) {
         if same_value(proposal.x, input.x)
             && same_value(proposal.y, input.y)
             && proposal.kind != CauseKind::OtherSeries
@@ -474,10 +491,23 @@ fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable>
             continue;
         }
         let fit = match &proposal.against {
-            Some(fit) => *fit,
+            Some((_, fit)) => *fit,
             None => input.fit_without,
         };
-        match score_t(fit, input.transform, proposal.x, proposal.y) {
+        let scored = score_t(fit, input.transform, proposal.x, proposal.y);
+        if let (Some(s), Some(_), Tail::Later) = (&scored, proposal.against, tail)
+            && (s.leverage_factor > MAX_LEVERAGE_FACTOR || s.t.abs() > settled_beyond)
+        {
+            settled += 1;
+            continue;
+        }
+        let change = match (proposal.kind, proposal.against) {
+            (CauseKind::OtherSeries, Some((series, _))) => Change::OtherSeries {
+                series: series.to_string(),
+            },
+            _ => proposal.change,
+        };
+        match scored {
             Some(mut s) => candidates.push(Candidate {
                 score: {
                     if tail == Tail::Now {
@@ -490,17 +520,20 @@ fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<Scored, Unavailable>
                 label: String::new(),
                 x: proposal.x,
                 y: proposal.y,
-                change: proposal.change,
+                change,
                 tied: false,
             }),
             None => off_scale += 1,
         }
     }
-    Ok(Scored {
-        as_written,
-        candidates,
-        off_scale,
-    })
+    Ok((
+        Scored {
+            as_written,
+            candidates,
+            off_scale,
+        },
+        settled,
+    ))
 }
 
 /// Scores (x, y), original units, against `fit` on the scale of
@@ -546,10 +579,12 @@ fn usable(fit: &LineFit) -> Result<(), Unavailable> {
 /// A candidate before scoring.
 struct Proposal<'a> {
     kind: CauseKind,
+    /// For another series, left blank until the candidate is built.
     change: Change,
     x: f64,
     y: f64,
-    against: Option<&'a LineFit>,
+    /// Another series (name, fit) judged against instead of the record's.
+    against: Option<(&'a str, &'a LineFit)>,
 }
 
 fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
@@ -646,17 +681,7 @@ fn proposals<'a>(input: &CauseInput<'a>) -> Vec<Proposal<'a>> {
             }
         }
     }
-    for &(name, fit) in input.others {
-        out.push(Proposal {
-            kind: CauseKind::OtherSeries,
-            change: Change::OtherSeries {
-                series: name.to_string(),
-            },
-            x,
-            y,
-            against: Some(fit),
-        });
-    }
+    // Other series follow, in `score_with`.
     out
 }
 

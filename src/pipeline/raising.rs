@@ -29,8 +29,11 @@ pub(super) struct Neighbours<'a> {
     /// Key, scale (transform name) and moments (lent, not copied: a file
     /// with a flagged record builds this over every series met).
     pub(super) series: Vec<(&'a str, &'a str, &'a Moments)>,
-    /// The fits asked for so far, by index into `series`.
-    pub(super) fits: HashMap<usize, Option<LineFit>>,
+    /// Where the fit of each of `series` is in `fits` once asked for
+    /// (`u32::MAX`: not yet).
+    pub(super) fit_at: Vec<u32>,
+    /// The fits asked for so far (None: the series has none).
+    pub(super) fits: Vec<Option<LineFit>>,
     pub(super) by_site: HashMap<&'a str, Vec<usize>>,
     pub(super) by_parameter: HashMap<&'a str, Vec<usize>>,
 }
@@ -60,7 +63,8 @@ impl<'a> Neighbours<'a> {
             }
         }
         Neighbours {
-            fits: HashMap::default(),
+            fit_at: vec![u32::MAX; series.len()],
+            fits: Vec::new(),
             series,
             by_site,
             by_parameter,
@@ -117,17 +121,20 @@ pub(super) fn rank_flagged(
                 if k == key || other_scale != scale {
                     continue;
                 }
-                neighbours.fits.entry(i).or_insert_with(|| {
-                    cache.known_fit(k, m, config.level).or_else(|| {
+                if neighbours.fit_at.get(i) == Some(&u32::MAX) {
+                    let fit = cache.known_fit(k, m, config.level).or_else(|| {
                         LineFit::from_moments_with(m, config.level, |df| quantiles.get(df)).ok()
-                    })
-                });
+                    });
+                    neighbours.fit_at[i] = neighbours.fits.len() as u32;
+                    neighbours.fits.push(fit);
+                }
                 related_here.push(i);
             }
             let mine: Vec<(&str, &LineFit)> = related_here
                 .iter()
                 .filter_map(|&i| {
-                    let fit = neighbours.fits.get(&i)?.as_ref()?;
+                    let at = *neighbours.fit_at.get(i)? as usize;
+                    let fit = neighbours.fits.get(at)?.as_ref()?;
                     Some((neighbours.series.get(i)?.0, fit))
                 })
                 .collect();

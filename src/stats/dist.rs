@@ -30,6 +30,17 @@ pub fn t_two_sided_p_bound(t: f64) -> f64 {
     std::f64::consts::FRAC_2_PI * (1.0 / t.abs()).atan()
 }
 
+/// The |t| beyond which [`t_two_sided_p_bound`] is below `p`, so every t
+/// tail is: `1 / tan(p pi/2)`, its inverse, for a caller that screens many
+/// t against one threshold (one tangent instead of an arctangent each).
+/// Negative (every t is beyond) when `p > 1`, which no tail reaches.
+pub fn t_beyond_p_bound(p: f64) -> f64 {
+    if p > 1.0 {
+        return -1.0;
+    }
+    1.0 / (p * std::f64::consts::FRAC_PI_2).tan()
+}
+
 /// Upper quantile of Student t: the `t` with `P(T <= t) = prob`.
 ///
 /// `prob` must lie in (0, 1) and `df` be positive; callers guarantee both.
@@ -166,6 +177,24 @@ mod tests {
                 );
             }
         }
+    }
+
+    /// Its inverse agrees with it (up to round-off at the threshold itself).
+    #[test]
+    fn the_bound_and_its_inverse_agree() {
+        for p in [1e-12, 1e-6, 0.001, 0.0499, 0.05, 0.3, 0.9, 0.999] {
+            let cut = t_beyond_p_bound(p);
+            for f in [0.5, 0.99, 0.999_999, 1.000_001, 1.01, 2.0] {
+                let t = cut * f;
+                assert_eq!(
+                    t_two_sided_p_bound(t) < p,
+                    t.abs() > cut,
+                    "p={p} t={t} cut={cut}"
+                );
+            }
+        }
+        assert!(t_beyond_p_bound(1.5) < 0.0);
+        assert!(t_two_sided_p_bound(0.0) <= 1.0);
     }
 
     #[test]

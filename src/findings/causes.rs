@@ -457,8 +457,8 @@ pub fn score_candidates(input: &CauseInput<'_>) -> Result<Scored, Unavailable> {
 /// unlisted and left out: a prediction interval that the record's value
 /// misses by far (the t tail's upper bound is below the p needed), or an x
 /// beyond [`MAX_LEVERAGE_FACTOR`] of that series. A record has a candidate
-/// per related series, often a hundred, nearly all settled so; building
-/// each (its series' name copied) was most of the cost of ranking.
+/// per related series, often a hundred, nearly all settled so, and none
+/// of those is built (each copied its series' name for nothing).
 fn score_with(input: &CauseInput<'_>, tail: Tail) -> Result<(Scored, usize), Unavailable> {
     usable(input.fit_without)?;
     if !(input.x.is_finite() && input.y.is_finite()) {
